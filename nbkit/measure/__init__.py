@@ -1,0 +1,1 @@
+"""Pure functions: tensors in, numbers out. No hooks, no files, no state."""

@@ -1,0 +1,1 @@
+"""Hooks and the Recorder; optimizer adapters (which state is which moment)."""

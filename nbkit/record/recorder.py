@@ -1,0 +1,544 @@
+"""The Recorder: optimizer and module hooks that turn each training step into one recorded row.
+
+The recorder only orchestrates: numbers come from nbkit.measure, files from nbkit.store. It never
+draws from the global random generators (its sample of coordinates comes from a private
+torch.Generator), so a recorded run ends bit-identical to the same run unrecorded.
+"""
+from __future__ import annotations
+
+import atexit
+import datetime
+import math
+import os
+import random
+import shutil
+import sys
+import warnings
+import weakref
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from nbkit.errors import RecorderError, RecorderWarning
+from nbkit.measure.quantities import HISTOGRAM_BINS, HISTOGRAM_LOW, QUANTITIES
+from nbkit.measure.step_stats import sampled_statistics, whole_tensor_statistics
+from nbkit.record.adapters import adapter_for, step_count
+from nbkit.replay.fingerprint import combine, fingerprint
+from nbkit.store import keyframes as kf
+from nbkit.store.files import FINGERPRINT_WIDTH, META_FILE, is_recording
+from nbkit.store.writer import RecordingWriter
+
+SAMPLE_SIZE = 4096      # sampled coordinates per tensor for shares and histograms (all when smaller)
+SAMPLE_SEED = 20251201  # the private generator's seed: the same coordinates in every recording
+
+_live_recorders: "weakref.WeakSet[Recorder]" = weakref.WeakSet()
+
+
+@atexit.register
+def _close_all_at_exit():
+    for recorder in list(_live_recorders):
+        recorder.close()
+
+
+@dataclass
+class _Tensor:
+    name: str
+    param: torch.Tensor
+    group: int
+    index: torch.Tensor          # sampled flat coordinates; the first `probes` are the probes
+    probes: int
+    before: torch.Tensor | None = None
+    previous_grad: torch.Tensor | None = None
+    previous_norm: float = math.nan
+    previous_sample: torch.Tensor | None = None
+    state_before: dict = field(default_factory=dict)
+    stopped: str | None = None   # why this tensor is no longer recorded
+
+
+def _jsonable(value):
+    if isinstance(value, torch.Tensor):
+        return value.item() if value.numel() == 1 else value.tolist()
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if value is None or isinstance(value, (bool, int, float, str)):
+        return value
+    return repr(value)
+
+
+def _padded(values, n, width):
+    """Sampled values (or zeros where the state did not exist yet) padded with NaN to `width`."""
+    out = torch.full((width,), math.nan, dtype=torch.float64)
+    out[:n] = 0.0 if values is None else values
+    return out
+
+
+def _layer_of(name: str) -> str:
+    if name.startswith("group") and name.split(".")[0][5:].isdigit() and name.count(".") == 1:
+        return "(optimizer only)"
+    return name.rsplit(".", 1)[0] if "." in name else "(model)"
+
+
+class Recorder:
+    """Records every optimizer step of `optimizer` training `model` into a recording at `path`.
+
+    Created by nbkit.record(...); see its docstring for the arguments. Use as a context manager or
+    call close(). Like torch's hook handles, close() (alias remove()) is safe to call twice.
+    """
+
+    def __init__(self, model, optimizer, path, *, every=1, probes=64, keyframe_every=100, criterion=None,
+                 step_fn=None, curvature_every=0, noise_every=0, flush_seconds=5.0, expected_steps=None,
+                 strict=False, resume=False, overwrite=False):
+        self._validate(model, optimizer, path, every, probes, keyframe_every, curvature_every, noise_every,
+                       flush_seconds, expected_steps)
+        self.model, self.optimizer, self.criterion, self.step_fn = model, optimizer, criterion, step_fn
+        self.every, self.probes, self.keyframe_every = int(every), int(probes), int(keyframe_every)
+        self.strict = strict
+        self.recording_path = Path(path)
+        self.adapter = adapter_for(optimizer)
+        self._closed = False
+        self._failed = False
+        self._warned: set[str] = set()
+        self._depth = 0
+        self.step = 0
+        self._open_row: dict | None = None
+        self._forward_since_step = False
+        self._reported_loss = None
+        self._criterion_losses: list = []
+        self._closure_loss = None
+        self._input_prints: list = []
+        self._target_prints: list = []
+        self._last_keyframe = None
+        self._generator = torch.Generator().manual_seed(SAMPLE_SEED)
+        self._tensors, orphans, frozen = self._table(model, optimizer)
+        self._groups = [[t for t in self._tensors if t.group == g] for g in range(len(optimizer.param_groups))]
+        meta = self._meta(model, optimizer, orphans, frozen, flush_seconds, expected_steps, curvature_every,
+                          noise_every)
+        self._prepare_path(overwrite, resume)
+        self._writer = RecordingWriter(self.recording_path, meta, flush_seconds=flush_seconds)
+        self._snapshot(0)
+        self._handles = [
+            optimizer.register_step_pre_hook(self._pre_step),
+            optimizer.register_step_post_hook(self._post_step),
+            model.register_forward_pre_hook(self._before_forward, with_kwargs=True),
+        ]
+        if criterion is not None:
+            self._handles.append(criterion.register_forward_hook(self._after_criterion))
+        optimizer._nbkit_recorder = weakref.ref(self)
+        _live_recorders.add(self)
+
+    # --- set-up ---------------------------------------------------------------------------------
+    @staticmethod
+    def _validate(model, optimizer, path, every, probes, keyframe_every, curvature_every, noise_every,
+                  flush_seconds, expected_steps):
+        if not isinstance(model, torch.nn.Module):
+            raise RecorderError(f"model must be a torch.nn.Module, got {type(model).__name__}")
+        if not isinstance(optimizer, torch.optim.Optimizer):
+            raise RecorderError(f"optimizer must be a torch.optim.Optimizer, got {type(optimizer).__name__}")
+        for name, value, low in (("every", every, 1), ("probes", probes, 0), ("keyframe_every", keyframe_every, 1),
+                                 ("curvature_every", curvature_every, 0), ("noise_every", noise_every, 0)):
+            if not isinstance(value, int) or isinstance(value, bool) or value < low:
+                raise RecorderError(f"Invalid {name}: {value!r}; expected an integer >= {low}")
+        if probes > SAMPLE_SIZE:
+            raise RecorderError(f"Invalid probes: {probes}; at most {SAMPLE_SIZE} probe coordinates per tensor")
+        if not (isinstance(flush_seconds, (int, float)) and flush_seconds > 0):
+            raise RecorderError(f"Invalid flush_seconds: {flush_seconds!r}; expected a positive number of seconds")
+        if expected_steps is not None and (not isinstance(expected_steps, int) or expected_steps < 1):
+            raise RecorderError(f"Invalid expected_steps: {expected_steps!r}; expected a positive integer or None")
+        if curvature_every or noise_every:
+            raise NotImplementedError("curvature_every and noise_every arrive with nbkit.analyze; use 0 for now")
+        if not any(True for _ in model.parameters()):
+            raise RecorderError(f"The model ({type(model).__name__}) has no parameters: there is nothing to record")
+        if not any(len(g["params"]) for g in optimizer.param_groups):
+            raise RecorderError("The optimizer holds no parameters: there is nothing to record")
+        existing = getattr(optimizer, "_nbkit_recorder", None)
+        if existing is not None and existing() is not None and not existing()._closed:
+            raise RecorderError(f"This optimizer is already recorded into {str(existing().recording_path)!r}; "
+                                "close that recorder first (rec.close())")
+        for parent in Path(path).resolve().parents:
+            if is_recording(parent):
+                raise RecorderError(f"{str(path)!r} is inside the recording {str(parent)!r}; "
+                                    "choose a path outside it")
+
+    def _prepare_path(self, overwrite, resume):
+        path = self.recording_path
+        if resume:
+            raise NotImplementedError("resume=True arrives with the reliability work; start a new recording")
+        if path.exists() and any(path.iterdir()):
+            if not is_recording(path):
+                raise RecorderError(f"{str(path)!r} exists and is not an nbkit recording; "
+                                    "choose an empty or new folder (nothing there was touched)")
+            if not overwrite:
+                raise RecorderError(f"A recording already exists at {str(path)!r}; pass overwrite=True to "
+                                    "replace it or resume=True to continue it")
+            shutil.rmtree(path)
+        path.mkdir(parents=True, exist_ok=True)
+
+    def _table(self, model, optimizer):
+        names = {}
+        order = {}
+        for position, (name, p) in enumerate(model.named_parameters()):
+            names[id(p)] = name
+            order[id(p)] = position
+        tensors, in_optimizer = [], set()
+        for g, group in enumerate(optimizer.param_groups):
+            for i, p in enumerate(group["params"]):
+                in_optimizer.add(id(p))
+                n = p.numel()
+                size = min(SAMPLE_SIZE, n)
+                index = torch.randperm(n, generator=self._generator)[:size] if n > size else \
+                    torch.randperm(n, generator=self._generator)
+                tensors.append(_Tensor(names.get(id(p), f"group{g}.{i}"), p, g, index, min(self.probes, size)))
+        position = {id(t.param): order.get(id(t.param), len(order) + k) for k, t in enumerate(tensors)}
+        tensors.sort(key=lambda t: position[id(t.param)])
+        orphans = [n for n, p in model.named_parameters() if p.requires_grad and id(p) not in in_optimizer]
+        frozen = [n for n, p in model.named_parameters() if not p.requires_grad and id(p) not in in_optimizer]
+        return tensors, orphans, frozen
+
+    def _meta(self, model, optimizer, orphans, frozen, flush_seconds, expected_steps, curvature_every, noise_every):
+        index = np.full((len(self._tensors), self.probes), -1, dtype=np.int64)
+        for k, t in enumerate(self._tensors):
+            index[k, :t.probes] = t.index[:t.probes].numpy()
+        sampled = [t.name for t in self._tensors if t.param.numel() > SAMPLE_SIZE]
+        groups = []
+        for group in optimizer.param_groups:
+            hyper = {k: _jsonable(v) for k, v in group.items() if k != "params"}
+            hyper["params"] = [t.name for t in self._tensors if any(t.param is p for p in group["params"])]
+            groups.append(hyper)
+        from nbkit import __version__
+
+        return {
+            "created": datetime.datetime.now(datetime.timezone.utc).isoformat(),
+            "nbkit_version": __version__, "torch_version": torch.__version__, "numpy_version": np.__version__,
+            "python_version": sys.version.split()[0], "threads": torch.get_num_threads(),
+            "interop_threads": torch.get_num_interop_threads(), "pid": os.getpid(),
+            "model_class": type(model).__name__,
+            "optimizer": {"class": type(optimizer).__name__, "module": type(optimizer).__module__,
+                          "adapter": self.adapter.name, "defaults": _jsonable(optimizer.defaults),
+                          "first_moment": self.adapter.first_moment, "second_moment": self.adapter.second_moment,
+                          "notes": self.adapter.notes},
+            "gain_applicable": self.adapter.gain_applicable,
+            "param_groups": groups,
+            "tensors": [{"name": t.name, "shape": list(t.param.shape), "dtype": str(t.param.dtype).replace("torch.", ""),
+                         "numel": t.param.numel(), "group": t.group, "layer": _layer_of(t.name),
+                         "probes": t.probes, "sample_size": len(t.index)} for t in self._tensors],
+            "orphans": orphans, "frozen": frozen,
+            "quantities": list(QUANTITIES), "probes": self.probes, "_probe_index": index,
+            "statistics": {
+                "sample_size": SAMPLE_SIZE, "sample_seed": SAMPLE_SEED, "sampled_tensors": sampled,
+                "exact": ["grad_norm", "grad_rms", "grad_max", "weight_norm", "update_norm", "update_ratio",
+                          "grad_cosine", "update_grad_cosine", "dead_rows", "nonfinite", "weight_nonfinite",
+                          "update_nonfinite", "grad_missing"],
+                "sampled": ["gain_median", "accelerated", "damped", "reversed", "momentum_factor_median",
+                            "scale_factor_median", "residual_median", "sign_flip", "eps_share",
+                            "zero_grad_share", "lost_update_share", "state_nonfinite", "histograms"],
+                "note": f"sampled quantities use a fixed seeded sample of {SAMPLE_SIZE} coordinates per tensor "
+                        "(all coordinates of smaller tensors)",
+            },
+            "histogram_bins": HISTOGRAM_BINS, "histogram_low": dict(HISTOGRAM_LOW),
+            "every": self.every, "keyframe_every": self.keyframe_every,
+            "criterion": type(self.criterion).__name__ if self.criterion is not None else None,
+            "curvature_every": curvature_every, "noise_every": noise_every,
+            "flush_seconds": flush_seconds, "expected_steps": expected_steps, "strict": self.strict,
+            "closed": False, "parent": None,
+        }
+
+    # --- reporting ------------------------------------------------------------------------------
+    def _fail(self, what: str, exc: BaseException | None = None, *, stop: bool = True):
+        """Report a recorder problem once; stop recording; raise only in strict mode."""
+        if self.strict:
+            raise RecorderError(f"nbkit recorder: {what}") from exc
+        if what not in self._warned:
+            self._warned.add(what)
+            cause = f": {type(exc).__name__}: {exc}" if exc is not None else ""
+            action = "recording stopped; training continues" if stop else "recording continues"
+            warnings.warn(f"nbkit recorder ({self.recording_path}): {what}{cause}; {action}. "
+                          "Pass strict=True to raise instead.", RecorderWarning, stacklevel=3)
+        if stop:
+            self._failed = True
+
+    def _check_writer(self):
+        if self._writer.error is not None and not self._failed:
+            self._fail("writing the recording failed", self._writer.error)
+
+    @property
+    def active(self) -> bool:
+        return not (self._closed or self._failed)
+
+    # --- hooks ----------------------------------------------------------------------------------
+    def _before_forward(self, module, args, kwargs):
+        if not self.active:
+            return None
+        try:
+            self._finalize_row()
+            if module.training and torch.is_grad_enabled():
+                self._input_prints.append(fingerprint(args, kwargs))
+                self._forward_since_step = True
+        except Exception as exc:
+            self._fail("a forward pre-hook failed", exc)
+        return None
+
+    def _after_criterion(self, module, inputs, output):
+        if not self.active:
+            return None
+        try:
+            if torch.is_grad_enabled() and self.model.training and isinstance(output, torch.Tensor):
+                self._criterion_losses.append(output.detach())
+                if len(inputs) > 1:
+                    self._target_prints.append(fingerprint(inputs[1:]))
+        except Exception as exc:
+            self._fail("the criterion hook failed", exc)
+        return None
+
+    def _pre_step(self, optimizer, args, kwargs):
+        self._depth += 1
+        if self._depth > 1 or not self.active:
+            return None                     # a subclass calling super().step(): record once
+        try:
+            self._check_writer()
+            self._finalize_row()
+            if self._heavy(self.step):
+                self._copy_before()
+            # args holds the optimizer itself first, then step()'s own arguments
+            closure = kwargs.get("closure", args[1] if len(args) > 1 else None)
+            if closure is not None:
+                return self._wrap_closure(closure, args, kwargs)
+        except Exception as exc:
+            self._fail("the step pre-hook failed", exc)
+        return None
+
+    def _wrap_closure(self, closure, args, kwargs):
+        self._closure_loss = None
+
+        def recorded_closure():
+            loss = closure()
+            if self._closure_loss is None and loss is not None:
+                self._closure_loss = loss.detach() if isinstance(loss, torch.Tensor) else loss
+            return loss
+
+        if "closure" in kwargs:
+            return args, {**kwargs, "closure": recorded_closure}
+        return (args[0], recorded_closure, *args[2:]), kwargs
+
+    def _post_step(self, optimizer, args, kwargs):
+        self._depth -= 1
+        if self._depth > 0 or not self.active:
+            if self._depth <= 0 and not self.active:
+                self.step += 1
+            return
+        try:
+            row = self._light_row()
+            if self._heavy(self.step):
+                self._heavy_row(row)
+            self._open_row = row
+            self._forward_since_step = False
+            if (self.step + 1) % self.keyframe_every == 0:
+                self._snapshot(self.step + 1)
+        except Exception as exc:
+            self._fail(f"recording step {self.step} failed", exc)
+        finally:
+            self.step += 1
+        self._check_writer()
+
+    # --- rows -----------------------------------------------------------------------------------
+    def _heavy(self, step: int) -> bool:
+        return step % self.every == 0
+
+    def _light_row(self) -> dict:
+        if self._criterion_losses:
+            loss = float(torch.stack([l.float().mean() for l in self._criterion_losses]).mean())
+        elif self._closure_loss is not None:
+            loss = float(self._closure_loss)
+        else:
+            loss = math.nan
+        if self._reported_loss is not None:
+            loss, self._reported_loss = self._reported_loss, None
+        prints = np.stack([combine(self._input_prints), combine(self._target_prints)])
+        self._criterion_losses, self._input_prints, self._target_prints = [], [], []
+        self._closure_loss = None
+        lrs = np.array([float(g["lr"]) for g in self.optimizer.param_groups], dtype=np.float64)
+        return {"step": self.step, "loss": loss, "lr": lrs, "heavy": False, "fingerprint": prints,
+                "q": np.full((len(QUANTITIES), len(self._tensors)), np.nan, dtype=np.float32),
+                "hist": np.zeros((3, len(self._tensors), HISTOGRAM_BINS + 2), dtype=np.uint32), "probes": {}}
+
+    def _finalize_row(self):
+        if self._open_row is not None:
+            row, self._open_row = self._open_row, None
+            self._writer.put_row(row)
+
+    def loss(self, value) -> None:
+        """Report the loss: for the step about to be taken, or for the step just taken when called
+        after optimizer.step() and before the next forward pass. Wins over `criterion`."""
+        if not self.active:
+            return
+        try:
+            value = float(value.detach().float().mean()) if isinstance(value, torch.Tensor) else float(value)
+        except (TypeError, ValueError) as exc:
+            self._fail(f"rec.loss() got {value!r}, which is not a number or tensor", exc, stop=False)
+            return
+        if self._open_row is not None and not self._forward_since_step:
+            self._open_row["loss"] = value
+        else:
+            self._reported_loss = value
+
+    @torch.no_grad()
+    def _copy_before(self):
+        for t in self._tensors:
+            if t.stopped:
+                continue
+            p = t.param
+            if t.before is None:
+                t.before = torch.empty_like(p, memory_format=torch.contiguous_format)
+            elif t.before.shape != p.shape:
+                t.stopped = f"shape changed from {tuple(t.before.shape)} to {tuple(p.shape)}"
+                self._fail(f"tensor {t.name!r}: {t.stopped}; its recording stops", stop=False)
+                continue
+            t.state_before = {k: torch.take(v, t.index).double() for k, v in self._state(p).items()}
+        live = [t for t in self._tensors if not t.stopped]
+        torch._foreach_copy_([t.before for t in live], [t.param.detach() for t in live])
+
+    def _state(self, p) -> dict:
+        """The optimizer's state tensors shaped like parameter p."""
+        state = self.optimizer.state.get(p, {})
+        return {k: v for k, v in state.items()
+                if isinstance(v, torch.Tensor) and v.shape == p.shape and not v.is_sparse and k != "step"}
+
+    @torch.no_grad()
+    def _heavy_row(self, row: dict):
+        row["heavy"] = True
+        q_index = {q: i for i, q in enumerate(QUANTITIES)}
+        summary, histograms = row["q"], row["hist"]
+        positions = {id(t): k for k, t in enumerate(self._tensors)}
+        for g, members in enumerate(self._groups):
+            recorded = []
+            for t in members:
+                k = positions[id(t)]
+                grad = t.param.grad
+                if t.stopped:
+                    continue
+                if grad is None:
+                    summary[q_index["grad_missing"], k] = 1.0
+                    t.previous_grad, t.previous_sample = None, None
+                    continue
+                summary[q_index["grad_missing"], k] = 0.0
+                if grad.is_sparse:
+                    self._fail(f"tensor {t.name!r} has a sparse gradient, which is not recorded", stop=False)
+                    continue
+                recorded.append(t)
+            if not recorded:
+                continue
+            ks = [positions[id(t)] for t in recorded]
+            grads = [t.param.grad for t in recorded]
+            params = [t.param.detach() for t in recorded]
+            befores = [t.before for t in recorded]
+            S = max(len(t.index) for t in recorded)
+            index = torch.zeros((len(recorded), S), dtype=torch.int64)
+            valid = torch.zeros((len(recorded), S), dtype=torch.bool)
+            for r, t in enumerate(recorded):
+                index[r, :len(t.index)] = t.index
+                valid[r, :len(t.index)] = True
+
+            def sample(tensors):
+                return torch.stack([torch.take(x, index[r]).double() for r, x in enumerate(tensors)])
+
+            grad_s, before_s, after_s = sample(grads), sample(befores), sample(params)
+            states = [self._state(t.param) for t in recorded]
+            keys = sorted(set().union(*[s.keys() for s in states]))
+            after = {key: torch.stack([torch.take(s[key], index[r]).double() if key in s else
+                                       torch.full((S,), math.nan, dtype=torch.float64)
+                                       for r, s in enumerate(states)]) for key in keys}
+            before = {key: torch.stack([_padded(t.state_before.get(key), len(t.index), S) for t in recorded])
+                      for key in keys}
+            steps = torch.tensor([[step_count(self.optimizer.state.get(t.param, {}))] for t in recorded],
+                                 dtype=torch.float64)
+            group = self.optimizer.param_groups[g]
+            lr = float(group["lr"])
+            previous = [t.previous_grad for t in recorded]
+            previous_norms = torch.tensor([t.previous_norm for t in recorded], dtype=torch.float64)
+            whole = whole_tensor_statistics(grads, befores, params, previous, previous_norms)
+            previous_sample = None
+            if all(t.previous_sample is not None for t in recorded):
+                previous_sample = torch.stack([t.previous_sample for t in recorded])
+            sampled, hist, probe_values = sampled_statistics(
+                grad=grad_s, theta_before=before_s, theta_after=after_s, valid=valid, before=before, after=after,
+                step=steps, group=group, lr=lr, adapter=self.adapter, previous_grad=previous_sample,
+                probes=self.probes)
+            state_nonfinite = sum((~torch.isfinite(v)).sum(dim=1) for v in after.values()) if after else None
+            for name, values in {**whole, **sampled}.items():
+                if name in q_index:
+                    summary[q_index[name], ks] = values.float().numpy()
+            if state_nonfinite is not None:
+                summary[q_index["state_nonfinite"], ks] = state_nonfinite.float().numpy()
+            histograms[:, ks, :] = hist.numpy().astype(np.uint32)
+            for name, values in probe_values.items():
+                block = row["probes"].setdefault(name, np.full((len(self._tensors), self.probes), np.nan,
+                                                               dtype=np.float32))
+                width = values.shape[1]
+                block[ks, :width] = values.float().numpy()
+                for r, t in enumerate(recorded):
+                    block[ks[r], t.probes:] = np.nan
+            for r, t in enumerate(recorded):
+                if t.previous_grad is None:
+                    t.previous_grad = torch.empty_like(grads[r])
+                t.previous_grad.copy_(grads[r])
+                t.previous_norm = float(whole["grad_norm"][r])
+                t.previous_sample = grad_s[r]
+
+    # --- keyframes ------------------------------------------------------------------------------
+    def _snapshot(self, step: int):
+        if self._last_keyframe == step:
+            return
+        self._last_keyframe = step
+        extra = {t.name: t.param for t in self._tensors if t.name.startswith("group") and _layer_of(t.name) == "(optimizer only)"}
+        state = {
+            "step": step,
+            "model": self.model.state_dict(),
+            "optimizer": self.optimizer.state_dict(),
+            "extra_params": extra,
+            "rng": {"torch": torch.get_rng_state(), "numpy": np.random.get_state(), "python": random.getstate()},
+        }
+        self._writer.put_keyframe(kf.Snapshot(step, state))
+
+    # --- closing --------------------------------------------------------------------------------
+    def flush(self):
+        """Write everything recorded so far to disk (blocks until the writer has done so)."""
+        if self._closed:
+            return
+        self._finalize_row()
+        self._writer.flush()
+        self._check_writer()
+
+    def close(self):
+        """Stop recording, write the final keyframe and flush. Safe to call twice."""
+        if self._closed:
+            return
+        try:
+            for handle in self._handles:
+                handle.remove()
+            if not self._failed:
+                self._finalize_row()
+                self._snapshot(self.step)
+        except Exception as exc:
+            self._fail("closing the recording failed", exc)
+        finally:
+            self._closed = True
+            self._writer.close()
+            _live_recorders.discard(self)
+        if self._writer.error is not None and "writing the recording failed" not in self._warned:
+            self._fail("writing the recording failed", self._writer.error)
+
+    remove = close
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False
+
+    def __repr__(self):
+        state = "closed" if self._closed else ("stopped after an error" if self._failed else "recording")
+        return f"Recorder({str(self.recording_path)!r}, step {self.step}, {len(self._tensors)} tensors, {state})"

@@ -1,0 +1,1 @@
+"""Keyframe restore, batch fingerprints, replays."""

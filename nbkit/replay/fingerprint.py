@@ -1,0 +1,59 @@
+"""A cheap fingerprint of a mini-batch, so a replay can check it sees the recorded batches.
+
+Not a hash: shape, dtype, a float64 sum and a strided sample of the first tensor. Equal batches give
+equal fingerprints on the same machine and thread count; different data almost always differ in
+the sum or the sample. Layout of the vector (FINGERPRINT_WIDTH = 20 float64 values):
+  [0] number of tensors   [1] total elements   [2] CRC32 of shapes and dtypes   [3] sum
+  [4:20] 16 values sampled at an even stride from the first tensor (NaN-padded)
+"""
+from __future__ import annotations
+
+import zlib
+
+import numpy as np
+import torch
+from torch.utils._pytree import tree_flatten
+
+from nbkit.store.files import FINGERPRINT_WIDTH
+
+SAMPLES = FINGERPRINT_WIDTH - 4
+
+
+def fingerprint(*values) -> np.ndarray:
+    """Fingerprint of the tensors found (recursively) in `values`; NaN vector if there are none."""
+    out = np.full(FINGERPRINT_WIDTH, np.nan)
+    tensors = [t for t in tree_flatten(values)[0] if isinstance(t, torch.Tensor)]
+    if not tensors:
+        return out
+    with torch.no_grad():
+        description = ";".join(f"{tuple(t.shape)}:{t.dtype}" for t in tensors)
+        out[0] = len(tensors)
+        out[1] = sum(t.numel() for t in tensors)
+        out[2] = zlib.crc32(description.encode())
+        out[3] = float(sum(t.detach().sum(dtype=torch.float64) if not t.is_complex()
+                           else t.detach().abs().sum(dtype=torch.float64) for t in tensors))
+        first = tensors[0].detach().reshape(-1)
+        if first.numel():
+            stride = max(1, first.numel() // SAMPLES)
+            sample = first[::stride][:SAMPLES].to(torch.float64)
+            out[4:4 + sample.numel()] = sample.numpy()
+    return out
+
+
+def combine(prints: list[np.ndarray]) -> np.ndarray:
+    """One fingerprint for several forward passes in one step (gradient accumulation)."""
+    if not prints:
+        return np.full(FINGERPRINT_WIDTH, np.nan)
+    if len(prints) == 1:
+        return prints[0]
+    out = prints[0].copy()
+    out[0] = sum(p[0] for p in prints)
+    out[1] = sum(p[1] for p in prints)
+    out[2] = zlib.crc32(np.array([p[2] for p in prints]).tobytes())
+    out[3] = sum(p[3] for p in prints)
+    return out
+
+
+def same(a: np.ndarray, b: np.ndarray) -> bool:
+    """True when two fingerprints agree (NaN equals NaN: a missing target is missing in both)."""
+    return bool(np.array_equal(a, b, equal_nan=True))

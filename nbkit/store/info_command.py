@@ -1,0 +1,28 @@
+"""`nbkit info RUN`: what a recording holds, in a few lines."""
+from __future__ import annotations
+
+
+def add_arguments(parser):
+    parser.add_argument("run", nargs="+", help="recording folder(s)")
+
+
+def run(args) -> int:
+    from nbkit.errors import RecordingError
+    from nbkit.store.reader import load
+
+    status = 0
+    for path in args.run:
+        try:
+            recording = load(path)
+        except RecordingError as exc:
+            print(f"{path}: {exc}")
+            status = 1
+            continue
+        steps = recording.steps
+        meta = recording.meta
+        span = f"steps {steps[0]}..{steps[-1]}" if len(steps) else "no steps yet"
+        print(f"{path}: {len(steps)} recorded steps ({span}), {len(recording.tensors)} tensors, "
+              f"optimizer {meta['optimizer']['class']}, keyframes {recording.keyframes}, "
+              f"{recording.size_bytes() / 1e6:.1f} MB, "
+              f"{'closed cleanly' if recording.closed_cleanly else 'not closed cleanly (still running or crashed)'}")
+    return status

@@ -1,0 +1,236 @@
+"""Reading a recording: `nbkit.load(path)` -> Recording. Works while a recorder still writes to it."""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from nbkit.errors import RecordingError
+from nbkit.store import keyframes as kf
+from nbkit.store.files import COMMITTED_FILE, FORMAT_VERSION, META_FILE, OVERVIEW_BLOCK, read_json
+
+HISTOGRAMS = ("grad", "update", "gain")
+
+
+def load(path) -> "Recording":
+    """Open the recording at `path` (a directory written by nbkit.record or a Recorder)."""
+    if hasattr(path, "recording_path"):          # a live Recorder
+        path = path.recording_path
+    return Recording(path)
+
+
+class Recording:
+    """A finished or growing recording on disk. Call `refresh()` to see steps written since."""
+
+    def __init__(self, path):
+        self.path = Path(path)
+        if not self.path.exists():
+            raise RecordingError(f"No recording found at {str(self.path)!r}: the path does not exist")
+        if not (self.path / META_FILE).is_file():
+            raise RecordingError(f"No recording found at {str(self.path)!r}: it has no {META_FILE}. "
+                                 "Pass the folder given to nbkit.record(...).")
+        self.refresh()
+
+    # --- opening and growth ---------------------------------------------------------------------
+    def refresh(self) -> "Recording":
+        """Re-read the metadata and the committed row count (a recording may still be growing)."""
+        meta_path = self.path / META_FILE
+        try:
+            meta = read_json(meta_path)
+        except (OSError, ValueError) as exc:
+            raise RecordingError(f"Metadata file {str(meta_path)!r} is damaged ({exc}); "
+                                 "the data arrays may still be intact but cannot be interpreted without it") from exc
+        if not isinstance(meta, dict) or not isinstance(meta.get("format_version"), int):
+            raise RecordingError(f"Metadata file {str(meta_path)!r} has no integer format_version: "
+                                 "it was not written by nbkit or was tampered with")
+        if meta["format_version"] > FORMAT_VERSION:
+            raise RecordingError(f"Recording {str(self.path)!r} has format version {meta['format_version']}, "
+                                 f"newer than this nbkit reads ({FORMAT_VERSION}); upgrade nbkit")
+        for key, kind in (("tensors", list), ("quantities", list), ("probes", int)):
+            if not isinstance(meta.get(key), kind):
+                raise RecordingError(f"Metadata file {str(meta_path)!r} lacks a valid {key!r} entry "
+                                     f"(expected {kind.__name__}); it was tampered with or truncated")
+        self.meta = meta
+        committed_path = self.path / COMMITTED_FILE
+        try:
+            committed = read_json(committed_path)
+            self._rows = int(committed["rows"])
+        except (OSError, ValueError, KeyError, TypeError) as exc:
+            raise RecordingError(f"Commit file {str(committed_path)!r} is missing or damaged ({exc})") from exc
+        self.closed_cleanly = bool(committed.get("closed", False))
+        self._group = None
+        self._cache: dict = {}
+        return self
+
+    @property
+    def group(self):
+        if self._group is None:
+            import zarr
+
+            if self._rows == 0:
+                return None
+            self._group = zarr.open_group(str(self.path), mode="r", use_consolidated=False)
+        return self._group
+
+    def _read(self, name: str, selection=slice(None)) -> np.ndarray:
+        group = self.group
+        if group is None:
+            raise RecordingError(f"Recording {str(self.path)!r} holds no committed steps yet")
+        try:
+            array = group[name]
+        except KeyError as exc:
+            raise RecordingError(f"Recording {str(self.path)!r} has no array {name!r}") from exc
+        try:
+            return array[selection]
+        except Exception as exc:    # zarr reports checksum and decode failures as several types
+            raise RecordingError(f"Data of {name!r} in {str(self.path)!r} is damaged ({exc}); "
+                                 "a chunk failed its CRC32C checksum or could not be decoded. Other arrays "
+                                 "and other steps can still be read.") from exc
+
+    def _rows_of(self, name: str, extra=()) -> np.ndarray:
+        return self._read(name, (slice(0, self._rows), *extra))
+
+    # --- the public API -------------------------------------------------------------------------
+    def __repr__(self):
+        state = "closed" if self.closed_cleanly else "open or not closed cleanly"
+        return (f"Recording({str(self.path)!r}: {self._rows} steps, {len(self.tensors)} tensors, "
+                f"{self.meta.get('optimizer', {}).get('class', '?')}, {state})")
+
+    def __len__(self):
+        return self._rows
+
+    @property
+    def steps(self) -> np.ndarray:
+        if self._rows == 0:
+            return np.zeros(0, dtype=np.int64)
+        return self._rows_of("step")
+
+    @property
+    def tensors(self) -> list[str]:
+        return [t["name"] for t in self.meta["tensors"]]
+
+    @property
+    def layers(self) -> dict[str, list[str]]:
+        layers: dict[str, list[str]] = {}
+        for t in self.meta["tensors"]:
+            layers.setdefault(t["layer"], []).append(t["name"])
+        return layers
+
+    @property
+    def quantities(self) -> list[str]:
+        return list(self.meta["quantities"])
+
+    def tensor_index(self, tensor: str) -> int:
+        try:
+            return self.tensors.index(tensor)
+        except ValueError:
+            raise RecordingError(f"No tensor named {tensor!r} in this recording; "
+                                 f"tensors are {self.tensors[:8]}{' ...' if len(self.tensors) > 8 else ''}") from None
+
+    def _check_quantity(self, q: str) -> None:
+        if q not in self.meta["quantities"]:
+            raise RecordingError(f"Unknown quantity {q!r}; run.quantities lists the valid names: "
+                                 f"{', '.join(self.meta['quantities'])}")
+
+    def series(self, q: str, tensor: str | None = None, *, rows: slice | None = None) -> np.ndarray:
+        """Quantity `q` per step: (steps, tensors), or (steps,) for one tensor."""
+        self._check_quantity(q)
+        if self._rows == 0:
+            return np.zeros((0,) if tensor else (0, len(self.tensors)), dtype=np.float32)
+        rows = _clip(rows, self._rows)
+        if tensor is None:
+            return self._read(f"q/{q}", (rows,))
+        return self._read(f"q/{q}", (rows, self.tensor_index(tensor)))
+
+    def overview(self, q: str) -> tuple[np.ndarray, np.ndarray]:
+        """(block start rows, (blocks, tensors, 2) min/max) over blocks of OVERVIEW_BLOCK steps."""
+        blocks = -(-self._rows // OVERVIEW_BLOCK)
+        if q == "loss":
+            data = self._read("overview/loss", slice(0, blocks))
+        else:
+            self._check_quantity(q)
+            data = self._read(f"overview/{q}", slice(0, blocks))
+        return np.arange(blocks) * OVERVIEW_BLOCK, data
+
+    @property
+    def loss(self) -> np.ndarray:
+        return self._rows_of("loss") if self._rows else np.zeros(0)
+
+    @property
+    def lr(self) -> np.ndarray:
+        return self._rows_of("lr") if self._rows else np.zeros((0, len(self.meta.get("param_groups", []))))
+
+    @property
+    def heavy(self) -> np.ndarray:
+        """True at steps whose per-tensor quantities were computed (every=N records 1 step in N)."""
+        return self._rows_of("heavy") if self._rows else np.zeros(0, dtype=bool)
+
+    @property
+    def fingerprints(self) -> np.ndarray:
+        """(steps, 2, width) batch fingerprints: row 0 the model inputs, row 1 the targets."""
+        return self._rows_of("fingerprint")
+
+    def probe_index(self, tensor: str) -> np.ndarray:
+        i = self.tensor_index(tensor)
+        index = self._cache.get("probe_index")
+        if index is None:
+            index = self._cache["probe_index"] = self._read("probe_index")
+        return index[i][index[i] >= 0]
+
+    def probes(self, tensor: str, *, rows: slice | None = None) -> dict[str, np.ndarray]:
+        """Probe coordinates of `tensor`: "index" and every recorded field, each (steps, probes)."""
+        i = self.tensor_index(tensor)
+        index = self.probe_index(tensor)
+        rows = _clip(rows, self._rows)
+        n = len(range(*rows.indices(self._rows)))
+        out = {"index": np.broadcast_to(index, (n, len(index)))}
+        for name in self.meta.get("probe_fields", []):
+            out[name] = self._read(f"probe/{name}", (rows, i, slice(0, len(index))))
+        return out
+
+    def histogram(self, q: str, tensor: str, *, rows: slice | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """(bin edges in log2 units, counts (steps, bins)) of finite non-zero |values| of q."""
+        if q not in HISTOGRAMS:
+            raise RecordingError(f"No histogram of {q!r}; histograms exist for {', '.join(HISTOGRAMS)}")
+        bins = self.meta["histogram_bins"]
+        low = self.meta["histogram_low"][q]
+        counts = self._read(f"hist/{q}", (_clip(rows, self._rows), self.tensor_index(tensor), slice(0, bins)))
+        return np.arange(low, low + bins + 1, dtype=np.float64), counts
+
+    @property
+    def keyframes(self) -> list[int]:
+        return kf.list_keyframes(self.path)
+
+    def keyframe(self, step: int) -> dict:
+        """Everything stored at a keyframe: model, optimizer, rng, and orphan tensors."""
+        return kf.read_keyframe(self.path, step)
+
+    def state_at(self, step: int):
+        """(model_state_dict, optimizer_state_dict) at keyframe `step`, ready for load_state_dict."""
+        state = self.keyframe(step)
+        return state["model"], state["optimizer"]
+
+    def findings(self, **thresholds):
+        from nbkit.analyze.findings import find
+
+        return find(self, **thresholds)
+
+    def curvature(self, model, step_fn, batch):
+        from nbkit.analyze.curvature import fill_keyframe_sharpness
+
+        return fill_keyframe_sharpness(self, model, step_fn, batch)
+
+    def rows_for_steps(self, first: int, last: int) -> slice:
+        """Row slice covering optimizer steps first..last (inclusive)."""
+        steps = self.steps
+        return slice(int(np.searchsorted(steps, first)), int(np.searchsorted(steps, last, side="right")))
+
+    def size_bytes(self) -> int:
+        return sum(f.stat().st_size for f in self.path.rglob("*") if f.is_file())
+
+
+def _clip(rows: slice | None, n: int) -> slice:
+    if rows is None:
+        return slice(0, n)
+    start, stop, _ = rows.indices(n)
+    return slice(start, stop)

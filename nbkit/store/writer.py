@@ -1,0 +1,293 @@
+"""The recording writer: buffers rows and writes whole chunks from a background thread.
+
+The training thread only puts plain NumPy rows and keyframe snapshots on a queue. The writer thread
+appends them to Zarr arrays (preallocated, grown by doubling, so a flush rewrites no metadata),
+then publishes the number of committed rows. A reader trusts only committed rows, so it never sees
+a torn step. Errors are kept and reported by the recorder; they never reach the training loop
+unless the user asked for strict mode.
+"""
+from __future__ import annotations
+
+import queue
+import shutil
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+
+from nbkit.store import keyframes as kf
+from nbkit.store.files import (COMMITTED_FILE, DETAIL_CHUNK, FINGERPRINT_WIDTH, FORMAT_VERSION, META_FILE,
+                               OVERVIEW_BLOCK, STEP_CHUNK, write_json_atomic)
+
+KEYFRAME_BUDGET_BYTES = 1 << 30   # above this estimated total, older keyframes are thinned
+KEYFRAMES_KEPT_RECENT = 4         # the newest keyframes are never thinned
+QUEUE_ROWS = 20_000               # rows waiting for the writer before new rows are dropped
+
+
+def _codecs():
+    from zarr.codecs import Crc32cCodec, ZstdCodec
+
+    return [ZstdCodec(level=1), Crc32cCodec()]
+
+
+class RecordingWriter:
+    """Owns one recording directory while it is being written."""
+
+    def __init__(self, path: Path, meta: dict, *, flush_seconds: float = 5.0, resume_rows: int = 0,
+                 start_thread: bool = True):
+        import zarr
+
+        self.path = Path(path)
+        self.meta = meta
+        self.flush_seconds = flush_seconds
+        self.error: BaseException | None = None
+        self._queue: queue.Queue = queue.Queue()
+        self._pending = 0
+        self._buffer: list[dict] = []
+        self._rows = resume_rows              # rows committed on disk
+        self._capacity = 0
+        self._last_flush = time.monotonic()
+        self._block_rows: list[np.ndarray] = []   # summaries of the current overview block
+        self._block_loss: list[float] = []
+        self.dropped_rows = 0
+        self.meta.setdefault("format_version", FORMAT_VERSION)
+        self.meta.setdefault("keyframe_retention", {"budget_bytes": KEYFRAME_BUDGET_BYTES,
+                                                    "kept_recent": KEYFRAMES_KEPT_RECENT, "thinned": []})
+        self._group = zarr.open_group(str(self.path), mode="a", use_consolidated=False)
+        self._arrays = dict(self._group.arrays()) if resume_rows else {}
+        if resume_rows:
+            self._capacity = self._arrays["step"].shape[0]
+            self._arrays = {name: self._group[name] for name in self._array_names()}
+            self._block_rows, self._block_loss = self._reload_block()
+        write_json_atomic(self.path / META_FILE, self.meta)
+        self._publish(closed=False)
+        self._thread = threading.Thread(target=self._run, name=f"nbkit-writer:{self.path.name}", daemon=True)
+        if start_thread:
+            self._thread.start()
+
+    # --- the training thread's side -------------------------------------------------------------
+    def put_row(self, row: dict) -> None:
+        if self._pending >= QUEUE_ROWS:
+            self.dropped_rows += 1
+            return
+        self._pending += 1
+        self._queue.put(("row", row))
+
+    def put_keyframe(self, snapshot: kf.Snapshot) -> None:
+        self._queue.put(("keyframe", snapshot))
+
+    def update_meta(self, **changes) -> None:
+        self._queue.put(("meta", changes))
+
+    def flush(self, timeout: float | None = 60.0) -> None:
+        done = threading.Event()
+        self._queue.put(("flush", done))
+        done.wait(timeout)
+
+    def close(self, timeout: float | None = 120.0) -> None:
+        done = threading.Event()
+        self._queue.put(("close", done))
+        if self._thread.is_alive():
+            done.wait(timeout)
+        else:
+            self._run()                      # thread never started (tests) or already gone
+
+    # --- the writer thread ----------------------------------------------------------------------
+    def _run(self) -> None:
+        closed = False
+        while not closed:
+            timeout = max(0.05, self.flush_seconds - (time.monotonic() - self._last_flush))
+            try:
+                kind, item = self._queue.get(timeout=timeout)
+            except queue.Empty:
+                kind, item = "tick", None
+            try:
+                closed = self._handle(kind, item)
+            except BaseException as exc:       # kept for the recorder to report; keep draining
+                if self.error is None:
+                    self.error = exc
+                if kind in ("flush", "close"):
+                    item.set()
+                closed = kind == "close"
+
+    def _handle(self, kind, item) -> bool:
+        if kind == "row":
+            self._pending -= 1
+            if self.error is None:
+                self._buffer.append(item)
+        elif kind == "keyframe":
+            if self.error is None:
+                self._write_keyframe(item)
+        elif kind == "meta":
+            self.meta.update(item)
+            write_json_atomic(self.path / META_FILE, self.meta)
+        due = (len(self._buffer) >= STEP_CHUNK
+               or (self._buffer and time.monotonic() - self._last_flush >= self.flush_seconds))
+        if kind in ("flush", "close") or due:
+            if self.error is None:
+                self._write_rows()
+            self._last_flush = time.monotonic()
+        if kind == "close":
+            if self.error is None:
+                self.meta["closed"] = True
+                write_json_atomic(self.path / META_FILE, self.meta)
+                self._publish(closed=True)
+            item.set()
+            return True
+        if kind == "flush":
+            item.set()
+        return False
+
+    # --- arrays ---------------------------------------------------------------------------------
+    def _array_names(self):
+        names = ["step", "loss", "lr", "heavy", "fingerprint", "overview/loss"]
+        names += [f"q/{q}" for q in self.meta["quantities"]]
+        names += [f"overview/{q}" for q in self.meta["quantities"]]
+        names += [f"hist/{h}" for h in ("grad", "update", "gain")]
+        names += [f"probe/{f}" for f in self.meta.get("probe_fields", [])]
+        return names
+
+    def _create_arrays(self, row: dict) -> None:
+        T = len(self.meta["tensors"])
+        G = len(row["lr"])
+        P = self.meta["probes"]
+        specs = {
+            "step": ((), "int64", STEP_CHUNK, -1),
+            "loss": ((), "float64", STEP_CHUNK, np.nan),
+            "lr": ((G,), "float64", STEP_CHUNK, np.nan),
+            "heavy": ((), "bool", STEP_CHUNK, False),
+            "fingerprint": ((2, FINGERPRINT_WIDTH), "float64", STEP_CHUNK, np.nan),
+        }
+        for q in self.meta["quantities"]:
+            specs[f"q/{q}"] = ((T,), "float32", STEP_CHUNK, np.nan)
+        for h in ("grad", "update", "gain"):
+            specs[f"hist/{h}"] = ((T, row["hist"].shape[-1]), "uint32", DETAIL_CHUNK, 0)
+        self.meta["probe_fields"] = sorted(row["probes"])
+        for name in self.meta["probe_fields"]:
+            specs[f"probe/{name}"] = ((T, P), "float32", DETAIL_CHUNK, np.nan)
+        capacity = STEP_CHUNK
+        for name, (tail, dtype, chunk, fill) in specs.items():
+            self._arrays[name] = self._group.create_array(
+                name, shape=(capacity, *tail), chunks=(chunk, *tail), dtype=dtype, fill_value=fill,
+                compressors=_codecs(), overwrite=True)
+        for name, tail in [("overview/loss", (2,))] + [(f"overview/{q}", (T, 2)) for q in self.meta["quantities"]]:
+            self._arrays[name] = self._group.create_array(
+                name, shape=(capacity // OVERVIEW_BLOCK + 1, *tail), chunks=(256, *tail), dtype="float32",
+                fill_value=np.nan, compressors=_codecs(), overwrite=True)
+        index = self._group.create_array("probe_index", shape=(T, P), chunks=(T, P), dtype="int64",
+                                         fill_value=-1, compressors=_codecs(), overwrite=True)
+        index[...] = self.meta.pop("_probe_index")
+        self._capacity = capacity
+        write_json_atomic(self.path / META_FILE, self.meta)
+
+    def _grow(self, needed: int) -> None:
+        capacity = self._capacity
+        while capacity < needed:
+            capacity *= 2
+        for name, array in self._arrays.items():
+            rows = capacity // OVERVIEW_BLOCK + 1 if name.startswith("overview/") else capacity
+            array.resize((rows, *array.shape[1:]))
+        self._capacity = capacity
+
+    def _write_rows(self) -> None:
+        if not self._buffer:
+            return
+        rows, self._buffer = self._buffer, []
+        if not self._arrays:
+            self._create_arrays(rows[0])
+        start, stop = self._rows, self._rows + len(rows)
+        if stop > self._capacity:
+            self._grow(stop)
+        a = self._arrays
+        a["step"][start:stop] = np.array([r["step"] for r in rows], dtype=np.int64)
+        a["loss"][start:stop] = np.array([r["loss"] for r in rows], dtype=np.float64)
+        a["lr"][start:stop] = np.stack([r["lr"] for r in rows])
+        a["heavy"][start:stop] = np.array([r["heavy"] for r in rows])
+        a["fingerprint"][start:stop] = np.stack([r["fingerprint"] for r in rows])
+        summaries = np.stack([r["q"] for r in rows])                     # (rows, Q, T)
+        for i, q in enumerate(self.meta["quantities"]):
+            a[f"q/{q}"][start:stop] = summaries[:, i]
+        for h_index, h in enumerate(("grad", "update", "gain")):
+            a[f"hist/{h}"][start:stop] = np.stack([r["hist"][h_index] for r in rows])
+        for name in self.meta["probe_fields"]:
+            missing = np.full(a[f"probe/{name}"].shape[1:], np.nan, dtype=np.float32)
+            a[f"probe/{name}"][start:stop] = np.stack([r["probes"].get(name, missing) for r in rows])
+        self._write_overview(start, summaries, [r["loss"] for r in rows])
+        self._rows = stop
+        self._publish(closed=False, last_step=rows[-1]["step"])
+
+    def _write_overview(self, start: int, summaries: np.ndarray, losses: list[float]) -> None:
+        """Min/max of every summary over blocks of OVERVIEW_BLOCK rows, rewritten as blocks fill."""
+        row = start
+        for i in range(len(summaries)):
+            self._block_rows.append(summaries[i])
+            self._block_loss.append(losses[i])
+            row += 1
+            if row % OVERVIEW_BLOCK == 0 or i == len(summaries) - 1:
+                block = (row - 1) // OVERVIEW_BLOCK
+                values = np.stack(self._block_rows)                       # (rows, Q, T)
+                loss = np.array(self._block_loss, dtype=np.float64)
+                with np.errstate(all="ignore"), _quiet_nan_warnings():
+                    low, high = np.nanmin(values, axis=0), np.nanmax(values, axis=0)   # (Q, T)
+                    loss_range = [np.nanmin(loss), np.nanmax(loss)] if np.isfinite(loss).any() else [np.nan, np.nan]
+                for qi, q in enumerate(self.meta["quantities"]):
+                    self._arrays[f"overview/{q}"][block] = np.stack([low[qi], high[qi]], axis=-1)
+                self._arrays["overview/loss"][block] = np.array(loss_range, dtype=np.float32)
+                if row % OVERVIEW_BLOCK == 0:
+                    self._block_rows, self._block_loss = [], []
+
+    def _reload_block(self):
+        """On resume, the rows of the partly filled overview block are read back."""
+        start = (self._rows // OVERVIEW_BLOCK) * OVERVIEW_BLOCK
+        if start == self._rows:
+            return [], []
+        quantities = self.meta["quantities"]
+        values = np.stack([self._arrays[f"q/{q}"][start:self._rows] for q in quantities], axis=1)
+        return list(values), list(self._arrays["loss"][start:self._rows])
+
+    def _publish(self, *, closed: bool, last_step: int | None = None) -> None:
+        data = {"rows": self._rows, "closed": closed, "time": time.time()}
+        if last_step is not None:
+            data["last_step"] = int(last_step)
+        write_json_atomic(self.path / COMMITTED_FILE, data)
+
+    # --- keyframes ------------------------------------------------------------------------------
+    def _write_keyframe(self, snapshot: kf.Snapshot) -> None:
+        kf.write_keyframe(self.path, snapshot)
+        self._thin_keyframes()
+
+    def _thin_keyframes(self) -> None:
+        """Keep step 0 and the newest keyframes; drop every second older one while over budget."""
+        retention = self.meta["keyframe_retention"]
+        steps = kf.list_keyframes(self.path)
+        sizes = {s: kf.keyframe_bytes(self.path, s) for s in steps}
+        thinned = []
+        while sum(sizes.values()) > retention["budget_bytes"]:
+            older = [s for s in steps[1:-retention["kept_recent"]]]
+            if not older:
+                break
+            for s in older[1::2] or older[:1]:
+                kf.delete_keyframe(self.path, s)
+                thinned.append(s)
+                sizes.pop(s)
+            steps = sorted(sizes)
+        if thinned:
+            retention["thinned"] = sorted(retention["thinned"] + thinned)
+            write_json_atomic(self.path / META_FILE, self.meta)
+
+
+class _quiet_nan_warnings:
+    def __enter__(self):
+        import warnings
+
+        self._ctx = warnings.catch_warnings()
+        self._ctx.__enter__()
+        warnings.simplefilter("ignore", RuntimeWarning)
+
+    def __exit__(self, *exc):
+        self._ctx.__exit__(*exc)
+
+
+def remove_recording(path: Path) -> None:
+    shutil.rmtree(path)
