@@ -91,7 +91,7 @@ class Recorder:
 
     def __init__(self, model, optimizer, path, *, every=1, probes=64, keyframe_every=100, criterion=None,
                  step_fn=None, curvature_every=0, noise_every=0, flush_seconds=5.0, expected_steps=None,
-                 strict=False, resume=False, overwrite=False):
+                 strict=False, resume=False, overwrite=False, _extra_meta=None):
         self._validate(model, optimizer, path, every, probes, keyframe_every, curvature_every, noise_every,
                        flush_seconds, expected_steps)
         self.model, self.optimizer, self.criterion, self.step_fn = model, optimizer, criterion, step_fn
@@ -112,11 +112,17 @@ class Recorder:
         self._input_prints: list = []
         self._target_prints: list = []
         self._last_keyframe = None
+        # Curvature / noise estimates during recording (nbkit.analyze.during_recording) need the
+        # step's batch: the last training forward's inputs and the criterion's targets.
+        self._analysis = None
+        self._last_inputs = None      # (args, kwargs) of the last training-mode forward
+        self._last_targets = None     # criterion inputs after the prediction
         self._generator = torch.Generator().manual_seed(SAMPLE_SEED)
         self._tensors, orphans, frozen = self._table(model, optimizer)
         self._groups = [[t for t in self._tensors if t.group == g] for g in range(len(optimizer.param_groups))]
         meta = self._meta(model, optimizer, orphans, frozen, flush_seconds, expected_steps, curvature_every,
                           noise_every)
+        meta.update(_extra_meta or {})      # replays add their parent recording and start step
         self._prepare_path(overwrite, resume)
         self._writer = RecordingWriter(self.recording_path, meta, flush_seconds=flush_seconds)
         self._snapshot(0)
@@ -276,6 +282,8 @@ class Recorder:
             self._finalize_row()
             if module.training and torch.is_grad_enabled():
                 self._input_prints.append(fingerprint(args, kwargs))
+                if self._analysis is not None:
+                    self._last_inputs = (args, kwargs)
                 self._forward_since_step = True
         except Exception as exc:
             self._fail("a forward pre-hook failed", exc)
@@ -289,6 +297,8 @@ class Recorder:
                 self._criterion_losses.append(output.detach())
                 if len(inputs) > 1:
                     self._target_prints.append(fingerprint(inputs[1:]))
+                    if self._analysis is not None:
+                        self._last_targets = inputs[1:]
         except Exception as exc:
             self._fail("the criterion hook failed", exc)
         return None
@@ -333,6 +343,8 @@ class Recorder:
             row = self._light_row()
             if self._heavy(self.step):
                 self._heavy_row(row)
+            if self._analysis is not None:
+                self._analysis.after_step(self, row)     # may fill row["q"] sharpness / noise_scale
             self._open_row = row
             self._forward_since_step = False
             if (self.step + 1) % self.keyframe_every == 0:

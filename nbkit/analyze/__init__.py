@@ -1,0 +1,1 @@
+"""Curvature, gradient noise, findings and loss-landscape slices: pure analysis of recordings."""
