@@ -91,7 +91,7 @@ class Recorder:
 
     def __init__(self, model, optimizer, path, *, every=1, probes=64, keyframe_every=100, criterion=None,
                  step_fn=None, curvature_every=0, noise_every=0, flush_seconds=5.0, expected_steps=None,
-                 strict=False, resume=False, overwrite=False, _extra_meta=None):
+                 strict=False, resume=False, overwrite=False, _extra_meta=None, _first_step=0):
         self._validate(model, optimizer, path, every, probes, keyframe_every, curvature_every, noise_every,
                        flush_seconds, expected_steps)
         self.model, self.optimizer, self.criterion, self.step_fn = model, optimizer, criterion, step_fn
@@ -103,7 +103,7 @@ class Recorder:
         self._failed = False
         self._warned: set[str] = set()
         self._depth = 0
-        self.step = 0
+        self.step = int(_first_step)    # a replay keeps its parent's step numbering
         self._open_row: dict | None = None
         self._forward_since_step = False
         self._reported_loss = None
@@ -125,7 +125,7 @@ class Recorder:
         meta.update(_extra_meta or {})      # replays add their parent recording and start step
         self._prepare_path(overwrite, resume)
         self._writer = RecordingWriter(self.recording_path, meta, flush_seconds=flush_seconds)
-        self._snapshot(0)
+        self._snapshot(self.step)
         self._handles = [
             optimizer.register_step_pre_hook(self._pre_step),
             optimizer.register_step_post_hook(self._post_step),
