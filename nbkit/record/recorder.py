@@ -28,7 +28,7 @@ from nbkit.record.adapters import adapter_for, step_count
 from nbkit.replay.fingerprint import combine, fingerprint
 from nbkit.store import keyframes as kf
 from nbkit.store.files import FINGERPRINT_WIDTH, META_FILE, is_recording
-from nbkit.store.writer import RecordingWriter
+from nbkit.store.writer import RecordingWriter, estimate_recording_bytes, plan_resume
 
 SAMPLE_SIZE = 4096      # sampled coordinates per tensor for shares and histograms (all when smaller)
 SAMPLE_SEED = 20251201  # the private generator's seed: the same coordinates in every recording
@@ -123,9 +123,25 @@ class Recorder:
         meta = self._meta(model, optimizer, orphans, frozen, flush_seconds, expected_steps, curvature_every,
                           noise_every)
         meta.update(_extra_meta or {})      # replays add their parent recording and start step
-        self._prepare_path(overwrite, resume)
-        self._writer = RecordingWriter(self.recording_path, meta, flush_seconds=flush_seconds)
-        self._snapshot(self.step)
+        self._check_disk(meta, expected_steps)     # before _prepare_path may remove an old recording
+        plan = self._prepare_path(overwrite, resume)
+        if plan is not None:                # resume: steps continue, the old metadata is kept
+            try:
+                meta = plan.merged_meta(meta)
+            except ValueError as exc:
+                raise RecorderError(f"Cannot resume the recording at {str(self.recording_path)!r}: {exc}. "
+                                    "Resume only with the same model, optimizer and settings, or record "
+                                    "into a new path") from None
+            self.step = plan.next_step
+        try:
+            self._writer = RecordingWriter(self.recording_path, meta, flush_seconds=flush_seconds, resume=plan)
+        except OSError as exc:
+            raise RecorderError(f"Cannot write a recording at {str(self.recording_path)!r} "
+                                f"({type(exc).__name__}: {exc}); choose a writable folder with free space") from exc
+        try:
+            self._snapshot(self.step)
+        except Exception as exc:            # e.g. optimizer state a keyframe cannot hold: rows go on
+            self._fail(f"the keyframe at step {self.step} could not be taken", exc, stop=False)
         self._handles = [
             optimizer.register_step_pre_hook(self._pre_step),
             optimizer.register_step_post_hook(self._post_step),
@@ -170,9 +186,23 @@ class Recorder:
                                     "choose a path outside it")
 
     def _prepare_path(self, overwrite, resume):
+        """Make the folder ready; with resume, return the plan for continuing the recording there."""
         path = self.recording_path
-        if resume:
-            raise NotImplementedError("resume=True arrives with the reliability work; start a new recording")
+        if resume is not False and resume is not None and is_recording(path):
+            if overwrite:
+                raise RecorderError("Pass either resume=True or overwrite=True, not both")
+            # resume=True: restart at the optimizer's own step count when it keeps one (Adam family),
+            # else right after the last committed step; an int names the restart step explicitly.
+            restart = None if resume is True else int(resume)
+            if restart is None:
+                counts = {step_count(s) for s in self.optimizer.state.values()}
+                if len(counts) == 1 and math.isfinite(next(iter(counts))):
+                    restart = int(next(iter(counts)))
+            try:
+                return plan_resume(path, restart)
+            except (OSError, ValueError, KeyError, TypeError) as exc:
+                raise RecorderError(f"Cannot resume the recording at {str(path)!r}: it is damaged ({exc}); "
+                                    "nbkit.load() says what is readable; record into a new path") from exc
         if path.exists() and any(path.iterdir()):
             if not is_recording(path):
                 raise RecorderError(f"{str(path)!r} exists and is not an nbkit recording; "
@@ -181,7 +211,28 @@ class Recorder:
                 raise RecorderError(f"A recording already exists at {str(path)!r}; pass overwrite=True to "
                                     "replace it or resume=True to continue it")
             shutil.rmtree(path)
-        path.mkdir(parents=True, exist_ok=True)
+        try:
+            path.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise RecorderError(f"Cannot create the recording folder {str(path)!r} ({type(exc).__name__}: {exc}); "
+                                "choose a writable location") from exc
+        return None
+
+    def _check_disk(self, meta, expected_steps):
+        """Refuse to start when the estimated size for expected_steps exceeds the free disk space."""
+        if expected_steps is None:
+            return
+        states = 1 + sum(m is not None for m in (self.adapter.first_moment, self.adapter.second_moment))
+        estimate = estimate_recording_bytes(meta, expected_steps, state_copies=states)
+        meta["size_estimate"] = estimate
+        existing = next(p for p in (self.recording_path.resolve(), *self.recording_path.resolve().parents) if p.exists())
+        free = shutil.disk_usage(existing).free
+        if estimate["total"] > free:
+            raise RecorderError(
+                f"A recording of {expected_steps} steps at {str(self.recording_path)!r} needs about "
+                f"{estimate['total'] / 2**20:.0f} MiB ({estimate['rows'] / 2**20:.0f} MiB of rows, "
+                f"{estimate['keyframes'] / 2**20:.0f} MiB of keyframes) but only {free / 2**20:.0f} MiB are free. "
+                "Free disk space, record into another disk, or raise every / keyframe_every or lower probes")
 
     def _table(self, model, optimizer):
         names = {}

@@ -23,6 +23,7 @@ from nbkit.store.files import (COMMITTED_FILE, DETAIL_CHUNK, FINGERPRINT_WIDTH, 
 KEYFRAME_BUDGET_BYTES = 1 << 30   # above this estimated total, older keyframes are thinned
 KEYFRAMES_KEPT_RECENT = 4         # the newest keyframes are never thinned
 QUEUE_ROWS = 20_000               # rows waiting for the writer before new rows are dropped
+ROW_ARRAYS = ("step", "loss", "lr", "heavy", "fingerprint")   # every recording has these
 
 
 def _codecs():
@@ -34,9 +35,11 @@ def _codecs():
 class RecordingWriter:
     """Owns one recording directory while it is being written."""
 
-    def __init__(self, path: Path, meta: dict, *, flush_seconds: float = 5.0, resume_rows: int = 0,
+    def __init__(self, path: Path, meta: dict, *, flush_seconds: float = 5.0, resume: "ResumePlan | None" = None,
                  start_thread: bool = True):
         import zarr
+
+        resume_rows = resume.rows if resume is not None else 0
 
         self.path = Path(path)
         self.meta = meta
@@ -46,20 +49,26 @@ class RecordingWriter:
         self._pending = 0
         self._buffer: list[dict] = []
         self._rows = resume_rows              # rows committed on disk
+        self._last_step = resume.last_step if resume is not None else None
         self._capacity = 0
         self._last_flush = time.monotonic()
         self._block_rows: list[np.ndarray] = []   # summaries of the current overview block
         self._block_loss: list[float] = []
         self.dropped_rows = 0
+        self._local: list[tuple[int, np.ndarray]] = []    # (step, (ranks, tensors, 1 + probes)) rows
+        self._local_rows = resume.local_rows if resume is not None else 0
         self.meta.setdefault("format_version", FORMAT_VERSION)
         self.meta.setdefault("keyframe_retention", {"budget_bytes": KEYFRAME_BUDGET_BYTES,
                                                     "kept_recent": KEYFRAMES_KEPT_RECENT, "thinned": []})
         self._group = zarr.open_group(str(self.path), mode="a", use_consolidated=False)
         self._arrays = dict(self._group.arrays()) if resume_rows else {}
         if resume_rows:
-            self._capacity = self._arrays["step"].shape[0]
             self._arrays = {name: self._group[name] for name in self._array_names()}
+            # a crash during _grow can leave arrays of different lengths: the shortest one bounds all
+            self._capacity = min(self._arrays[name].shape[0] for name in self._arrays if not name.startswith("overview/"))
             self._block_rows, self._block_loss = self._reload_block()
+            if self._local_rows:
+                self._arrays.update({name: self._group[name] for name in LOCAL_ARRAYS})
         write_json_atomic(self.path / META_FILE, self.meta)
         self._publish(closed=False)
         self._thread = threading.Thread(target=self._run, name=f"nbkit-writer:{self.path.name}", daemon=True)
@@ -73,6 +82,10 @@ class RecordingWriter:
             return
         self._pending += 1
         self._queue.put(("row", row))
+
+    def put_local(self, step: int, values: np.ndarray) -> None:
+        """Per-rank local gradient statistics of one step (nbkit.record.distributed)."""
+        self._queue.put(("local", (step, values)))
 
     def put_keyframe(self, snapshot: kf.Snapshot) -> None:
         self._queue.put(("keyframe", snapshot))
@@ -119,6 +132,9 @@ class RecordingWriter:
         elif kind == "keyframe":
             if self.error is None:
                 self._write_keyframe(item)
+        elif kind == "local":
+            if self.error is None:
+                self._local.append(item)
         elif kind == "meta":
             self.meta.update(item)
             write_json_atomic(self.path / META_FILE, self.meta)
@@ -133,11 +149,22 @@ class RecordingWriter:
                 self.meta["closed"] = True
                 write_json_atomic(self.path / META_FILE, self.meta)
                 self._publish(closed=True)
+            else:
+                self._note_error()
             item.set()
             return True
         if kind == "flush":
             item.set()
         return False
+
+    def _note_error(self) -> None:
+        """Best effort: say in the metadata why the recording stopped (the disk may still refuse)."""
+        try:
+            self.meta["writer_error"] = f"{type(self.error).__name__}: {self.error}"
+            self.meta["writer_error_after_rows"] = self._rows
+            write_json_atomic(self.path / META_FILE, self.meta)
+        except Exception:
+            pass
 
     # --- arrays ---------------------------------------------------------------------------------
     def _array_names(self):
@@ -186,12 +213,17 @@ class RecordingWriter:
         while capacity < needed:
             capacity *= 2
         for name, array in self._arrays.items():
+            if name in LOCAL_ARRAYS:
+                continue                      # grown by _write_local on their own count
             rows = capacity // OVERVIEW_BLOCK + 1 if name.startswith("overview/") else capacity
             array.resize((rows, *array.shape[1:]))
         self._capacity = capacity
 
     def _write_rows(self) -> None:
+        wrote_local = self._write_local()
         if not self._buffer:
+            if wrote_local:
+                self._publish(closed=False)
             return
         rows, self._buffer = self._buffer, []
         if not self._arrays:
@@ -247,9 +279,11 @@ class RecordingWriter:
         return list(values), list(self._arrays["loss"][start:self._rows])
 
     def _publish(self, *, closed: bool, last_step: int | None = None) -> None:
-        data = {"rows": self._rows, "closed": closed, "time": time.time()}
+        data = {"rows": self._rows, "closed": closed, "time": time.time(), "local_rows": self._local_rows}
+        if last_step is None and self._rows:
+            last_step = self._last_step
         if last_step is not None:
-            data["last_step"] = int(last_step)
+            data["last_step"] = self._last_step = int(last_step)
         write_json_atomic(self.path / COMMITTED_FILE, data)
 
     # --- keyframes ------------------------------------------------------------------------------
@@ -277,6 +311,35 @@ class RecordingWriter:
             write_json_atomic(self.path / META_FILE, self.meta)
 
 
+    def _write_local(self) -> bool:
+        """Append the buffered per-rank rows to local/*; published with the next committed.json."""
+        if not self._local:
+            return False
+        items, self._local = self._local, []
+        values = np.stack([v for _, v in items]).astype(np.float32)     # (rows, ranks, tensors, 1 + probes)
+        if "local/step" not in self._arrays:
+            tail = values.shape[1:]
+            for name, shape, dtype, fill in (("local/step", (), "int64", -1),
+                                             ("local/values", tail, "float32", np.nan)):
+                self._arrays[name] = self._group.create_array(
+                    name, shape=(STEP_CHUNK, *shape), chunks=(DETAIL_CHUNK, *shape), dtype=dtype, fill_value=fill,
+                    compressors=_codecs(), overwrite=True)
+        start, stop = self._local_rows, self._local_rows + len(items)
+        size = self._arrays["local/step"].shape[0]
+        if stop > size:
+            while size < stop:
+                size *= 2
+            for name in LOCAL_ARRAYS:
+                self._arrays[name].resize((size, *self._arrays[name].shape[1:]))
+        self._arrays["local/step"][start:stop] = np.array([s for s, _ in items], dtype=np.int64)
+        self._arrays["local/values"][start:stop] = values
+        self._local_rows = stop
+        return True
+
+
+LOCAL_ARRAYS = ("local/step", "local/values")
+
+
 class _quiet_nan_warnings:
     def __enter__(self):
         import warnings
@@ -291,3 +354,104 @@ class _quiet_nan_warnings:
 
 def remove_recording(path: Path) -> None:
     shutil.rmtree(path)
+
+
+# --- resuming ---------------------------------------------------------------------------------------
+class ResumePlan:
+    """What `resume=True` keeps of an existing recording, and the metadata to continue it with."""
+
+    def __init__(self, path: Path, meta: dict, rows: int, local_rows: int, last_step: int | None,
+                 next_step: int, note: dict):
+        self.path, self.meta, self.rows, self.local_rows = path, meta, rows, local_rows
+        self.last_step, self.next_step, self.note = last_step, next_step, note
+
+    def merged_meta(self, new: dict) -> dict:
+        """The old metadata, checked against the new run's, with this resume noted in "resumes"."""
+        old = self.meta
+        if not old.get("tensors") or self.rows == 0:
+            fresh = dict(new)
+            fresh["resumes"] = old.get("resumes", []) + [self.note]
+            return fresh
+        for key in ("probes", "quantities", "histogram_bins"):
+            if old.get(key) != new.get(key):
+                raise ValueError(f"{key} differs: the recording has {old.get(key)!r}, this run {new.get(key)!r}")
+        shapes_old = [(t["name"], t["shape"]) for t in old["tensors"]]
+        shapes_new = [(t["name"], t["shape"]) for t in new["tensors"]]
+        if shapes_old != shapes_new:
+            changed = [f"{a} vs {b}" for a, b in zip(shapes_old, shapes_new) if a != b][:3]
+            raise ValueError(f"the tensors differ ({len(shapes_old)} recorded, {len(shapes_new)} now; "
+                             f"first differences: {changed or 'count'})")
+        merged = dict(old)
+        for key in ("pid", "threads", "interop_threads", "torch_version", "nbkit_version", "flush_seconds",
+                    "expected_steps", "strict", "distributed", "size_estimate"):
+            if key in new:
+                merged[key] = new[key]
+        merged["closed"] = False
+        merged.pop("writer_error", None)
+        merged["resumes"] = old.get("resumes", []) + [self.note]
+        return merged
+
+
+def plan_resume(path: Path, restart_step: int | None) -> ResumePlan:
+    """Read an existing recording and decide which committed rows a resumed run keeps.
+
+    restart_step: the optimizer step the restarted run takes next (from its checkpoint); None means
+    right after the last committed step. Rows at or after it belong to the abandoned branch of the
+    run and are dropped (an overlap); a restart after a missing stretch leaves a gap. Both are noted.
+    """
+    import zarr
+
+    from nbkit.store.files import read_json
+
+    path = Path(path)
+    meta = read_json(path / META_FILE)
+    committed = read_json(path / COMMITTED_FILE)
+    rows, local_rows = int(committed.get("rows", 0)), int(committed.get("local_rows", 0))
+    steps = np.zeros(0, dtype=np.int64)
+    local_steps = np.zeros(0, dtype=np.int64)
+    if rows:
+        group = zarr.open_group(str(path), mode="r", use_consolidated=False)
+        steps = group["step"][:rows]
+        if local_rows:
+            local_steps = group["local/step"][:local_rows]
+    last_step = int(steps[-1]) if rows else None
+    expected = last_step + 1 if last_step is not None else 0
+    next_step = expected if restart_step is None else int(restart_step)
+    keep = int(np.searchsorted(steps, next_step))         # rows of steps before the restart
+    keep_local = int(np.searchsorted(local_steps, next_step))
+    note = {"at_step": next_step, "previous_last_step": last_step, "previous_rows": rows,
+            "time": time.time(), "was_closed": bool(committed.get("closed", False))}
+    if next_step < expected:
+        note["overlap"] = [next_step, expected - 1]
+        note["dropped_rows"] = rows - keep
+    elif next_step > expected:
+        note["gap"] = [expected, next_step - 1]
+    dropped_keyframes = [s for s in kf.list_keyframes(path) if s > next_step]
+    for s in dropped_keyframes:                            # state of the abandoned branch
+        kf.delete_keyframe(path, s)
+    if dropped_keyframes:
+        note["dropped_keyframes"] = dropped_keyframes
+    return ResumePlan(path, meta, keep, keep_local, int(steps[keep - 1]) if keep else None, next_step, note)
+
+
+# --- size -------------------------------------------------------------------------------------------
+def estimate_recording_bytes(meta: dict, expected_steps: int, *, state_copies: int) -> dict:
+    """An upper estimate of a recording's size: rows uncompressed, keyframes at full size.
+
+    state_copies: parameter-sized tensors in a keyframe (1 for the model plus one per optimizer state
+    tensor, e.g. 3 for Adam). Keyframe retention (KEYFRAME_BUDGET_BYTES) caps the keyframe share.
+    """
+    T, P, Q = len(meta["tensors"]), meta["probes"], len(meta["quantities"])
+    bins = meta["histogram_bins"] + 2
+    G = len(meta.get("param_groups", [])) or 1
+    light = 8 + 8 + 8 * G + 1 + 2 * FINGERPRINT_WIDTH * 8
+    fields = 2 + state_copies                              # grad, update, and the moments kept as probes
+    heavy = 4 * T * (Q + 3 * bins + fields * P)
+    every = max(1, int(meta.get("every", 1)))
+    row_bytes = expected_steps * light + -(-expected_steps // every) * heavy
+    param_bytes = sum(t["numel"] * (8 if t["dtype"] in ("float64", "int64") else 4) for t in meta["tensors"])
+    keyframe = state_copies * param_bytes
+    count = expected_steps // max(1, int(meta.get("keyframe_every", 100))) + 2
+    keyframes = min(count * keyframe, max(KEYFRAME_BUDGET_BYTES, (KEYFRAMES_KEPT_RECENT + 2) * keyframe))
+    return {"rows": row_bytes, "keyframes": keyframes, "total": row_bytes + keyframes,
+            "bytes_per_heavy_step": heavy, "bytes_per_keyframe": keyframe}
