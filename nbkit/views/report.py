@@ -1,0 +1,120 @@
+"""A self-contained, static HTML report of recordings: figures as embedded PNG, findings, commands.
+
+The page has no script and loads nothing from the network, so it can be mailed or archived as the
+evidence of a run. It only composes what the views render and what the findings say.
+"""
+from __future__ import annotations
+
+import base64
+import datetime
+import html
+import tempfile
+from pathlib import Path
+
+CAUTION = ("Findings are heuristics: each points at a step and tensor worth a look, not a proven cause. "
+           "Verify a finding with a replay from a keyframe before acting on it. Recordings (and this report) "
+           "can hold traces of the training data: treat them like the data itself.")
+
+_STYLE = """
+body { font-family: system-ui, sans-serif; max-width: 1180px; margin: 2em auto; color: #222; line-height: 1.45; }
+h1 { font-size: 1.6em; } h2 { margin-top: 1.8em; border-bottom: 1px solid #ccc; }
+table { border-collapse: collapse; margin: 0.6em 0; font-size: 0.92em; }
+td, th { border: 1px solid #ccc; padding: 0.25em 0.6em; text-align: left; vertical-align: top; }
+th { background: #f2f2f2; } .error { color: #b00020; font-weight: 600; } .warning { color: #a05a00; font-weight: 600; }
+.caution { background: #fff8e1; border-left: 4px solid #e0a800; padding: 0.6em 1em; }
+img { max-width: 100%; border: 1px solid #ddd; } code, pre { background: #f5f5f5; padding: 0.1em 0.3em; }
+"""
+
+
+def _png_data_uri(view) -> str:
+    with tempfile.TemporaryDirectory() as folder:
+        target = Path(folder) / "view.png"
+        view.to_png(target)
+        return "data:image/png;base64," + base64.b64encode(target.read_bytes()).decode()
+
+
+def _figure(title: str, uri: str, caption: str = "") -> str:
+    note = f"<p>{html.escape(caption)}</p>" if caption else ""
+    return f"<h3>{html.escape(title)}</h3>{note}<img alt='{html.escape(title)}' src='{uri}'>"
+
+
+def findings_table(findings) -> str:
+    if not findings:
+        return "<p>No findings: none of the checks fired on this recording.</p>"
+    rows = []
+    for f in findings:
+        tensors = ", ".join(f.tensors[:4]) + (" …" if len(f.tensors) > 4 else "")
+        evidence = ", ".join(f"{k}={_number(v)}" for k, v in list(f.evidence.items())[:5])
+        steps = f"{f.first_step}" if f.first_step == f.last_step else f"{f.first_step}–{f.last_step}"
+        rows.append(f"<tr><td class='{f.severity}'>{f.severity}</td><td>{html.escape(f.kind)}</td>"
+                    f"<td>{steps}</td><td>{html.escape(tensors)}</td><td>{html.escape(evidence)}</td>"
+                    f"<td>{html.escape(f.suggestion)}</td><td>{html.escape(f.source)}</td></tr>")
+    return ("<table><tr><th>severity</th><th>kind</th><th>steps</th><th>tensors</th><th>evidence</th>"
+            "<th>suggestion</th><th>source</th></tr>" + "".join(rows) + "</table>")
+
+
+def _number(value) -> str:
+    if isinstance(value, float):
+        return f"{value:.4g}"
+    return str(value)
+
+
+def _run_table(run) -> str:
+    meta = run.meta
+    steps = run.steps
+    groups = meta.get("param_groups", [])
+    hyper = "; ".join(", ".join(f"{k}={v}" for k, v in g.items() if k in ("lr", "betas", "eps", "momentum",
+                                                                             "weight_decay", "alpha"))
+                      for g in groups)
+    parent = meta.get("parent") or {}
+    rows = [("path", str(run.path)), ("optimizer", f"{meta['optimizer']['class']} ({hyper})"),
+            ("steps", f"{len(steps)} ({steps[0]}–{steps[-1]})" if len(steps) else "none"),
+            ("tensors", str(len(run.tensors))), ("keyframes", ", ".join(map(str, run.keyframes))),
+            ("closed cleanly", "yes" if run.closed_cleanly else "no"),
+            ("torch / threads", f"{meta.get('torch_version')} / {meta.get('threads')}")]
+    if parent:
+        rows.append(("replay of", f"{parent.get('path')} from step {parent.get('start')}"))
+    return "<table>" + "".join(f"<tr><th>{html.escape(k)}</th><td>{html.escape(v)}</td></tr>" for k, v in rows) + "</table>"
+
+
+def write_report(runs, path, *, title: str = "nbkit report", findings=None, landscape=None,
+                 commands: list[str] | None = None, intro: str = "") -> Path:
+    """Write the report of `runs` (Recordings) to `path`; returns the path.
+
+    findings: {run path: [Finding]} to reuse already computed findings (else run.findings()).
+    landscape: a landscape view (anything with .to_png) to include. commands: shell lines that
+    reproduce the report.
+    """
+    import nbkit
+
+    runs = list(runs)
+    parts = [f"<h1>{html.escape(title)}</h1>",
+             f"<p>Written {datetime.datetime.now().strftime('%Y-%m-%d %H:%M')} by nbkit {nbkit.__version__}.</p>"]
+    if intro:
+        parts.append(f"<p>{html.escape(intro)}</p>")
+    parts.append(f"<p class='caution'>{html.escape(CAUTION)}</p>")
+    for run in runs:
+        found = (findings or {}).get(str(run.path))
+        if found is None:
+            found = run.findings()
+        parts.append(f"<h2>{html.escape(run.path.name)}</h2>")
+        parts.append(_run_table(run))
+        parts.append("<h3>Findings</h3>" + findings_table(found))
+        parts.append(_figure("Explorer", _png_data_uri(nbkit.explore(run)),
+                             "Timeline, layer map and coordinate view at the cursor step, as the notebook view shows them."))
+    if len(runs) > 1:
+        parts.append("<h2>Comparison</h2>")
+        parts.append(_figure("Runs side by side", _png_data_uri(nbkit.compare(*runs)),
+                             "Replays share the first run's step numbers and batches."))
+    if landscape is not None:
+        parts.append("<h2>Loss landscape slice</h2>")
+        parts.append(_figure("Loss on the plane through the start point and the runs' end points",
+                             _png_data_uri(landscape)))
+    if commands:
+        parts.append("<h2>Reproduce</h2><pre>" + html.escape("\n".join(commands)) + "</pre>")
+    page = (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{html.escape(title)}</title>"
+            f"<style>{_STYLE}</style></head><body>{''.join(parts)}</body></html>")
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(page, encoding="utf-8")
+    return path
