@@ -4,7 +4,7 @@ Everything is generated in code by a seeded generator (no data files). The first
 planted faults a practitioner could plausibly make:
   * the sensor calibration offset is a parameter of the model but was left out of the optimizer
     (an orphan tensor);
-  * the three light sensors arrive in the wrong unit, about 1e-5 of the other features, so the
+  * the three light sensors arrive in the wrong unit, about 1e-6 of the other features, so the
     light branch's gradients fall below Adam's epsilon and it barely learns (eps-dominated);
   * the learning-rate warm-up climbs too high, and the loss spikes once the step size passes the
     stability limit set by the curvature (over-stability-limit).
@@ -21,7 +21,7 @@ SENSORS = ("air temperature [°C]", "relative humidity [%]", "CO2 [ppm]", "vent 
            "screen closure [0-1]", "hour of day (sine)",
            "light above canopy [µmol/m²/s]", "light mid canopy [µmol/m²/s]", "light outside [µmol/m²/s]")
 CLIMATE, LIGHT = slice(0, 9), slice(9, 12)
-WRONG_UNIT = 1e-5          # the light block's planted unit error
+WRONG_UNIT = 1e-6          # the light block's planted unit error (a factor applied twice)
 HOURS = 24 * 60            # two months of hourly readings
 BATCH = 64
 STEPS = 600
