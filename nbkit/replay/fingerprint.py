@@ -57,3 +57,36 @@ def combine(prints: list[np.ndarray]) -> np.ndarray:
 def same(a: np.ndarray, b: np.ndarray) -> bool:
     """True when two fingerprints agree (NaN equals NaN: a missing target is missing in both)."""
     return bool(np.array_equal(a, b, equal_nan=True))
+
+
+def matches(recorded: np.ndarray, prints: list[np.ndarray]) -> bool:
+    """True when the forward passes of one replayed step (`prints`) saw the recorded data.
+
+    Equal when combined; or when a prefix of them combines to the recorded value (the replay ran
+    more evaluations of the same batch, e.g. LBFGS against a one-pass recording); or when every
+    replayed pass saw one batch and the recording holds a whole number of passes over that batch
+    (the recording ran more evaluations than the replay).
+    """
+    if same(recorded, combine(prints)):
+        return True
+    for k in range(1, len(prints)):
+        if same(recorded, combine(prints[:k])):
+            return True
+    if prints and all(same(p, prints[0]) for p in prints) and prints[0][0] > 0:
+        repeats = recorded[0] / prints[0][0]
+        if np.isfinite(repeats) and repeats == int(repeats) and 1 <= repeats <= 10_000:
+            return same(recorded, combine([prints[0]] * int(repeats)))
+    return False
+
+
+def describe_difference(recorded: np.ndarray, seen: np.ndarray) -> str:
+    """Which part of two fingerprints differs, in words, for error messages."""
+    parts = (("the number of tensors", slice(0, 1)), ("the number of elements", slice(1, 2)),
+             ("the shapes or dtypes", slice(2, 3)), ("the sum of the values", slice(3, 4)),
+             ("the sampled values", slice(4, None)))
+    differing = [name for name, where in parts if not np.array_equal(recorded[where], seen[where], equal_nan=True)]
+    if np.isnan(recorded).all():
+        return "the recording saw no training-mode forward pass at this step"
+    if np.isnan(seen).all():
+        return "the replay saw no training-mode forward pass at this step"
+    return ", ".join(differing) or "nothing (equal)"
