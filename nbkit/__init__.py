@@ -3,6 +3,7 @@ __version__ = "0.1.0"
 
 from nbkit.record.recorder import Recorder
 from nbkit.store.reader import Recording, load
+from nbkit.replay.replay import replay
 from nbkit.errors import NbkitError, RecorderError, RecorderWarning, RecordingError, ReplayError
 
 
@@ -29,9 +30,27 @@ def record(model, optimizer, path, *, every=1, probes=64, keyframe_every=100, cr
                     strict=strict, resume=resume, overwrite=overwrite)
 
 
+def compare(run, *others, model=None, step_fn=None, batch=None):
+    """The comparison: several recordings side by side on one step cursor (an ipywidgets widget).
+    With model, step_fn and batch it adds the loss-landscape slice through the runs."""
+    from nbkit.views.compare import Comparison
+
+    return Comparison(run, *others, model=model, step_fn=step_fn, batch=batch)
+
+
+def landscape(model, step_fn, batch, runs, resolution=21, progress=True):
+    """The loss-landscape slice view: the loss on the plane through the runs' shared start point and
+    two end points (or two filter-normalised random directions for one run), with their paths."""
+    from nbkit.views.landscape import LandscapeView
+
+    return LandscapeView(model, step_fn, batch, runs, resolution=resolution, progress=progress)
+
+
 __all__ = [
     # recording
     "record", "Recorder", "load", "Recording",
+    # replays and their comparison
+    "replay", "compare", "landscape",
     # errors
     "NbkitError", "RecorderError", "RecorderWarning", "RecordingError", "ReplayError",
 ]
