@@ -23,7 +23,7 @@ import torch
 
 from nbkit.errors import RecorderError, RecorderWarning
 from nbkit.measure.quantities import HISTOGRAM_BINS, HISTOGRAM_LOW, QUANTITIES
-from nbkit.measure.step_stats import sampled_statistics, whole_tensor_statistics
+from nbkit.record import capture
 from nbkit.record.adapters import adapter_for, step_count
 from nbkit.replay.fingerprint import combine, fingerprint
 from nbkit.store import keyframes as kf
@@ -49,11 +49,7 @@ class _Tensor:
     group: int
     index: torch.Tensor          # sampled flat coordinates; the first `probes` are the probes
     probes: int
-    before: torch.Tensor | None = None
-    previous_grad: torch.Tensor | None = None
-    previous_norm: float = math.nan
-    previous_sample: torch.Tensor | None = None
-    state_before: dict = field(default_factory=dict)
+    shape: tuple = ()            # the shape when recording started
     stopped: str | None = None   # why this tensor is no longer recorded
 
 
@@ -67,13 +63,6 @@ def _jsonable(value):
     if value is None or isinstance(value, (bool, int, float, str)):
         return value
     return repr(value)
-
-
-def _padded(values, n, width):
-    """Sampled values (or zeros where the state did not exist yet) padded with NaN to `width`."""
-    out = torch.full((width,), math.nan, dtype=torch.float64)
-    out[:n] = 0.0 if values is None else values
-    return out
 
 
 def _layer_of(name: str) -> str:
@@ -117,7 +106,13 @@ class Recorder:
         self._analysis = None
         self._last_inputs = None      # (args, kwargs) of the last training-mode forward
         self._last_targets = None     # criterion inputs after the prediction
+        self._paused = False          # True while the analysis runs its extra passes: hooks ignore them
+        from nbkit.analyze.during_recording import analysis_for
+
+        self._analysis = analysis_for(self, curvature_every, noise_every)   # None when both are 0
         self._generator = torch.Generator().manual_seed(SAMPLE_SEED)
+        self._blocks = None                 # nbkit.record.capture.Block list, made at the first step
+        self._q_index = {q: i for i, q in enumerate(QUANTITIES)}
         self._tensors, orphans, frozen = self._table(model, optimizer)
         self._groups = [[t for t in self._tensors if t.group == g] for g in range(len(optimizer.param_groups))]
         meta = self._meta(model, optimizer, orphans, frozen, flush_seconds, expected_steps, curvature_every,
@@ -170,8 +165,6 @@ class Recorder:
             raise RecorderError(f"Invalid flush_seconds: {flush_seconds!r}; expected a positive number of seconds")
         if expected_steps is not None and (not isinstance(expected_steps, int) or expected_steps < 1):
             raise RecorderError(f"Invalid expected_steps: {expected_steps!r}; expected a positive integer or None")
-        if curvature_every or noise_every:
-            raise NotImplementedError("curvature_every and noise_every arrive with nbkit.analyze; use 0 for now")
         if not any(True for _ in model.parameters()):
             raise RecorderError(f"The model ({type(model).__name__}) has no parameters: there is nothing to record")
         if not any(len(g["params"]) for g in optimizer.param_groups):
@@ -248,7 +241,8 @@ class Recorder:
                 size = min(SAMPLE_SIZE, n)
                 index = torch.randperm(n, generator=self._generator)[:size] if n > size else \
                     torch.randperm(n, generator=self._generator)
-                tensors.append(_Tensor(names.get(id(p), f"group{g}.{i}"), p, g, index, min(self.probes, size)))
+                tensors.append(_Tensor(names.get(id(p), f"group{g}.{i}"), p, g, index, min(self.probes, size),
+                                       tuple(p.shape)))
         position = {id(t.param): order.get(id(t.param), len(order) + k) for k, t in enumerate(tensors)}
         tensors.sort(key=lambda t: position[id(t.param)])
         orphans = [n for n, p in model.named_parameters() if p.requires_grad and id(p) not in in_optimizer]
@@ -323,7 +317,7 @@ class Recorder:
 
     @property
     def active(self) -> bool:
-        return not (self._closed or self._failed)
+        return not (self._closed or self._failed or self._paused)
 
     # --- hooks ----------------------------------------------------------------------------------
     def _before_forward(self, module, args, kwargs):
@@ -447,108 +441,65 @@ class Recorder:
         else:
             self._reported_loss = value
 
-    @torch.no_grad()
     def _copy_before(self):
+        """Pre-step: θ of every live tensor into its block's buffer (nbkit.record.capture)."""
+        if self._blocks is None:
+            self._blocks = capture.make_blocks(self._tensors)
         for t in self._tensors:
-            if t.stopped:
-                continue
-            p = t.param
-            if t.before is None:
-                t.before = torch.empty_like(p, memory_format=torch.contiguous_format)
-            elif t.before.shape != p.shape:
-                t.stopped = f"shape changed from {tuple(t.before.shape)} to {tuple(p.shape)}"
+            if not t.stopped and t.param.shape != t.shape:
+                t.stopped = f"shape changed from {tuple(t.shape)} to {tuple(t.param.shape)}"
                 self._fail(f"tensor {t.name!r}: {t.stopped}; its recording stops", stop=False)
-                continue
-            t.state_before = {k: torch.take(v, t.index).double() for k, v in self._state(p).items()}
-        live = [t for t in self._tensors if not t.stopped]
-        torch._foreach_copy_([t.before for t in live], [t.param.detach() for t in live])
+        capture.copy_before(self._blocks, self.optimizer, self.adapter.before_keys)
 
     def _state(self, p) -> dict:
         """The optimizer's state tensors shaped like parameter p."""
-        state = self.optimizer.state.get(p, {})
-        return {k: v for k, v in state.items()
-                if isinstance(v, torch.Tensor) and v.shape == p.shape and not v.is_sparse and k != "step"}
+        return capture.state_tensors(self.optimizer, p)[0]
 
-    @torch.no_grad()
     def _heavy_row(self, row: dict):
+        """Post-step: the per-tensor quantities, histograms and probes of every block into `row`."""
         row["heavy"] = True
-        q_index = {q: i for i, q in enumerate(QUANTITIES)}
+        q_index = self._q_index
         summary, histograms = row["q"], row["hist"]
-        positions = {id(t): k for k, t in enumerate(self._tensors)}
-        for g, members in enumerate(self._groups):
-            recorded = []
-            for t in members:
-                k = positions[id(t)]
-                grad = t.param.grad
+        missing = q_index["grad_missing"]
+        for block in self._blocks or ():
+            if not block.copied:
+                continue
+            block.copied = False
+            rows = []
+            for r, (t, k) in enumerate(zip(block.tensors, block.positions)):
                 if t.stopped:
                     continue
+                grad = t.param.grad
+                summary[missing, k] = 1.0 if grad is None else 0.0
                 if grad is None:
-                    summary[q_index["grad_missing"], k] = 1.0
-                    t.previous_grad, t.previous_sample = None, None
-                    continue
-                summary[q_index["grad_missing"], k] = 0.0
-                if grad.is_sparse:
+                    capture.forget_gradient(block, r)
+                elif grad.is_sparse:
+                    capture.forget_gradient(block, r)
                     self._fail(f"tensor {t.name!r} has a sparse gradient, which is not recorded", stop=False)
-                    continue
-                recorded.append(t)
-            if not recorded:
+                else:
+                    rows.append(r)
+            if not rows:
                 continue
-            ks = [positions[id(t)] for t in recorded]
-            grads = [t.param.grad for t in recorded]
-            params = [t.param.detach() for t in recorded]
-            befores = [t.before for t in recorded]
-            S = max(len(t.index) for t in recorded)
-            index = torch.zeros((len(recorded), S), dtype=torch.int64)
-            valid = torch.zeros((len(recorded), S), dtype=torch.bool)
-            for r, t in enumerate(recorded):
-                index[r, :len(t.index)] = t.index
-                valid[r, :len(t.index)] = True
-
-            def sample(tensors):
-                return torch.stack([torch.take(x, index[r]).double() for r, x in enumerate(tensors)])
-
-            grad_s, before_s, after_s = sample(grads), sample(befores), sample(params)
-            states = [self._state(t.param) for t in recorded]
-            keys = sorted(set().union(*[s.keys() for s in states]))
-            after = {key: torch.stack([torch.take(s[key], index[r]).double() if key in s else
-                                       torch.full((S,), math.nan, dtype=torch.float64)
-                                       for r, s in enumerate(states)]) for key in keys}
-            before = {key: torch.stack([_padded(t.state_before.get(key), len(t.index), S) for t in recorded])
-                      for key in keys}
-            steps = torch.tensor([[step_count(self.optimizer.state.get(t.param, {}))] for t in recorded],
-                                 dtype=torch.float64)
-            group = self.optimizer.param_groups[g]
-            lr = float(group["lr"])
-            previous = [t.previous_grad for t in recorded]
-            previous_norms = torch.tensor([t.previous_norm for t in recorded], dtype=torch.float64)
-            whole = whole_tensor_statistics(grads, befores, params, previous, previous_norms)
-            previous_sample = None
-            if all(t.previous_sample is not None for t in recorded):
-                previous_sample = torch.stack([t.previous_sample for t in recorded])
-            sampled, hist, probe_values = sampled_statistics(
-                grad=grad_s, theta_before=before_s, theta_after=after_s, valid=valid, before=before, after=after,
-                step=steps, group=group, lr=lr, adapter=self.adapter, previous_grad=previous_sample,
-                probes=self.probes)
-            state_nonfinite = sum((~torch.isfinite(v)).sum(dim=1) for v in after.values()) if after else None
-            for name, values in {**whole, **sampled}.items():
-                if name in q_index:
-                    summary[q_index[name], ks] = values.float().numpy()
+            ks = [block.positions[r] for r in rows]
+            whole, sampled, hist, probe_values, state_nonfinite = capture.measure_block(
+                block, rows, self.optimizer, self.adapter, self.probes)
+            for name, values in (*whole.items(), *sampled.items()):
+                i = q_index.get(name)
+                if i is not None:
+                    summary[i, ks] = values.numpy()
             if state_nonfinite is not None:
-                summary[q_index["state_nonfinite"], ks] = state_nonfinite.float().numpy()
-            histograms[:, ks, :] = hist.numpy().astype(np.uint32)
+                summary[q_index["state_nonfinite"], ks] = state_nonfinite.numpy()
+            histograms[:, ks, :] = hist.numpy()
+            short = [r for r, t in enumerate(block.tensors[r] for r in rows) if t.probes < self.probes]
             for name, values in probe_values.items():
-                block = row["probes"].setdefault(name, np.full((len(self._tensors), self.probes), np.nan,
-                                                               dtype=np.float32))
+                block_values = row["probes"].get(name)
+                if block_values is None:
+                    block_values = row["probes"][name] = np.full((len(self._tensors), self.probes), np.nan,
+                                                                 dtype=np.float32)
                 width = values.shape[1]
-                block[ks, :width] = values.float().numpy()
-                for r, t in enumerate(recorded):
-                    block[ks[r], t.probes:] = np.nan
-            for r, t in enumerate(recorded):
-                if t.previous_grad is None:
-                    t.previous_grad = torch.empty_like(grads[r])
-                t.previous_grad.copy_(grads[r])
-                t.previous_norm = float(whole["grad_norm"][r])
-                t.previous_sample = grad_s[r]
+                block_values[ks, :width] = values.numpy()
+                for r in short:
+                    block_values[ks[r], block.tensors[rows[r]].probes:] = np.nan
 
     # --- keyframes ------------------------------------------------------------------------------
     def _snapshot(self, step: int):

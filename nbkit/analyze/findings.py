@@ -1,0 +1,526 @@
+"""Automatic findings: known failure patterns located at a step range and tensor of a recording.
+
+`find(run, **thresholds)` (run.findings) reads the recorded series and returns Finding objects sorted by
+step. Every finding is a heuristic: its suggestion says to verify it with a replay. Thresholds are the
+fields of `Thresholds` (README.md, "Findings", explains each); any can be overridden by keyword.
+
+"Sustained" means: in some window of `window` consecutive recorded (heavy) rows, at least
+`sustained_share` of the rows meet the condition; the finding spans the first to the last such row.
+"""
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, fields
+
+import numpy as np
+
+from nbkit.analyze.curvature import AnalysisError
+from nbkit.analyze.finding import Finding
+from nbkit.analyze.stability import ADAM_FAMILY, coupled_weight_decay, stability_limit
+
+REPLAY = "Verify with a replay from the keyframe before step {step} (nbkit.replay)"
+
+
+@dataclass(frozen=True)
+class Thresholds:
+    """Documented defaults; the reason for each is beside it (README.md, "Findings")."""
+
+    window: int = 20                  # heavy rows a pattern must last to count as sustained
+    sustained_share: float = 0.8      # share of the window's rows that must meet the condition
+    spike_factor: float = 10.0        # grad-spike: global gradient norm above 10× its running median ...
+    spike_over_max: float = 1.5       # ... and 1.5× the largest of the history (not an ordinary swing)
+    spike_history: int = 50           # rows of running history
+    spike_min_history: int = 10       # rows needed before spikes are judged
+    update_ratio_high: float = 0.25   # 250× the common-practice 1e-3: weights rewritten every few steps
+    update_ratio_low: float = 1e-6    # 1000× below 1e-3 while the learning rate is not decayed
+    eps_share: float = 0.5            # "most coordinates": ε outweighs √v̂ for over half of them ...
+    eps_relevant_grad: float = 1e-4   # ... in a tensor whose gradient RMS is at least 1e-4 × the median tensor's
+    sign_flip: float = 0.65           # oscillation: well above the 0.5 of pure noise ...
+    grad_cosine: float = -0.3         # ... with consecutive gradients pointing against each other
+    reversed_share: float = 0.6       # overshoot: above the ≤ 0.5 that noise alone gives momentum methods
+    dead_share: float = 0.25          # dead-units: a quarter of a weight's rows without gradient ...
+    dead_window: int = 50             # ... in every row of this many heavy rows
+    lost_share: float = 0.25          # lost-updates: a quarter of the updates round to nothing
+    plateau_window: int = 100         # plateau: loss rows per window
+    plateau_flat: float = 0.02        # loss change within the window, as a share of the run's progress
+    plateau_gap: float = 0.2          # window loss above the best by this share of the progress
+    plateau_grad: float = 0.1         # global gradient norm below this share of its peak level
+    stability_margin: float = 1.25    # sharpness above 1.25× the limit (edge of stability hovers near 1×)
+    noise_factor: float = 10.0        # batch size 10× below / above the gradient noise scale
+
+
+def find(run, **thresholds) -> list[Finding]:
+    """All findings of a recording, sorted by first step. Keyword arguments override Thresholds."""
+    valid = {f.name for f in fields(Thresholds)}
+    unknown = sorted(set(thresholds) - valid)
+    if unknown:
+        raise AnalysisError(f"Unknown finding threshold(s) {unknown}; valid names are {sorted(valid)}")
+    t = Thresholds(**thresholds)
+    data = _RunData(run)
+    found: list[Finding] = []
+    for check in (_orphans, _no_gradient, _nonfinite, _grad_spike, _update_ratio, _eps_dominated,
+                  _oscillation, _overshoot, _dead_units, _lost_updates, _plateau, _over_stability_limit,
+                  _coupled_decay, _noise_scale):
+        found.extend(check(data, t))
+    rank = {"error": 0, "warning": 1, "info": 2}
+    return sorted(found, key=lambda f: (f.first_step, rank[f.severity], f.kind))
+
+
+class _RunData:
+    """The recording's arrays, read once: heavy rows for per-tensor series, all rows for loss."""
+
+    def __init__(self, run):
+        self.run, self.meta = run, run.meta
+        self.tensors = run.tensors
+        self.steps = run.steps
+        self.heavy_rows = np.flatnonzero(run.heavy) if len(self.steps) else np.zeros(0, dtype=np.int64)
+        self.heavy_steps = self.steps[self.heavy_rows]
+        self.loss = np.asarray(run.loss, dtype=np.float64)
+        self._series: dict = {}
+
+    def series(self, q) -> np.ndarray:
+        """(heavy rows, tensors) float64."""
+        if q not in self._series:
+            if q not in self.run.quantities or not len(self.heavy_rows):
+                self._series[q] = np.full((len(self.heavy_rows), len(self.tensors)), np.nan)
+            else:
+                self._series[q] = np.asarray(self.run.series(q), dtype=np.float64)[self.heavy_rows]
+        return self._series[q]
+
+    def shape(self, k):
+        return self.meta["tensors"][k]["shape"]
+
+    def global_grad_norm(self) -> np.ndarray:
+        g = self.series("grad_norm")
+        with np.errstate(all="ignore"):
+            total = np.sqrt(np.nansum(g ** 2, axis=1))
+        total[~np.isfinite(g).any(axis=1) | ~np.isfinite(total)] = np.nan
+        return total
+
+
+def _segments(mask: np.ndarray, window: int, share: float) -> list[tuple[int, int]]:
+    """(first, last) row positions of sustained stretches of `mask` (module docstring)."""
+    n = len(mask)
+    if n == 0:
+        return []
+    window = min(window, n)
+    if window < 5:
+        return []
+    need = math.ceil(share * window)
+    counts = np.convolve(mask.astype(np.int64), np.ones(window, dtype=np.int64), mode="valid")  # (n-w+1,)
+    covered = np.zeros(n + 1, dtype=bool)
+    for start in np.flatnonzero(counts >= need):
+        covered[start:start + window] = True
+    out, start = [], None
+    for i in range(n + 1):                       # runs of covered rows, trimmed to rows meeting the mask
+        if covered[i] and start is None:
+            start = i
+        elif not covered[i] and start is not None:
+            hits = np.flatnonzero(mask[start:i])
+            out.append((start + int(hits[0]), start + int(hits[-1])))
+            start = None
+    return out
+
+
+def _merge(findings: list[Finding]) -> list[Finding]:
+    """One finding per kind and overlapping step range; the tensors of merged findings are united."""
+    merged: list[Finding] = []
+    for f in sorted(findings, key=lambda f: (f.kind, f.severity, f.first_step)):
+        last = merged[-1] if merged else None
+        if last and last.kind == f.kind and last.severity == f.severity and f.first_step <= last.last_step:
+            evidence = dict(last.evidence)
+            for key, value in f.evidence.items():
+                evidence[key] = max(evidence.get(key, value), value) if key.startswith("max") else evidence.get(key, value)
+            merged[-1] = Finding(last.kind, last.tensors + [x for x in f.tensors if x not in last.tensors],
+                                 last.first_step, max(last.last_step, f.last_step), last.severity, evidence,
+                                 last.suggestion, last.source)
+        else:
+            merged.append(f)
+    return merged
+
+
+def _per_tensor(data, t, kind, severity, condition, describe, suggestion, source="common practice",
+                tensors=None, window=None, share=None):
+    """Findings where `condition(column k) -> bool mask over heavy rows` is sustained for tensor k."""
+    out = []
+    for k, name in enumerate(data.tensors):
+        if tensors is not None and k not in tensors:
+            continue
+        with np.errstate(invalid="ignore"):
+            mask = condition(k)
+        for a, b in _segments(mask, window or t.window, t.sustained_share if share is None else share):
+            first, last = int(data.heavy_steps[a]), int(data.heavy_steps[b])
+            out.append(Finding(kind, [name], first, last, severity, describe(k, a, b),
+                               suggestion + " " + REPLAY.format(step=first) + ".", source))
+    return _merge(out)
+
+
+def _median(x):
+    x = x[np.isfinite(x)]
+    return float(np.median(x)) if len(x) else math.nan
+
+
+# --- configuration findings ---------------------------------------------------------------------
+def _orphans(data, t):
+    orphans = list(data.meta.get("orphans", []))
+    if not orphans:
+        return []
+    last = int(data.steps[-1]) if len(data.steps) else 0
+    return [Finding("orphan", orphans, 0, last, "warning", {"tensors": len(orphans)},
+                    "These tensors require grad and get gradients, but no parameter group holds them, so they "
+                    "never change. Add them to the optimizer (or set requires_grad=False if they are meant to "
+                    "stay fixed).", "common practice")]
+
+
+def _no_gradient(data, t):
+    missing, norm = data.series("grad_missing"), data.series("grad_norm")
+    if not len(missing):
+        return []
+    out = []
+    for k, name in enumerate(data.tensors):
+        never = bool((missing[:, k] == 1).all()) or bool((norm[:, k] == 0).all())
+        if never:
+            out.append(Finding("no-gradient", [name], int(data.heavy_steps[0]), int(data.heavy_steps[-1]),
+                               "warning", {"recorded_steps": len(missing), "grad_none_steps": int((missing[:, k] == 1).sum())},
+                               "The optimizer holds this tensor but it never received a (non-zero) gradient: it is "
+                               "not used in the loss, or its path is detached. Check the forward pass.",
+                               "common practice"))
+    return _merge(out)
+
+
+def _coupled_decay(data, t):
+    name = data.meta.get("optimizer", {}).get("class", "")
+    if name not in ADAM_FAMILY:
+        return []
+    out = []
+    last = int(data.steps[-1]) if len(data.steps) else 0
+    for g, group in enumerate(data.meta.get("param_groups", [])):
+        decay = coupled_weight_decay(name, group)
+        if decay > 0:
+            out.append(Finding("coupled-decay", list(group.get("params", [])), 0, last, "info",
+                               {"group": g, "weight_decay": decay},
+                               f"{name} adds weight_decay={decay:g} to the gradient, so the second moment rescales "
+                               "it and heavily-updated weights decay less (L2 is not weight decay for Adam). "
+                               "Use AdamW or decoupled_weight_decay=True; retune the decay. " +
+                               REPLAY.format(step=0) + ".",
+                               "Loshchilov & Hutter 2019, Decoupled Weight Decay Regularization"))
+    return out
+
+
+# --- non-finite values, traced to their origin in causal order -----------------------------------
+def _nonfinite(data, t):
+    n = len(data.steps)
+    if n == 0:
+        return []
+    fp = data.run.fingerprints                                        # (steps, 2, width)
+    present = np.isfinite(fp[:, :, 0]) & (np.nan_to_num(fp[:, :, 0]) > 0)
+    batch_bad = present & ~np.isfinite(fp[:, :, 3])                  # (steps, 2): inputs, targets
+    known = np.isfinite(data.loss)
+    seen = np.maximum.accumulate(known)
+    loss_bad = np.isinf(data.loss) | (np.isnan(data.loss) & np.concatenate([[False], seen[:-1]]))
+    per_tensor = {}
+    for q in ("weight_nonfinite", "nonfinite", "update_nonfinite", "state_nonfinite"):
+        full = np.zeros((n, len(data.tensors)), dtype=bool)
+        with np.errstate(invalid="ignore"):
+            full[data.heavy_rows] = data.series(q) > 0
+        per_tensor[q] = full
+    any_bad = batch_bad.any(1) | loss_bad | np.any([v.any(1) for v in per_tensor.values()], axis=0)
+    if not any_bad.any():
+        return []
+    row = int(np.argmax(any_bad))
+    step, last = int(data.steps[row]), int(data.steps[np.flatnonzero(any_bad)[-1]])
+    names = np.array(data.tensors)
+    order = [
+        ("weight_nonfinite", "a parameter before the forward pass",
+         "The parameter already held NaN/Inf before this step's forward pass: it was written outside the "
+         "optimizer (in-place edit, loading a bad checkpoint) or by an earlier unrecorded step."),
+        ("inputs", "the input batch", "The model inputs of this step hold NaN/Inf: check the data pipeline "
+         "(division by zero in normalisation, missing values) for this batch."),
+        ("targets", "the targets", "The targets given to the criterion hold NaN/Inf: check the labels of this batch."),
+        ("loss", "the loss", "The loss is non-finite while parameters and batch are finite: look for log(0), "
+         "division by zero or overflow in the loss; lower the learning rate if the loss was growing."),
+        ("nonfinite", "the gradients", "The loss is finite but the gradients are not: an operation with an "
+         "infinite derivative (sqrt or pow at 0, a norm of zero) or overflow in the backward pass."),
+        ("update_nonfinite", "the update", "Gradients are finite but the update is not: the optimizer divided by "
+         "zero or overflowed (eps=0, a huge learning rate)."),
+        ("state_nonfinite", "the optimizer state", "The optimizer's state became non-finite (overflow of the "
+         "second moment with very large gradients)."),
+    ]
+    for key, where, advice in order:
+        if key == "inputs":
+            hit, tensors = batch_bad[row, 0], []
+        elif key == "targets":
+            hit, tensors = batch_bad[row, 1], []
+        elif key == "loss":
+            hit, tensors = loss_bad[row], []
+        else:
+            hit = per_tensor[key][row].any()
+            tensors = names[per_tensor[key][row]].tolist()
+        if hit:
+            evidence = {"step": step, "loss": float(data.loss[row]), "tensors": len(tensors),
+                        "steps_with_nonfinite": int(any_bad.sum())}
+            return [Finding("nonfinite", tensors, step, last, "error", evidence,
+                            f"First non-finite value at step {step}, in {where}. {advice} " +
+                            REPLAY.format(step=step) + " to confirm.", "common practice")]
+    return []
+
+
+# --- gradient and update patterns ----------------------------------------------------------------
+def _grad_spike(data, t):
+    g = data.global_grad_norm()
+    per = data.series("grad_norm")
+    hits = []
+    for i in range(len(g)):
+        history = g[max(0, i - t.spike_history):i]
+        history = history[np.isfinite(history)]
+        if len(history) < t.spike_min_history or not np.isfinite(g[i]):
+            continue
+        median = float(np.median(history))
+        if median > 0 and g[i] > t.spike_factor * median and g[i] > t.spike_over_max * history.max():
+            hits.append((i, g[i] / median))
+    out = []
+    for i, ratio in hits:
+        if out and i - out[-1][1] <= 5:
+            out[-1] = (out[-1][0], i, max(out[-1][2], ratio))
+        else:
+            out.append((i, i, ratio))
+    findings = []
+    for a, b, ratio in out:
+        history = per[max(0, a - t.spike_history):a]
+        with warnings.catch_warnings(), np.errstate(all="ignore"):
+            warnings.simplefilter("ignore", RuntimeWarning)
+            own = per[a] / np.nanmedian(history, axis=0)
+        own = np.where(np.isfinite(own), own, -np.inf)
+        tensors = [data.tensors[k] for k in np.argsort(-own) if own[k] >= t.spike_factor] or \
+                  [data.tensors[int(np.argmax(own))]]
+        first = int(data.heavy_steps[a])
+        findings.append(Finding("grad-spike", tensors, first, int(data.heavy_steps[b]), "warning",
+                                {"max_ratio_to_median": float(ratio), "grad_norm": float(g[a])},
+                                "The gradient norm jumped far above its running median. Look at this step's batch "
+                                "(an outlier?) and the learning rate; gradient clipping bounds such steps. " +
+                                REPLAY.format(step=first) + ".", "common practice"))
+    return findings
+
+
+def _weights(data):
+    return [k for k in range(len(data.tensors)) if len(data.shape(k)) >= 2]
+
+
+def _group_lr_share(data):
+    """(heavy rows, tensors): each tensor's learning rate as a share of its group's largest."""
+    lr = np.asarray(data.run.lr, dtype=np.float64)[data.heavy_rows]            # (rows, groups)
+    with np.errstate(all="ignore"):
+        share = lr / np.nanmax(np.asarray(data.run.lr, dtype=np.float64), axis=0)
+    groups = [t["group"] for t in data.meta["tensors"]]
+    return share[:, groups]
+
+
+def _update_ratio(data, t):
+    ratio = data.series("update_ratio")
+    weights = _weights(data)
+    lr_share = _group_lr_share(data)
+
+    def describe(k, a, b):
+        return {"median_update_ratio": _median(ratio[a:b + 1, k])}
+
+    high = _per_tensor(data, t, "update-ratio", "warning", lambda k: ratio[:, k] > t.update_ratio_high, describe,
+                       "Each step changes this weight by a large share of its norm (common practice aims near "
+                       "1e-3): the learning rate is likely too high for it.", tensors=weights)
+    low = _per_tensor(data, t, "update-ratio", "info",
+                      lambda k: (ratio[:, k] < t.update_ratio_low) & (lr_share[:, k] >= 0.1), describe,
+                      "Updates are tiny relative to the weight (common practice aims near 1e-3) although the "
+                      "learning rate is not decayed: it may be too low for this tensor.", tensors=weights)
+    return high + low
+
+
+def _eps_dominated(data, t):
+    share = data.series("eps_share")
+    rms = data.series("grad_rms")
+    with warnings.catch_warnings(), np.errstate(all="ignore"):
+        warnings.simplefilter("ignore", RuntimeWarning)
+        typical = np.nanmedian(rms, axis=1, keepdims=True)
+    # a tensor whose gradient is negligible next to the others' (a bias cancelled by a following
+    # BatchNorm) has no update worth protecting: ε "dominating" it is harmless
+    relevant = rms >= t.eps_relevant_grad * typical
+    return _per_tensor(data, t, "eps-dominated", "warning",
+                       lambda k: (share[:, k] > t.eps_share) & relevant[:, k],
+                       lambda k, a, b: {"median_eps_share": _median(share[a:b + 1, k])},
+                       "ε outweighs √v̂ in the update's denominator for most coordinates, so the optimizer "
+                       "behaves like SGD with learning rate lr/ε there. Lower eps, or check the gradient scale "
+                       "(a loss scaled far down).", source="common practice")
+
+
+def _oscillation(data, t):
+    flips, cos = data.series("sign_flip"), data.series("grad_cosine")
+    return _per_tensor(data, t, "oscillation", "warning",
+                       lambda k: (flips[:, k] > t.sign_flip) & (cos[:, k] < t.grad_cosine),
+                       lambda k, a, b: {"median_sign_flip": _median(flips[a:b + 1, k]),
+                                        "median_grad_cosine": _median(cos[a:b + 1, k])},
+                       "Gradients keep flipping sign and point against the previous step: the iterate bounces "
+                       "across a valley. Lower the learning rate (or the momentum).")
+
+
+def _overshoot(data, t):
+    rev = data.series("reversed")
+    return _per_tensor(data, t, "overshoot", "warning", lambda k: rev[:, k] > t.reversed_share,
+                       lambda k, a, b: {"median_reversed": _median(rev[a:b + 1, k])},
+                       "Most updates move against the current gradient: momentum carries the weights past the "
+                       "minimum. Lower the learning rate or the momentum (β1).")
+
+
+def _dead_units(data, t):
+    dead = data.series("dead_rows")
+    rows = np.array([max(1, s[0]) if s else 1 for s in (data.shape(k) for k in range(len(data.tensors)))], float)
+    share = dead / rows
+    candidates = _per_tensor(data, t, "dead-units", "warning", lambda k: share[:, k] >= t.dead_share,
+                             lambda k, a, b: {"min_dead_share": float(np.nanmin(share[a:b + 1, k])),
+                                              "max_dead_rows": float(np.nanmax(dead[a:b + 1, k]))},
+                             "Whole output units of this weight get no gradient at all (dead ReLUs, saturated "
+                             "units). Lower the learning rate, use a leaky activation or check the initialisation.",
+                             window=t.dead_window, share=1.0)
+    return [f for f in candidates if _probes_confirm_dead(data, f)]
+
+
+def _probes_confirm_dead(data, finding) -> bool:
+    """Dead units keep the same coordinates at zero gradient; rows absent from a batch (embeddings) do not.
+    Confirmed when enough probe coordinates have zero gradient in every row of the stretch."""
+    name = finding.tensors[0]
+    try:
+        grad = data.run.probes(name, rows=data.run.rows_for_steps(finding.first_step, finding.last_step)).get("grad")
+    except Exception:
+        return True
+    if grad is None or grad.shape[1] == 0:
+        return True
+    heavy = np.isfinite(grad).all(axis=1)
+    if not heavy.any():
+        return True
+    always_zero = float((grad[heavy] == 0).all(axis=0).mean())
+    return always_zero >= 0.5 * finding.evidence["min_dead_share"]
+
+
+def _lost_updates(data, t):
+    lost = data.series("lost_update_share")
+    dtypes = [x["dtype"] for x in data.meta["tensors"]]
+    return _per_tensor(data, t, "lost-updates", "warning", lambda k: lost[:, k] > t.lost_share,
+                       lambda k, a, b: {"median_lost_update_share": _median(lost[a:b + 1, k])},
+                       "Many updates round to exactly zero in this tensor's precision "
+                       f"({'/'.join(sorted(set(dtypes)))}): the step is below half a unit in the last place. Keep a "
+                       "float32 master copy of the weights, or raise the learning rate.")
+
+
+# --- loss and curvature --------------------------------------------------------------------------
+def _rolling_median(x, width):
+    if len(x) < width:
+        return x.copy()
+    windows = np.lib.stride_tricks.sliding_window_view(x, width)
+    core = np.median(windows, axis=1)
+    pad = width // 2
+    return np.concatenate([np.full(pad, core[0]), core, np.full(len(x) - len(core) - pad, core[-1])])
+
+
+def _plateau(data, t):
+    finite = np.flatnonzero(np.isfinite(data.loss))
+    w = t.plateau_window
+    if len(finite) < 2 * w:
+        return []
+    loss = _rolling_median(data.loss[finite], 11)
+    steps = data.steps[finite]
+    start, best = float(np.median(loss[:10])), float(loss.min())
+    progress = start - best
+    if not progress > 0:
+        return []
+    g = data.global_grad_norm()
+    level = _rolling_median(np.nan_to_num(g, nan=0.0), 11) if len(g) else g
+    peak = float(level.max()) if len(level) else math.nan
+    hits = []
+    for i in range(0, len(loss) - w + 1, max(1, w // 10)):
+        part = loss[i:i + w]
+        flat = abs(float(np.median(part[w // 2:])) - float(np.median(part[:w // 2]))) <= t.plateau_flat * progress
+        above = float(np.median(part)) - best >= t.plateau_gap * progress
+        if not (flat and above):
+            continue
+        inside = (data.heavy_steps >= steps[i]) & (data.heavy_steps <= steps[i + w - 1])
+        grads = g[inside]
+        if np.isfinite(peak) and peak > 0 and np.isfinite(grads).any() and _median(grads) <= t.plateau_grad * peak:
+            hits.append((int(steps[i]), int(steps[i + w - 1]), float(np.median(part)), _median(grads) / peak))
+    out = []
+    for first, last, level_loss, grad_share in hits:
+        if out and first <= out[-1].last_step:
+            f = out[-1]
+            out[-1] = Finding(f.kind, f.tensors, f.first_step, last, f.severity, f.evidence, f.suggestion, f.source)
+        else:
+            out.append(Finding("plateau", [], first, last, "warning",
+                               {"loss": level_loss, "best_loss": best, "grad_norm_share_of_peak": grad_share},
+                               "The loss is flat well above its best while gradients are small: a saddle or a "
+                               "badly scaled region. Try a larger learning rate, warm restarts, or another "
+                               "optimizer from here. " + REPLAY.format(step=first) + ".", "common practice"))
+    return out
+
+
+def _over_stability_limit(data, t):
+    sharp = np.asarray(data.run.series("sharpness"), dtype=np.float64) if "sharpness" in data.run.quantities else None
+    if sharp is None or not len(sharp):
+        return []
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        values = np.nanmax(sharp, axis=1)                                          # (steps,)
+    rows = np.flatnonzero(np.isfinite(values))
+    name = data.meta.get("optimizer", {}).get("class", "")
+    groups = data.meta.get("param_groups", [])
+    if not len(rows) or not groups:
+        return []
+    lr = np.asarray(data.run.lr, dtype=np.float64)
+    hits = []
+    beta1 = float((groups[0].get("betas") or (0.9, 0.999))[0])
+    for r in rows:
+        # Adam's analysis assumes a slowly changing preconditioner; in the bias-correction transient
+        # (1 − β1^t < 0.9: the first 22 steps at β1 = 0.9) it does not hold, so those rows are skipped
+        if name in ADAM_FAMILY and 1 - beta1 ** (data.steps[r] + 1) < 0.9:
+            continue
+        limit = stability_limit(name, {**groups[0], "lr": float(lr[r, 0])})
+        if limit is not None and values[r] > t.stability_margin * limit.limit:
+            hits.append((r, values[r], limit))
+    out = []
+    for r, value, limit in hits:
+        step = int(data.steps[r])
+        if out and out[-1][1] == rows[max(0, np.searchsorted(rows, r) - 1)]:
+            out[-1] = (out[-1][0], r, max(out[-1][2], value / limit.limit), out[-1][3], out[-1][4])
+        else:
+            out.append((r, r, value / limit.limit, value, limit))
+    findings = []
+    for a, b, ratio, value, limit in out:
+        step = int(data.steps[a])
+        after = data.loss[a:a + 11]
+        rise = float(np.nanmax(after) / data.loss[a]) if np.isfinite(after).any() and data.loss[a] > 0 else math.nan
+        kind = "preconditioned sharpness" if limit.preconditioned else "sharpness"
+        findings.append(Finding("over-stability-limit", [], step, int(data.steps[b]), "warning",
+                                {"sharpness": float(value), "limit": float(limit.limit), "max_ratio": float(ratio),
+                                 "lr": float(lr[a, 0]), "loss_rise_next_10_steps": rise},
+                                f"The {kind} ({value:.4g}) is above the stability limit {limit.rule} = "
+                                f"{limit.limit:.4g} of {name} at lr={lr[a, 0]:.3g}: steps along the sharpest "
+                                "direction grow instead of shrinking. Lower the learning rate (or add warm-up). " +
+                                REPLAY.format(step=step) + ".", limit.source))
+    return findings
+
+
+def _noise_scale(data, t):
+    noise = np.asarray(data.run.series("noise_scale"), dtype=np.float64)[:, 0] if len(data.steps) else np.zeros(0)
+    size = data.meta.get("noise_batch_size")
+    finite = noise[np.isfinite(noise) & (noise > 0)]
+    if not len(finite) or not size:
+        return []
+    median = float(np.median(finite))
+    rows = np.flatnonzero(np.isfinite(noise))
+    first, last = int(data.steps[rows[0]]), int(data.steps[rows[-1]])
+    evidence = {"median_noise_scale": median, "batch_size": float(size)}
+    if size * t.noise_factor < median:
+        text = (f"The batch ({size}) is far below the gradient noise scale (median {median:.3g}): steps are "
+                "dominated by noise; larger batches (or a lower learning rate) would make each step count more.")
+    elif size > t.noise_factor * median:
+        text = (f"The batch ({size}) is far above the gradient noise scale (median {median:.3g}): extra examples "
+                "per step buy little; smaller batches would give more steps for the same compute.")
+    else:
+        return []
+    return [Finding("noise-scale", [], first, last, "info", evidence, text + " " + REPLAY.format(step=first) + ".",
+                    "McCandlish et al. 2018, An Empirical Model of Large-Batch Training")]
