@@ -4,7 +4,8 @@ __version__ = "0.1.0"
 from nbkit.record.recorder import Recorder
 from nbkit.store.reader import Recording, load
 from nbkit.replay.replay import replay
-from nbkit.errors import NbkitError, RecorderError, RecorderWarning, RecordingError, ReplayError
+from nbkit.errors import NbkitError, RecorderError, RecorderWarning, RecordingError, RecordingWarning, ReplayError
+from nbkit.record.distributed import record_local_gradients
 
 
 def record(model, optimizer, path, *, every=1, probes=64, keyframe_every=100, criterion=None, step_fn=None,
@@ -24,10 +25,27 @@ def record(model, optimizer, path, *, every=1, probes=64, keyframe_every=100, cr
     resume=False: True appends to an existing recording; steps continue.
     overwrite=False: True replaces an existing recording at `path`.
     """
-    return Recorder(model, optimizer, path, every=every, probes=probes, keyframe_every=keyframe_every,
-                    criterion=criterion, step_fn=step_fn, curvature_every=curvature_every,
-                    noise_every=noise_every, flush_seconds=flush_seconds, expected_steps=expected_steps,
-                    strict=strict, resume=resume, overwrite=overwrite)
+    from nbkit.record import distributed
+
+    # Under torch.distributed one rank records (gradients are already averaged); the others pay
+    # only this rank check. A DDP wrapper is unwrapped so tensor names have no "module." prefix.
+    rank, _ = distributed.rank_and_world()
+    if rank != 0:
+        return distributed.InactiveRecorder(path, probes, rank)
+    return Recorder(distributed.unwrap(model), optimizer, path, every=every, probes=probes,
+                    keyframe_every=keyframe_every, criterion=criterion, step_fn=step_fn,
+                    curvature_every=curvature_every, noise_every=noise_every, flush_seconds=flush_seconds,
+                    expected_steps=expected_steps, strict=strict, resume=resume, overwrite=overwrite,
+                    _extra_meta=distributed.distributed_meta())
+
+
+def explore(run, *, quantity="update_ratio"):
+    """The explorer of one recording (an ipywidgets widget): timeline, layer map, coordinate view and
+    findings on one step cursor. `run`: a Recording, a recording's path, or a live Recorder (same kernel).
+    quantity="update_ratio": the layer map's quantity at start (any name in run.quantities)."""
+    from nbkit.views.explorer import explore as _explore
+
+    return _explore(run, quantity=quantity)
 
 
 def compare(run, *others, model=None, step_fn=None, batch=None):
@@ -48,9 +66,11 @@ def landscape(model, step_fn, batch, runs, resolution=21, progress=True):
 
 __all__ = [
     # recording
-    "record", "Recorder", "load", "Recording",
+    "record", "Recorder", "load", "Recording", "record_local_gradients",
+    # views
+    "explore",
     # replays and their comparison
     "replay", "compare", "landscape",
     # errors
-    "NbkitError", "RecorderError", "RecorderWarning", "RecordingError", "ReplayError",
+    "NbkitError", "RecorderError", "RecorderWarning", "RecordingError", "RecordingWarning", "ReplayError",
 ]

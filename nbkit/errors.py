@@ -19,3 +19,7 @@ class ReplayError(NbkitError):
 
 class RecorderWarning(UserWarning):
     """A recorder problem that was reported instead of raised (strict=False)."""
+
+
+class RecordingWarning(UserWarning):
+    """A recording opened fine but is incomplete (for example it was not closed cleanly)."""

@@ -1,11 +1,13 @@
 """Reading a recording: `nbkit.load(path)` -> Recording. Works while a recorder still writes to it."""
 from __future__ import annotations
 
+import os
+import warnings
 from pathlib import Path
 
 import numpy as np
 
-from nbkit.errors import RecordingError
+from nbkit.errors import RecordingError, RecordingWarning
 from nbkit.store import keyframes as kf
 from nbkit.store.files import COMMITTED_FILE, FORMAT_VERSION, META_FILE, OVERVIEW_BLOCK, read_json
 
@@ -50,16 +52,29 @@ class Recording:
             if not isinstance(meta.get(key), kind):
                 raise RecordingError(f"Metadata file {str(meta_path)!r} lacks a valid {key!r} entry "
                                      f"(expected {kind.__name__}); it was tampered with or truncated")
+        _check_entries(meta, meta_path)
         self.meta = meta
         committed_path = self.path / COMMITTED_FILE
         try:
             committed = read_json(committed_path)
             self._rows = int(committed["rows"])
-        except (OSError, ValueError, KeyError, TypeError) as exc:
+            if not isinstance(committed, dict) or isinstance(committed["rows"], bool):
+                raise TypeError("not a row count")
+        except (OSError, ValueError, KeyError, TypeError, OverflowError) as exc:
             raise RecordingError(f"Commit file {str(committed_path)!r} is missing or damaged ({exc})") from exc
+        if self._rows < 0:
+            raise RecordingError(f"Commit file {str(committed_path)!r} has a negative row count; it was tampered with")
         self.closed_cleanly = bool(committed.get("closed", False))
+        local_rows = committed.get("local_rows", 0)
+        self._local_rows = local_rows if isinstance(local_rows, int) and local_rows > 0 else 0
         self._group = None
         self._cache: dict = {}
+        if not self.closed_cleanly and not getattr(self, "_warned_unclosed", False) and not _writer_alive(meta):
+            self._warned_unclosed = True
+            cause = f" (the writer reported {meta['writer_error']})" if meta.get("writer_error") else ""
+            warnings.warn(f"Recording {str(self.path)!r} was not closed cleanly{cause}: it holds {self._rows} "
+                          f"committed steps{_last_step_text(committed)}; steps after the last flush were lost. "
+                          "Everything it holds is readable.", RecordingWarning, stacklevel=3)
         return self
 
     @property
@@ -227,6 +242,74 @@ class Recording:
 
     def size_bytes(self) -> int:
         return sum(f.stat().st_size for f in self.path.rglob("*") if f.is_file())
+
+    def size_report(self) -> dict:
+        """Bytes on disk by part ("rows": step arrays, "keyframes", "metadata", "total") and per step."""
+        parts = {"rows": 0, "keyframes": 0, "metadata": 0}
+        for f in self.path.rglob("*"):
+            if f.is_file():
+                top = f.relative_to(self.path).parts[0]
+                part = "keyframes" if top == kf.KEYFRAME_DIR else "metadata" if len(f.relative_to(self.path).parts) == 1 else "rows"
+                parts[part] += f.stat().st_size
+        parts["total"] = sum(parts.values())
+        parts["steps"] = self._rows
+        parts["row_bytes_per_step"] = parts["rows"] / self._rows if self._rows else float("nan")
+        parts["estimate"] = self.meta.get("size_estimate")
+        return parts
+
+    def local_gradients(self, tensor: str) -> dict[str, np.ndarray]:
+        """Each rank's own gradient before DDP averaged it (nbkit.record_local_gradients).
+
+        "step": (rows,); "grad_norm": (rows, ranks); "grad": (rows, ranks, probes) at the tensor's
+        probe coordinates (the same ones as probes(tensor)["index"]).
+        """
+        if not self.meta.get("distributed", {}).get("local_gradients"):
+            raise RecordingError(f"Recording {str(self.path)!r} has no local gradients; record them with "
+                                 "nbkit.record_local_gradients(ddp_model, recorder) before the first backward")
+        i, n = self.tensor_index(tensor), len(self.probe_index(tensor)) if self._rows else 0
+        if self._local_rows == 0:
+            ranks = self.meta["distributed"]["world_size"]
+            return {"step": np.zeros(0, np.int64), "grad_norm": np.zeros((0, ranks)), "grad": np.zeros((0, ranks, n))}
+        values = self._read("local/values", (slice(0, self._local_rows), slice(None), i))    # (rows, ranks, 1 + P)
+        return {"step": self._read("local/step", slice(0, self._local_rows)),
+                "grad_norm": values[:, :, 0], "grad": values[:, :, 1:1 + n]}
+
+
+def _check_entries(meta: dict, meta_path: Path) -> None:
+    """The entries every reader method relies on, checked once so tampering gives one clear error."""
+    def bad(what):
+        raise RecordingError(f"Metadata file {str(meta_path)!r} has an invalid {what}; "
+                             "it was tampered with or truncated. Restore it from a copy of the recording")
+    if meta["probes"] < 0 or isinstance(meta["probes"], bool):
+        bad("'probes' entry")
+    for t in meta["tensors"]:
+        if not (isinstance(t, dict) and isinstance(t.get("name"), str) and isinstance(t.get("layer", ""), str)
+                and isinstance(t.get("shape", []), list)):
+            bad(f"tensor entry {str(t)[:60]!r}")
+    if not all(isinstance(q, str) for q in meta["quantities"]):
+        bad("'quantities' entry")
+    for key, kind in (("probe_fields", list), ("optimizer", dict), ("param_groups", list), ("distributed", dict)):
+        if key in meta and not isinstance(meta[key], kind):
+            bad(f"{key!r} entry (expected {kind.__name__})")
+
+
+def _writer_alive(meta: dict) -> bool:
+    """Whether the process that wrote the recording may still be writing it (same machine only)."""
+    pid = meta.get("pid")
+    if not isinstance(pid, int) or pid <= 0:
+        return False
+    try:
+        os.kill(pid, 0)
+    except (ProcessLookupError, OverflowError):
+        return False
+    except OSError:                      # e.g. PermissionError: a process of another user has it
+        return True
+    return True
+
+
+def _last_step_text(committed: dict) -> str:
+    last = committed.get("last_step")
+    return f" (up to optimizer step {last})" if isinstance(last, int) else ""
 
 
 def _clip(rows: slice | None, n: int) -> slice:

@@ -226,7 +226,7 @@ class RecordingWriter:
                 self._publish(closed=False)
             return
         rows, self._buffer = self._buffer, []
-        if not self._arrays:
+        if "step" not in self._arrays:
             self._create_arrays(rows[0])
         start, stop = self._rows, self._rows + len(rows)
         if stop > self._capacity:
