@@ -78,12 +78,13 @@ def _rows(rng, start, n, total, T, P, heavy_every, scale, spike_at):
         "weight_norm": 10 * scale ** 0.25 * np.ones((n, T)), "update_norm": 1e-3 * noise * np.sqrt(scale),
         "gain_median": np.exp(0.5 * rng.standard_normal((n, T))) / np.sqrt(scale),
         "momentum_factor_median": 1 + 0.1 * rng.standard_normal((n, T)),
-        "scale_factor_median": 1 / np.sqrt(scale) * noise, "residual_median": np.ones((n, T)),
+        "residual_median": np.ones((n, T)),
         "grad_cosine": np.clip(0.5 + 0.2 * rng.standard_normal((n, T)), -1, 1),
         "update_grad_cosine": np.clip(0.8 + 0.1 * rng.standard_normal((n, T)), -1, 1),
         "dead_rows": np.zeros((n, T)), "nonfinite": np.zeros((n, T)),
     }
     values["update_ratio"] = values["update_norm"] / values["weight_norm"]
+    values["scale_factor_median"] = values["gain_median"]
     for name in SHARES:
         values[name] = rng.beta(1, 8, size=(n, T))
     for i, name in enumerate(QUANTITIES):
@@ -96,7 +97,7 @@ def _rows(rng, start, n, total, T, P, heavy_every, scale, spike_at):
                "hist": np.zeros((3, T, HISTOGRAM_BINS + 2), dtype=np.uint32), "probes": {}}
         if heavy[k]:
             row["hist"] = _histograms(rng, T, grad_norm[k])
-            row["probes"] = _probes(rng, T, P, grad_norm[k], lr[k])
+            row["probes"] = _probes(rng, T, P, grad_norm[k], lr[k], values["gain_median"][k])
         yield row
 
 
@@ -111,10 +112,10 @@ def _histograms(rng, T, grad_norm):
     return hist
 
 
-def _probes(rng, T, P, grad_norm, lr):
+def _probes(rng, T, P, grad_norm, lr, gain_median):
     grad = (grad_norm[:, None] / 8) * rng.standard_normal((T, P))
     momentum = np.exp(0.4 * rng.standard_normal((T, P))) * np.where(rng.random((T, P)) < 0.05, -1, 1)
-    scale = np.exp(rng.normal(0, 1.0, (T, P))) / np.abs(grad_norm[:, None] / 8)
+    scale = gain_median[:, None] * np.exp(rng.normal(0, 0.6, (T, P)))      # gain ~ momentum x scale
     update = -lr * grad * momentum * scale
     out = {"grad": grad, "update": update, "first_moment": grad * momentum, "second_moment": (grad / 0.1) ** 2,
            "momentum_factor": momentum, "scale_factor": scale, "residual": np.ones((T, P))}

@@ -1,0 +1,183 @@
+"""What the views read from a Recording: lazy, cached by storage block, downsampled to pixels.
+
+Views only select; every number shown comes from the recording as stored. Reads go through the
+Recording's public API, except the probe and histogram fields, which are read straight from
+`run.group` so that a cursor move decodes only the fields it draws (the reader's probes() decodes
+every field). Blocks of rows are cached, so scrubbing inside one storage chunk costs no reads.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from nbkit.store.files import DETAIL_CHUNK, OVERVIEW_BLOCK, STEP_CHUNK
+
+LONG = 16_384            # rows above which timelines use the stored min/max overview
+HISTOGRAM_BLOCKS = 64    # storage blocks sampled for a long recording's histogram image (each ~6 ms)
+HISTOGRAM_COLUMNS = 400  # columns of a short recording's histogram image
+
+
+def minmax_downsample(x: np.ndarray, y: np.ndarray, buckets: int) -> tuple[np.ndarray, np.ndarray]:
+    """At most 2*buckets points that keep each bucket's minimum and maximum (spikes survive)."""
+    n = len(y)
+    if n <= 2 * buckets:
+        return x, y
+    edges = np.linspace(0, n, buckets + 1).astype(np.int64)
+    xs, ys = [], []
+    for a, b in zip(edges[:-1], edges[1:]):
+        chunk = y[a:b]
+        finite = np.isfinite(chunk)
+        if not finite.any():
+            xs += [x[a]]
+            ys += [np.nan]
+            continue
+        lo, hi = np.nanargmin(chunk), np.nanargmax(chunk)
+        for k in sorted({lo, hi}):
+            xs.append(x[a + k])
+            ys.append(chunk[k])
+    return np.asarray(xs), np.asarray(ys)
+
+
+class RunData:
+    """Cached selections from one Recording for the explorer's parts."""
+
+    def __init__(self, run):
+        self.run = run
+        self.reload()
+
+    def reload(self) -> None:
+        """Forget caches of rows that may have grown (call after run.refresh())."""
+        self.steps = self.run.steps                                   # (rows,) int64
+        self.rows = len(self.steps)
+        self._block_cache: dict = {}
+        self._hist_cache: dict = {}
+        self._heavy = None
+
+    # --- steps and rows -------------------------------------------------------------------------
+    def row_of(self, step: int) -> int:
+        """Row of the recorded step nearest at or before `step` (first row if before the start)."""
+        if self.rows == 0:
+            return 0
+        return int(np.clip(np.searchsorted(self.steps, step, side="right") - 1, 0, self.rows - 1))
+
+    def heavy_row(self, row: int) -> int | None:
+        """The latest row <= row whose per-tensor quantities were computed, or None."""
+        if self._heavy is None:
+            self._heavy = np.flatnonzero(self.run.heavy)
+        k = np.searchsorted(self._heavy, row, side="right") - 1
+        return int(self._heavy[k]) if k >= 0 else None
+
+    def tensor_group(self, tensor: str) -> int:
+        return int(self.run.meta["tensors"][self.run.tensor_index(tensor)].get("group", 0))
+
+    # --- timelines ------------------------------------------------------------------------------
+    def timeline(self, which: str, buckets: int) -> tuple[np.ndarray, np.ndarray]:
+        """(steps, values) of "loss" or "lr" (first group), at most ~2*buckets points, min/max kept."""
+        if which == "loss" and self.rows > LONG:
+            start, blocks = self.run.overview("loss")                 # (blocks,), (blocks, 2)
+            x = self.steps[np.minimum(start, self.rows - 1)]
+            return np.repeat(x, 2), blocks.reshape(-1).astype(np.float64)
+        values = self.run.loss if which == "loss" else self.run.lr[:, 0]
+        return minmax_downsample(self.steps, values, buckets)
+
+    def layer_map(self, q: str) -> tuple[np.ndarray, np.ndarray, str]:
+        """(column start steps, (tensors, columns) values, how) for the layer-map heatmap."""
+        if self.rows > LONG:
+            start, blocks = self.run.overview(q)                      # (blocks, tensors, 2)
+            return self.steps[np.minimum(start, self.rows - 1)], blocks[:, :, 1].T, \
+                f"maximum per {OVERVIEW_BLOCK} steps"
+        values = self.run.series(q)                                   # (rows, tensors)
+        heavy = np.flatnonzero(self.run.heavy)
+        if len(heavy) and len(heavy) < self.rows:                     # every=N: keep the rows that have values
+            return self.steps[heavy], values[heavy].T, f"every {self.run.meta.get('every', '?')} steps"
+        return self.steps, values.T, "every step"
+
+    def overview_range(self, q: str) -> tuple[float, float, float]:
+        """(min, max, smallest positive) of q over the whole recording, from the overview."""
+        _, blocks = self.run.overview(q)
+        finite = blocks[np.isfinite(blocks)]
+        if finite.size == 0:
+            return np.nan, np.nan, np.nan
+        positive = finite[finite > 0]
+        return float(finite.min()), float(finite.max()), float(positive.min()) if positive.size else np.nan
+
+    def lr_max(self, group: int) -> float:
+        if "lr" not in self._block_cache:
+            self._block_cache["lr"] = self.run.lr                  # (rows, groups), small
+        lr = self._block_cache["lr"][:, group]
+        return float(np.nanmax(lr)) if np.isfinite(lr).any() else np.nan
+
+    def overall_max(self, q: str, tensor: str) -> float:
+        """Largest value of q for tensor over the whole recording (from the overview)."""
+        if q not in self.run.quantities:
+            return np.nan
+        _, blocks = self.run.overview(q)                              # (blocks, tensors, 2)
+        column = blocks[:, self.run.tensor_index(tensor), 1]
+        return float(np.nanmax(column)) if np.isfinite(column).any() else np.nan
+
+    # --- per-row selections (cached by storage block) -------------------------------------------
+    def _block(self, name: str, row: int, chunk: int, column=None) -> np.ndarray:
+        block = row // chunk
+        key = (name, block, column)
+        data = self._block_cache.get(key)
+        if data is None:
+            if len(self._block_cache) > 64:                           # keep memory bounded while scrubbing
+                self._block_cache = {k: v for k, v in self._block_cache.items() if k == "lr"}
+            rows = slice(block * chunk, min((block + 1) * chunk, self.rows))
+            array = self.run.group[name]
+            data = array[rows] if column is None else array[rows, column]
+            self._block_cache[key] = data
+        return data[row - block * chunk]
+
+    def values_at(self, q: str, row: int) -> np.ndarray:
+        """(tensors,) values of q at row."""
+        return np.asarray(self._block(f"q/{q}", row, STEP_CHUNK), dtype=np.float64)
+
+    def value_at(self, q: str, tensor: str, row: int) -> float:
+        return float(self.values_at(q, row)[self.run.tensor_index(tensor)])
+
+    def probe_fields(self) -> list[str]:
+        return list(self.run.meta.get("probe_fields", []))
+
+    def probes_at(self, tensor: str, row: int, fields) -> dict[str, np.ndarray]:
+        """{field: (probes,) values} of tensor's probe coordinates at row (fields that exist)."""
+        i = self.run.tensor_index(tensor)
+        width = len(self.run.probe_index(tensor))
+        have = set(self.probe_fields())
+        return {f: np.asarray(self._block(f"probe/{f}", row, DETAIL_CHUNK, i)[:width], dtype=np.float64)
+                for f in fields if f in have}
+
+    def lr_at(self, row: int) -> np.ndarray:
+        return np.asarray(self._block("lr", row, STEP_CHUNK), dtype=np.float64)
+
+    def histogram_image(self, q: str, tensor: str) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
+        """(column edges in steps, bin edges in log2 units, (bins, columns) share per column, how)."""
+        if (q, tensor) not in self._hist_cache:
+            self._fill_histograms(q)
+        return self._hist_cache[(q, tensor)]
+
+    def _fill_histograms(self, q: str) -> None:
+        """One pass over storage blocks fills the images of every tensor: a block holds all tensors."""
+        edges, _ = self.run.histogram(q, self.run.tensors[0], rows=slice(0, 0))
+        bins = len(edges) - 1
+        array = self.run.group[f"hist/{q}"]
+        blocks = -(-self.rows // DETAIL_CHUNK)
+        if blocks <= HISTOGRAM_BLOCKS:
+            counts = array[0:self.rows, :, :bins].astype(np.float64)              # (rows, T, bins)
+            held = np.flatnonzero(counts.sum(axis=(1, 2)) > 0)                   # rows with a histogram
+            held = held if held.size else np.arange(self.rows)
+            cols = np.linspace(0, len(held), min(HISTOGRAM_COLUMNS, len(held)) + 1).astype(np.int64)
+            image = np.add.reduceat(counts[held], cols[:-1], axis=0)              # (columns, T, bins)
+            cols = np.append(held[cols[:-1]], self.rows)
+            how = "all steps" if len(held) == self.rows else f"the {len(held)} steps with histograms"
+        else:
+            chosen = np.unique(np.linspace(0, blocks - 1, HISTOGRAM_BLOCKS).round().astype(np.int64))
+            image = np.stack([array[b * DETAIL_CHUNK:min((b + 1) * DETAIL_CHUNK, self.rows), :, :bins]
+                              .astype(np.float64).sum(axis=0) for b in chosen])
+            cols = np.append(chosen * DETAIL_CHUNK, self.rows)
+            how = f"{len(chosen)} sampled blocks of {DETAIL_CHUNK} steps out of {blocks}"
+        with np.errstate(invalid="ignore", divide="ignore"):
+            share = image / image.sum(axis=2, keepdims=True)                      # (columns, T, bins)
+        step_edges = np.append(self.steps[np.minimum(cols[:-1], self.rows - 1)], self.steps[-1] + 1)
+        for i, tensor in enumerate(self.run.tensors):
+            self._hist_cache[(q, tensor)] = (step_edges, edges, share[:, i, :].T, how)
+
