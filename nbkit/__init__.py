@@ -6,6 +6,8 @@ from nbkit.store.reader import Recording, load
 from nbkit.replay.replay import replay
 from nbkit.errors import NbkitError, RecorderError, RecorderWarning, RecordingError, RecordingWarning, ReplayError
 from nbkit.record.distributed import record_local_gradients
+from nbkit.analyze.curvature import sharpness
+from nbkit.analyze.noise import noise_scale
 
 
 def record(model, optimizer, path, *, every=1, probes=64, keyframe_every=100, criterion=None, step_fn=None,
@@ -71,6 +73,8 @@ __all__ = [
     "explore",
     # replays and their comparison
     "replay", "compare", "landscape",
+    # analysis
+    "sharpness", "noise_scale",
     # errors
     "NbkitError", "RecorderError", "RecorderWarning", "RecordingError", "RecordingWarning", "ReplayError",
 ]

@@ -34,8 +34,9 @@ class Thresholds:
     spike_min_history: int = 10       # rows needed before spikes are judged
     update_ratio_high: float = 0.25   # 250× the common-practice 1e-3: weights rewritten every few steps
     update_ratio_low: float = 1e-6    # 1000× below 1e-3 while the learning rate is not decayed
-    eps_share: float = 0.5            # "most coordinates": ε outweighs √v̂ for over half of them ...
-    eps_relevant_grad: float = 1e-4   # ... in a tensor whose gradient RMS is at least 1e-4 × the median tensor's
+    eps_share: float = 0.5            # "most coordinates": ε outweighs √v̂ for over half of them
+    relevant_grad: float = 1e-4       # eps-dominated, lost-updates: only tensors whose gradient RMS is at
+                                      # least 1e-4 × the median tensor's (others barely matter to the loss)
     sign_flip: float = 0.65           # oscillation: well above the 0.5 of pure noise ...
     grad_cosine: float = -0.3         # ... with consecutive gradients pointing against each other
     reversed_share: float = 0.6       # overshoot: above the ≤ 0.5 that noise alone gives momentum methods
@@ -59,6 +60,8 @@ def find(run, **thresholds) -> list[Finding]:
     t = Thresholds(**thresholds)
     data = _RunData(run)
     found: list[Finding] = []
+    if not len(data.steps):                   # nothing recorded yet: only the configuration can be judged
+        return _orphans(data, t) + _coupled_decay(data, t)
     for check in (_orphans, _no_gradient, _nonfinite, _grad_spike, _update_ratio, _eps_dominated,
                   _oscillation, _overshoot, _dead_units, _lost_updates, _plateau, _over_stability_limit,
                   _coupled_decay, _noise_scale):
@@ -303,6 +306,17 @@ def _grad_spike(data, t):
     return findings
 
 
+def _relevant(data, t) -> np.ndarray:
+    """(heavy rows, tensors): tensors whose gradient RMS is at least t.relevant_grad × the median tensor's.
+    A tensor with a negligible gradient (a bias cancelled by a following BatchNorm) has no update worth
+    protecting: ε dominating it, or its updates rounding away, is harmless."""
+    rms = data.series("grad_rms")
+    with warnings.catch_warnings(), np.errstate(all="ignore"):
+        warnings.simplefilter("ignore", RuntimeWarning)
+        typical = np.nanmedian(rms, axis=1, keepdims=True)
+        return rms >= t.relevant_grad * typical
+
+
 def _weights(data):
     return [k for k in range(len(data.tensors)) if len(data.shape(k)) >= 2]
 
@@ -336,13 +350,7 @@ def _update_ratio(data, t):
 
 def _eps_dominated(data, t):
     share = data.series("eps_share")
-    rms = data.series("grad_rms")
-    with warnings.catch_warnings(), np.errstate(all="ignore"):
-        warnings.simplefilter("ignore", RuntimeWarning)
-        typical = np.nanmedian(rms, axis=1, keepdims=True)
-    # a tensor whose gradient is negligible next to the others' (a bias cancelled by a following
-    # BatchNorm) has no update worth protecting: ε "dominating" it is harmless
-    relevant = rms >= t.eps_relevant_grad * typical
+    relevant = _relevant(data, t)
     return _per_tensor(data, t, "eps-dominated", "warning",
                        lambda k: (share[:, k] > t.eps_share) & relevant[:, k],
                        lambda k, a, b: {"median_eps_share": _median(share[a:b + 1, k])},
@@ -402,7 +410,8 @@ def _probes_confirm_dead(data, finding) -> bool:
 def _lost_updates(data, t):
     lost = data.series("lost_update_share")
     dtypes = [x["dtype"] for x in data.meta["tensors"]]
-    return _per_tensor(data, t, "lost-updates", "warning", lambda k: lost[:, k] > t.lost_share,
+    relevant = _relevant(data, t)
+    return _per_tensor(data, t, "lost-updates", "warning", lambda k: (lost[:, k] > t.lost_share) & relevant[:, k],
                        lambda k, a, b: {"median_lost_update_share": _median(lost[a:b + 1, k])},
                        "Many updates round to exactly zero in this tensor's precision "
                        f"({'/'.join(sorted(set(dtypes)))}): the step is below half a unit in the last place. Keep a "
