@@ -357,7 +357,9 @@ def _recorder(lane, plan, meta, threads_note):
               "threads": torch.get_num_threads(), "threads_note": threads_note}
     return Recorder(lane.model, lane.optimizer, plan.targets[lane.name], every=meta["every"], probes=meta["probes"],
                     keyframe_every=meta["keyframe_every"], flush_seconds=meta.get("flush_seconds", 5.0),
-                    overwrite=True, _extra_meta={"replay": parent}, _first_step=plan.start)
+                    strict=True, overwrite=True, _extra_meta={"replay": parent}, _first_step=plan.start)
+    # strict: a replay whose recording fails stops with the recorder's error instead of leaving a
+    # silently truncated recording behind
 
 
 def _loop(lanes, recorded, step_fn, fetch, first, end, before_step, strict, bar):

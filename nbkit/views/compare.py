@@ -1,0 +1,326 @@
+"""The comparison: `nbkit.compare(run_a, run_b, ...)`, several recordings on one step cursor.
+
+Parts: the losses overlaid; the chosen quantity of the chosen tensor, one panel per run with a shared
+axis; a difference map (tensors x steps) between two chosen runs; the damped / accelerated /
+reversed shares of the chosen tensor per run at the cursor; and, given model, step_fn and batch,
+the loss-landscape slice. Steps are absolute, so a replay lines up with the run it started from.
+A cursor move updates the existing artists and blits them; figures are redrawn in full only when
+the tensor, quantity or pair changes.
+"""
+from __future__ import annotations
+
+import base64
+import html
+
+import ipywidgets as widgets
+import numpy as np
+import traitlets
+
+from nbkit.views.common import (GAIN_CLASS_COLOURS, SIGNED_MAP, Blitter, compose_png, figure_png, label_of,
+                                make_canvas, safe_call)
+from nbkit.views.landscape import RUN_COLOURS, LandscapePanel, run_names
+
+DEFAULT_QUANTITY = "update_ratio"
+SHARES = ("damped", "accelerated", "reversed")
+# positive magnitudes are compared as log10(a / b); the rest as a - b
+RATIO_QUANTITIES = {"grad_norm", "grad_rms", "grad_max", "weight_norm", "update_norm", "update_ratio", "sharpness",
+                    "noise_scale"}
+
+
+def difference_map(a, b, quantity: str):
+    """(common steps, (tensors, steps) difference, what it is) of `quantity` between recordings a and b."""
+    common, rows_a, rows_b = np.intersect1d(a.steps, b.steps, return_indices=True)
+    tensors = [t for t in a.tensors if t in b.tensors]
+    ka = [a.tensors.index(t) for t in tensors]
+    kb = [b.tensors.index(t) for t in tensors]
+    va = a.series(quantity)[rows_a][:, ka].astype(np.float64).T
+    vb = b.series(quantity)[rows_b][:, kb].astype(np.float64).T
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if quantity in RATIO_QUANTITIES:
+            return common, np.log10(va / vb), tensors, "log10 ratio"
+        return common, va - vb, tensors, "difference"
+
+
+class Comparison(widgets.VBox):
+    """The comparison widget. Set `step`, `tensor` or `quantity` from code; the view follows."""
+
+    step = traitlets.Int(0, help="the cursor: an absolute optimizer step number").tag(sync=True)
+    tensor = traitlets.Unicode("", help="the tensor whose quantity and shares are shown").tag(sync=True)
+    quantity = traitlets.Unicode(DEFAULT_QUANTITY, help="the per-tensor quantity compared").tag(sync=True)
+
+    def __init__(self, run, *others, model=None, step_fn=None, batch=None, quantity=DEFAULT_QUANTITY):
+        import matplotlib.pyplot as plt
+
+        self.runs = run_names([run, *others])
+        self.names = list(self.runs)
+        self.colours = {name: RUN_COLOURS[k % len(RUN_COLOURS)] for k, name in enumerate(self.names)}
+        first = self.runs[self.names[0]]
+        if quantity not in first.quantities:
+            raise ValueError(f"Unknown quantity {quantity!r}; choose one of run.quantities: {', '.join(first.quantities)}")
+        self.steps = np.unique(np.concatenate([r.steps for r in self.runs.values()]))
+        if not len(self.steps):
+            raise ValueError("None of the recordings holds a step yet; record or replay some steps first")
+        self.tensors = [t for t in first.tensors if all(t in r.tensors for r in self.runs.values())]
+        self.pair = (self.names[0], self.names[-1])
+        self._cache: dict = {}
+        self._moving = False
+        with plt.ioff():
+            self._build_figures()
+            self.landscape = None
+            if model is not None and step_fn is not None and batch is not None:
+                self._build_landscape(model, step_fn, batch)
+        self._build_controls(quantity)
+        parts = [self.controls, self.timeline_canvas, self.detail_canvas]
+        if self.landscape is not None:
+            parts.append(self.landscape_canvas)
+        super().__init__(children=[self.header, *parts, self.errors])
+        self.add_class("nbkit-comparison")
+        with self.hold_trait_notifications():
+            self.quantity = quantity
+            self.tensor = self.tensors[0] if self.tensors else ""
+            self.step = int(self.steps[0])
+        self.observe(lambda c: self._guard(self._move, c["new"]), "step")
+        self.observe(lambda c: self._guard(self._redraw), "tensor")
+        self.observe(lambda c: self._guard(self._redraw), "quantity")
+        self._redraw()
+
+    # --- building -------------------------------------------------------------------------------
+    def _build_figures(self):
+        n = len(self.names)
+        self.timeline_figure, self.timeline_canvas = make_canvas(max(760, 250 * n), 440,
+                                                                 css_class="nbkit-comparison-timeline")
+        grid = self.timeline_figure.add_gridspec(2, n, height_ratios=[1.1, 1.0], hspace=0.45, wspace=0.08)
+        self.loss_axes = self.timeline_figure.add_subplot(grid[0, :])
+        self.quantity_axes = [self.timeline_figure.add_subplot(grid[1, 0])]
+        for k in range(1, n):
+            self.quantity_axes.append(self.timeline_figure.add_subplot(grid[1, k], sharey=self.quantity_axes[0]))
+        self.timeline_blitter = Blitter(self.timeline_figure)
+        self.loss_lines = {}
+        for name in self.names:
+            run = self.runs[name]
+            self.loss_lines[name] = self.loss_axes.plot(run.steps, run.loss, color=self.colours[name], linewidth=1.2,
+                                                        label=name)[0]
+        self.loss_axes.set_ylabel("loss")
+        self.loss_axes.legend(fontsize=8, loc="upper right", ncol=min(4, n))
+        self.quantity_lines = {name: ax.plot([], [], color=self.colours[name], linewidth=1.1)[0]
+                               for name, ax in zip(self.names, self.quantity_axes)}
+        for name, ax in zip(self.names, self.quantity_axes):
+            ax.set_title(name, fontsize=9, color=self.colours[name], loc="left")
+            ax.set_xlabel("step")
+        for ax in self.quantity_axes[1:]:
+            ax.tick_params(labelleft=False)
+        self.cursors = [self.timeline_blitter.add(ax.axvline(0, color="black", linewidth=0.9, alpha=0.8))
+                        for ax in (self.loss_axes, *self.quantity_axes)]
+        self.cursor_dots = {name: self.timeline_blitter.add(ax.plot([], [], "o", color=self.colours[name],
+                                                                     markersize=5)[0])
+                            for name, ax in zip(self.names, self.quantity_axes)}
+
+        self.detail_figure, self.detail_canvas = make_canvas(max(760, 250 * n), 360,
+                                                             css_class="nbkit-comparison-detail")
+        grid = self.detail_figure.add_gridspec(1, 2, width_ratios=[2.2, 1.0], wspace=0.55)
+        self.map_axes = self.detail_figure.add_subplot(grid[0, 0])
+        self.share_axes = self.detail_figure.add_subplot(grid[0, 1])
+        self.detail_blitter = Blitter(self.detail_figure)
+        self.map_image = self.map_axes.imshow(np.zeros((1, 1)), aspect="auto", cmap=SIGNED_MAP, interpolation="nearest")
+        self.map_colorbar = self.detail_figure.colorbar(self.map_image, ax=self.map_axes, shrink=0.9)
+        self.map_cursor = self.detail_blitter.add(self.map_axes.axvline(0, color="black", linewidth=0.9))
+        width = 0.8 / len(SHARES)
+        positions = np.arange(n)
+        self.bars = {}
+        for k, share in enumerate(SHARES):
+            container = self.share_axes.bar(positions + (k - 1) * width, np.zeros(n), width,
+                                            color=GAIN_CLASS_COLOURS[share], label=share)
+            self.bars[share] = [self.detail_blitter.add(bar) for bar in container]
+        self.share_axes.set_xticks(positions, self.names, rotation=20, fontsize=8)
+        self.share_axes.set_ylabel("share of coordinates with defined gain")
+        self.share_axes.legend(fontsize=7, loc="upper right")
+        self.share_title = self.detail_blitter.add(self.share_axes.set_title("", fontsize=9, loc="left"))
+
+    def _build_landscape(self, model, step_fn, batch):
+        from nbkit.analyze.landscape import landscape_slice
+
+        self.landscape = landscape_slice(model, step_fn, batch, self.runs)
+        self.landscape_figure, self.landscape_canvas = make_canvas(620, 480, css_class="nbkit-comparison-landscape")
+        self.landscape_panel = LandscapePanel(self.landscape_figure.add_subplot(1, 1, 1), self.landscape, self.colours)
+        self.landscape_figure.tight_layout()
+
+    def _build_controls(self, quantity):
+        first = self.runs[self.names[0]]
+        lines = []
+        for name, run in self.runs.items():
+            parent = (run.meta.get("replay") or {})
+            origin = f", replay of {html.escape(str(parent.get('parent')))} from step {parent.get('start')}" \
+                if parent else ""
+            lines.append(f"<span style='color:{self.colours[name]}'>■</span> <b>{html.escape(name)}</b>: "
+                         f"{html.escape(run.meta['optimizer']['class'])}, steps {int(run.steps[0])}–"
+                         f"{int(run.steps[-1])}{origin}")
+        self.header = widgets.HTML("<br>".join(lines))
+        self.slider = widgets.IntSlider(int(self.steps[0]), min=int(self.steps[0]), max=int(self.steps[-1]),
+                                        description="step", continuous_update=True)
+        self.tensor_menu = widgets.Dropdown(options=self.tensors, description="tensor")
+        self.quantity_menu = widgets.Dropdown(options=first.quantities, value=quantity, description="quantity")
+        self.pair_menus = [widgets.Dropdown(options=self.names, value=v, description=d, layout={"width": "220px"})
+                           for v, d in zip(self.pair, ("map: run", "minus"))]
+        self.slider.observe(lambda c: self._guard(setattr, self, "step", int(c["new"])), "value")
+        self.tensor_menu.observe(lambda c: self._guard(setattr, self, "tensor", c["new"]), "value")
+        self.quantity_menu.observe(lambda c: self._guard(setattr, self, "quantity", c["new"]), "value")
+        for menu in self.pair_menus:
+            menu.observe(lambda c: self._guard(self._set_pair), "value")
+        self.controls = widgets.VBox([widgets.HBox([self.slider, self.tensor_menu]),
+                                      widgets.HBox([self.quantity_menu, *self.pair_menus])])
+        self.errors = widgets.HTML("")
+
+    # --- reacting -------------------------------------------------------------------------------
+    def _guard(self, fn, *args):
+        return safe_call(fn, *args, on_error=self._show_error)
+
+    def _show_error(self, text):
+        self.errors.value = ("<details open><summary>the comparison hit an error and carried on</summary>"
+                             f"<pre>{html.escape(text[-4000:])}</pre></details>")
+
+    def _set_pair(self):
+        self.pair = tuple(menu.value for menu in self.pair_menus)
+        self._redraw()
+
+    def _series(self, name, quantity, tensor):
+        key = (name, quantity, tensor)
+        if key not in self._cache:
+            self._cache[key] = self.runs[name].series(quantity, tensor).astype(np.float64)
+        return self._cache[key]
+
+    def snap(self, step: int) -> int:
+        k = int(np.clip(np.searchsorted(self.steps, step), 0, len(self.steps) - 1))
+        if k > 0 and abs(self.steps[k - 1] - step) <= abs(self.steps[k] - step):
+            k -= 1
+        return int(self.steps[k])
+
+    def shares_at(self, step: int) -> dict:
+        """{run: {share: value}} of the chosen tensor at `step` (NaN where a run has no such step)."""
+        out = {}
+        for name, run in self.runs.items():
+            row = int(np.searchsorted(run.steps, step))
+            inside = row < len(run.steps) and run.steps[row] == step
+            out[name] = {s: float(self._series(name, s, self.tensor)[row]) if inside else np.nan for s in SHARES}
+        return out
+
+    # --- drawing --------------------------------------------------------------------------------
+    def _redraw(self):
+        """Full redraw: the tensor, quantity or pair changed."""
+        if self.tensor not in self.tensors:
+            raise ValueError(f"No tensor named {self.tensor!r} in all compared runs; pick one of {self.tensors[:8]}")
+        if self.quantity not in self.runs[self.names[0]].quantities:
+            raise ValueError(f"Unknown quantity {self.quantity!r}; choose one of run.quantities")
+        values = []
+        for name, line in self.quantity_lines.items():
+            series = self._series(name, self.quantity, self.tensor)
+            line.set_data(self.runs[name].steps, series)
+            values.append(series[np.isfinite(series)])
+        values = np.concatenate(values)
+        axes = self.quantity_axes[0]
+        if values.size:
+            low, high = values.min(), values.max()
+            if low > 0 and high / low > 50:
+                axes.set_yscale("log")
+            else:
+                axes.set_yscale("linear")
+            pad = 0.05 * (high - low) if high > low else max(abs(high), 1e-12) * 0.1
+            axes.set_ylim(low - pad if axes.get_yscale() == "linear" else low / 1.2,
+                          high + pad if axes.get_yscale() == "linear" else high * 1.2)
+        for ax in self.quantity_axes:
+            ax.set_xlim(self.steps[0], max(self.steps[-1], self.steps[0] + 1))
+        axes.set_ylabel(self.quantity, fontsize=8)
+        self.loss_axes.set_title(f"loss of each run (above); {label_of(self.quantity)} of {self.tensor} (below)",
+                                 fontsize=9, loc="left")
+        self.loss_axes.set_xlim(self.steps[0], max(self.steps[-1], self.steps[0] + 1))
+        a, b = self.pair
+        common, diff, tensors, what = difference_map(self.runs[a], self.runs[b], self.quantity)
+        finite = np.abs(diff[np.isfinite(diff)])
+        limit = float(np.percentile(finite, 99)) if finite.size else 1.0
+        limit = limit if limit > 0 else 1.0
+        self.map_image.set_data(np.ma.masked_invalid(diff))
+        self.map_image.set_clim(-limit, limit)
+        span = (common[0] - 0.5, common[-1] + 0.5) if len(common) else (0, 1)
+        self.map_image.set_extent((*span, len(tensors) - 0.5, -0.5))
+        self.map_axes.set_yticks(range(len(tensors)), tensors, fontsize=7)
+        self.map_axes.set_xlabel("step")
+        self.map_axes.set_title(f"{what} of {self.quantity}: {a} vs {b}", fontsize=9, loc="left")
+        self.map_colorbar.set_label(f"{what} ({a} vs {b})", fontsize=8)
+        top = max([np.nanmax(self._series(n, s, self.tensor), initial=0.0) for n in self.names for s in SHARES])
+        self.share_axes.set_ylim(0, max(1e-3, min(1.0, 1.15 * top)))
+        self._moving = False
+        self._place(self.step)
+        self.errors.value = ""
+        self.timeline_blitter.full()
+        self.detail_blitter.full()
+        if self.landscape is not None:
+            self.landscape_canvas.draw_idle()
+
+    def _place(self, step):
+        """Point every artist (and control) that follows the cursor at `step`."""
+        step = self.snap(step)
+        self.slider.value = step
+        if self.tensor_menu.value != self.tensor:
+            self.tensor_menu.value = self.tensor
+        if self.quantity_menu.value != self.quantity:
+            self.quantity_menu.value = self.quantity
+        for cursor in self.cursors:
+            cursor.set_xdata([step, step])
+        self.map_cursor.set_xdata([step, step])
+        for name, dot in self.cursor_dots.items():
+            run = self.runs[name]
+            row = int(np.searchsorted(run.steps, step))
+            inside = row < len(run.steps) and run.steps[row] == step
+            value = self._series(name, self.quantity, self.tensor)[row] if inside else np.nan
+            dot.set_data([step], [value])
+        shares = self.shares_at(step)
+        for share in SHARES:
+            for bar, name in zip(self.bars[share], self.names):
+                value = shares[name][share]
+                bar.set_height(0.0 if not np.isfinite(value) else value)
+        self.share_title.set_text(f"gain classes of {self.tensor} at step {step}")
+        if self.landscape is not None:
+            self.landscape_panel.set_cursor(step)
+        return step
+
+    def _move(self, step):
+        if self._moving:
+            return
+        self._moving = True
+        try:
+            snapped = self._place(step)
+            if snapped != self.step:
+                self.step = snapped
+            self.timeline_blitter.update()
+            self.detail_blitter.update()
+            if self.landscape is not None:
+                self.landscape_canvas.draw_idle()
+        finally:
+            self._moving = False
+
+    # --- static output --------------------------------------------------------------------------
+    def png_bytes(self) -> bytes:
+        rows = [[figure_png(self.timeline_figure)], [figure_png(self.detail_figure)]]
+        if self.landscape is not None:
+            rows.append([figure_png(self.landscape_figure)])
+        footer = f"comparison of {', '.join(self.names)}: step {self.step}, tensor {self.tensor}, {self.quantity}"
+        return compose_png(rows, footer)
+
+    def to_png(self, path):
+        """Render the whole view as it is now to a PNG file at `path`."""
+        with open(path, "wb") as handle:
+            handle.write(self.png_bytes())
+        return path
+
+    def close(self):
+        for canvas in (self.timeline_canvas, self.detail_canvas, getattr(self, "landscape_canvas", None)):
+            if canvas is not None:
+                canvas.close()
+        super().close()
+
+    def _repr_mimebundle_(self, **kwargs):
+        bundle = super()._repr_mimebundle_(**kwargs) or {}
+        try:
+            bundle["image/png"] = base64.b64encode(self.png_bytes()).decode("ascii")
+        except Exception:                            # a static image is a fallback; never break display
+            pass
+        return bundle
