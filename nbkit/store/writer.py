@@ -55,6 +55,7 @@ class RecordingWriter:
         self._block_rows: list[np.ndarray] = []   # summaries of the current overview block
         self._block_loss: list[float] = []
         self.dropped_rows = 0
+        self.max_write_seconds = 0.0
         self._local: list[tuple[int, np.ndarray]] = []    # (step, (ranks, tensors, 1 + probes)) rows
         self._local_rows = resume.local_rows if resume is not None else 0
         self.meta.setdefault("format_version", FORMAT_VERSION)
@@ -226,6 +227,7 @@ class RecordingWriter:
                 self._publish(closed=False)
             return
         rows, self._buffer = self._buffer, []
+        started = time.monotonic()
         if "step" not in self._arrays:
             self._create_arrays(rows[0])
         start, stop = self._rows, self._rows + len(rows)
@@ -247,6 +249,8 @@ class RecordingWriter:
             a[f"probe/{name}"][start:stop] = np.stack([r["probes"].get(name, missing) for r in rows])
         self._write_overview(start, summaries, [r["loss"] for r in rows])
         self._rows = stop
+        # how long a flush takes adds to what a crash can lose; published for the loss bound
+        self.max_write_seconds = max(self.max_write_seconds, time.monotonic() - started)
         self._publish(closed=False, last_step=rows[-1]["step"])
 
     def _write_overview(self, start: int, summaries: np.ndarray, losses: list[float]) -> None:
@@ -279,7 +283,8 @@ class RecordingWriter:
         return list(values), list(self._arrays["loss"][start:self._rows])
 
     def _publish(self, *, closed: bool, last_step: int | None = None) -> None:
-        data = {"rows": self._rows, "closed": closed, "time": time.time(), "local_rows": self._local_rows}
+        data = {"rows": self._rows, "closed": closed, "time": time.time(), "local_rows": self._local_rows,
+                "max_write_seconds": round(self.max_write_seconds, 4), "dropped_rows": self.dropped_rows}
         if last_step is None and self._rows:
             last_step = self._last_step
         if last_step is not None:
