@@ -59,11 +59,19 @@ def _number(value) -> str:
     return str(value)
 
 
+def _hyper(value) -> str:
+    if isinstance(value, float):
+        return f"{value:.4g}"
+    if isinstance(value, (list, tuple)):
+        return "(" + ", ".join(_hyper(v) for v in value) + ")"
+    return str(value)
+
+
 def _run_table(run) -> str:
     meta = run.meta
     steps = run.steps
     groups = meta.get("param_groups", [])
-    hyper = "; ".join(", ".join(f"{k}={v}" for k, v in g.items() if k in ("lr", "betas", "eps", "momentum",
+    hyper = "; ".join(", ".join(f"{k}={_hyper(v)}" for k, v in g.items() if k in ("lr", "betas", "eps", "momentum",
                                                                              "weight_decay", "alpha"))
                       for g in groups)
     parent = meta.get("parent") or {}
