@@ -39,7 +39,10 @@ _live_recorders: "weakref.WeakSet[Recorder]" = weakref.WeakSet()
 @atexit.register
 def _close_all_at_exit():
     for recorder in list(_live_recorders):
-        recorder.close()
+        try:
+            recorder.close()
+        except Exception:           # strict mode raises; at interpreter exit there is no caller to tell
+            pass
 
 
 @dataclass
@@ -514,7 +517,12 @@ class Recorder:
             "extra_params": extra,
             "rng": {"torch": torch.get_rng_state(), "numpy": np.random.get_state(), "python": random.getstate()},
         }
-        self._writer.put_keyframe(kf.Snapshot(step, state))
+        try:
+            snapshot = kf.Snapshot(step, state)
+        except TypeError as exc:        # state a keyframe cannot hold without pickle: rows go on
+            self._fail("an optimizer or model state could not be stored in a keyframe", exc, stop=False)
+            return
+        self._writer.put_keyframe(snapshot)
 
     # --- closing --------------------------------------------------------------------------------
     def flush(self):

@@ -69,7 +69,8 @@ class Recording:
         self._local_rows = local_rows if isinstance(local_rows, int) and local_rows > 0 else 0
         self._group = None
         self._cache: dict = {}
-        if not self.closed_cleanly and not getattr(self, "_warned_unclosed", False) and not _writer_alive(meta):
+        if not self.closed_cleanly and not getattr(self, "_warned_unclosed", False) \
+                and (meta.get("writer_error") or not _writer_alive(meta)):
             self._warned_unclosed = True
             cause = f" (the writer reported {meta['writer_error']})" if meta.get("writer_error") else ""
             warnings.warn(f"Recording {str(self.path)!r} was not closed cleanly{cause}: it holds {self._rows} "

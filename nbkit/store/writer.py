@@ -121,6 +121,8 @@ class RecordingWriter:
             except BaseException as exc:       # kept for the recorder to report; keep draining
                 if self.error is None:
                     self.error = exc
+                if kind == "close":
+                    self._note_error()
                 if kind in ("flush", "close"):
                     item.set()
                 closed = kind == "close"
