@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import io
 import traceback
+import warnings
 
 import numpy as np
 
@@ -90,7 +91,9 @@ def make_canvas(width_px: int, height_px: int, *, css_class: str, dpi: int = 100
 
     figure = Figure(figsize=(width_px / dpi, height_px / dpi), dpi=dpi)
     canvas = _canvas_class()(figure)
-    FigureManager(canvas, id(figure))
+    with warnings.catch_warnings():      # ipympl 0.10's Toolbar passes traitlets an argument it deprecates
+        warnings.simplefilter("ignore", DeprecationWarning)
+        FigureManager(canvas, id(figure))
     canvas.header_visible = False
     canvas.footer_visible = False
     canvas.toolbar_visible = False

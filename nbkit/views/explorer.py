@@ -65,7 +65,8 @@ class Explorer(widgets.VBox):
         self.data = RunData(run)
         self._lock = threading.RLock()
         self._moving = False
-        self.findings, findings_note = self._read_findings()
+        self.findings: list = []           # filled by a background thread: findings can take seconds
+        findings_note = "Looking for findings in the background …"
         self.timeline = Timeline(self.data, self._pick_step)
         self.layer_map = LayerMap(self.data, self._pick_tensor)
         self.coordinates = CoordinateView(self.data)
@@ -91,6 +92,8 @@ class Explorer(widgets.VBox):
             # only a weak reference to the optimizer.
             self._live_handle = recorder.optimizer.register_step_post_hook(
                 lambda optimizer, args, kwargs: self._on_recorder_step(recorder))
+        self._findings_done = threading.Event()
+        threading.Thread(target=self._find, name="nbkit-explorer-findings", daemon=True).start()
         if live:
             self._poller = threading.Thread(target=self._poll, name="nbkit-explorer-poll", daemon=True)
             self._poller.start()
@@ -144,6 +147,29 @@ class Explorer(widgets.VBox):
         findings = widgets.VBox([widgets.HTML("<b>findings</b>"), self.findings_note, self.findings_list])
         findings.add_class("nbkit-findings-box")
         return [controls, self.timeline.canvas, pickers, middle, findings, self.errors]
+
+    def _find(self):
+        """Run the findings off the opening path, then show them (list and timeline marks)."""
+        try:
+            found, note = self._read_findings()
+        except Exception as exc:                     # noqa: BLE001 - a findings error must not break the view
+            found, note = [], f"Finding the findings failed ({exc!r}). " + FINDINGS_NOTE
+        with self._lock:
+            self.findings = found
+            self.findings_note.value = f"<small>{html.escape(note)}</small>"
+            self.findings_list.options = self._finding_options()
+            self.findings_list.rows = min(8, max(3, len(found)))
+            if found and self.data.rows:
+                safe_call(self._redraw_timeline, on_error=self._show_error)
+        self._findings_done.set()
+
+    def _redraw_timeline(self):
+        self.timeline.load(self.findings)
+        self.timeline.blitter.full()
+
+    def wait_for_findings(self, timeout: float | None = None) -> bool:
+        """Block until the background search for findings is done (True) or `timeout` passed."""
+        return self._findings_done.wait(timeout)
 
     def _read_findings(self):
         try:
@@ -332,10 +358,11 @@ class Explorer(widgets.VBox):
 
     def close(self):
         self._stopped = True
-        if self._live_handle is not None:
+        if getattr(self, "_live_handle", None) is not None:
             self._live_handle.remove()
-        for part in (self.timeline, self.layer_map, self.coordinates):
-            part.canvas.close()
+        for name in ("timeline", "layer_map", "coordinates"):
+            if hasattr(self, name):
+                getattr(self, name).canvas.close()
         super().close()
 
     # --- static output --------------------------------------------------------------------------

@@ -1,0 +1,268 @@
+"""Headless tests of the explorer: cursor, tensor and finding picks change the right artists, and the
+values drawn equal the recording's values (read back through nbkit.load, the view's own reads aside)."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+
+import nbkit
+from nbkit.analyze.finding import Finding
+from nbkit.measure.quantities import classify_gain
+from nbkit.views import data as view_data
+from nbkit.views.data import minmax_downsample
+
+
+def _train(model, opt, rec, x, y, steps):
+    for _ in range(steps):
+        opt.zero_grad()
+        loss = torch.nn.functional.mse_loss(model(x), y)
+        loss.backward()
+        rec.loss(loss)
+        opt.step()
+
+
+def _model():
+    torch.manual_seed(0)
+    return torch.nn.Sequential(torch.nn.Linear(6, 12), torch.nn.Tanh(), torch.nn.Linear(12, 1))
+
+
+@pytest.fixture(scope="module")
+def run_path(tmp_path_factory):
+    path = tmp_path_factory.mktemp("explorer") / "run"
+    model = _model()
+    opt = torch.optim.Adam(model.parameters(), lr=1e-2)
+    x = torch.randn(32, 6)
+    y = x[:, :1] * 2
+    with nbkit.record(model, opt, path, probes=8, keyframe_every=20) as rec:
+        _train(model, opt, rec, x, y, 60)
+    return path
+
+
+@pytest.fixture(scope="module")
+def view(run_path):
+    """One explorer shared by the tests (opening one costs seconds on a shared 2-core machine);
+    each test sets the state it checks."""
+    v = nbkit.explore(run_path)
+    v.wait_for_findings(60)
+    yield v
+    v.close()
+
+
+def _row(run, step):
+    return int(np.flatnonzero(run.steps == step)[0])
+
+
+def _click(canvas, axes, x, y, kind="button_press_event"):
+    from matplotlib.backend_bases import MouseEvent
+
+    px, py = axes.transData.transform((x, y))
+    canvas.callbacks.process(kind, MouseEvent(kind, canvas, px, py, button=1))
+
+
+def test_cursor_moves_every_part_to_the_recorded_values(view, run_path):
+    run = nbkit.load(run_path)
+    view.step = 37
+    row = _row(run, 37)
+    assert view.step == 37 and "step 37" in view.step_label.value
+    assert view.slider.value == 37
+    assert list(view.timeline.cursors[0].get_xdata()) == [37, 37]
+    assert list(view.layer_map.cursor.get_xdata()) == [37, 37]
+    # layer map: the values at the cursor are the recording's series at that row
+    shown = np.asarray(view.layer_map.values.get_xdata(), dtype=np.float64)
+    expected = run.series(view.quantity)[row].astype(np.float64)
+    np.testing.assert_allclose(shown, np.where(expected > 0, expected, np.nan) if view.layer_map._is_log else expected)
+    # coordinate view: |lr*g| and |update| of the tensor's probes at that row, classes as classify_gain
+    probes = run.probes(view.tensor, rows=slice(row, row + 1))
+    lr = run.lr[row, 0]
+    plain, update = np.abs(lr * probes["grad"][0].astype(np.float64)), np.abs(probes["update"][0].astype(np.float64))
+    keep = (plain > 0) & (update > 0)
+    np.testing.assert_allclose(view.coordinates.points.get_offsets(), np.column_stack([plain[keep], update[keep]]),
+                               rtol=1e-6)
+    gain = probes["update"][0].astype(np.float64) / (-lr * probes["grad"][0].astype(np.float64))
+    median = run.series("gain_median", view.tensor)[row]
+    np.testing.assert_array_equal(view.coordinates.classes, classify_gain(gain, median))
+    assert list(view.coordinates.histogram_cursor.get_xdata()) == [37, 37]
+
+
+def test_step_outside_the_recording_snaps_to_its_end(view):
+    view.step = 10_000
+    assert view.step == 59 and "step 59" in view.step_label.value
+    view.step = -5
+    assert view.step == 0
+
+
+def test_scrubbing_blits_and_never_redraws_or_rebuilds_figures(view):
+    for step in range(30, 41):           # the coordinate axes grow to hold what they show, then stay
+        view.step = step
+    counts = {}
+    artists_before = {}
+    for part in (view.timeline, view.layer_map, view.coordinates):
+        canvas = part.canvas
+        counts[part] = [0, 0]
+        original_draw, original_blit = canvas.draw, canvas.blit
+
+        def draw(original=original_draw, c=counts[part]):
+            c[0] += 1
+            original()
+
+        def blit(bbox=None, original=original_blit, c=counts[part]):
+            c[1] += 1
+            original(bbox)
+        canvas.draw, canvas.blit = draw, blit
+        artists_before[part] = (len(part.figure.axes), [len(ax.get_children()) for ax in part.figure.axes])
+    for step in range(39, 29, -1):
+        view.step = step
+    for part, (draws, blits) in counts.items():
+        assert blits == 10, type(part).__name__
+        assert draws == 0, type(part).__name__
+        assert artists_before[part] == (len(part.figure.axes), [len(ax.get_children()) for ax in part.figure.axes])
+
+
+def test_clicking_a_row_picks_its_tensor_and_loads_its_histogram(view, run_path):
+    run = nbkit.load(run_path)
+    target = run.tensors[2]
+    _click(view.layer_map.canvas, view.layer_map.map_axes, 10, 2)
+    assert view.tensor == target and view.tensor_picker.value == target
+    assert view.coordinates.tensor == target
+    _, counts = run.histogram("gain", target)                              # (steps, bins)
+    any_tensor = sum(run.histogram("gain", t)[1].sum(axis=1) for t in run.tensors) > 0
+    counts = counts[any_tensor]                                             # one column per such step
+    totals = counts.sum(axis=1, keepdims=True)
+    with np.errstate(invalid="ignore"):
+        share = np.where(totals > 0, counts / np.maximum(totals, 1), 0.0)
+    shown = np.asarray(view.coordinates.mesh.get_array().filled(0))
+    np.testing.assert_allclose(shown.reshape(share.T.shape), share.T, rtol=1e-6)
+    assert target in view.coordinates.histogram_note.get_text()
+
+
+def test_dragging_on_the_timeline_moves_the_cursor(view):
+    axes = view.timeline.loss_axes
+    y = float(np.mean(axes.get_ylim()))
+    _click(view.timeline.canvas, axes, 12, y)
+    assert view.step == 12
+    _click(view.timeline.canvas, axes, 25, y, "motion_notify_event")
+    assert view.step == 25
+    _click(view.timeline.canvas, axes, 25, y, "button_release_event")
+    _click(view.timeline.canvas, axes, 40, y, "motion_notify_event")       # not dragging any more
+    assert view.step == 25
+
+
+def test_previous_and_next_buttons_step_by_one_recorded_step(view):
+    view.step = 20
+    view.next_button.click()
+    assert view.step == 21
+    view.previous_button.click()
+    view.previous_button.click()
+    assert view.step == 19
+
+
+def test_clicking_a_finding_moves_the_cursor_and_picks_its_tensor(view):
+    finding = Finding(kind="grad-spike", tensors=[view.run.tensors[3]], first_step=44, last_step=50,
+                      severity="warning", evidence={"ratio": 12.0}, suggestion="check the batch")
+    view.findings = [finding]
+    view.findings_list.options = view._finding_options()
+    view.findings_list.value = 0
+    assert view.step == 44 and view.tensor == view.run.tensors[3]
+    assert "grad-spike" in view.findings_list.options[0][0]
+
+
+def test_findings_note_says_they_are_heuristics(view):
+    assert "heuristic" in view.findings_note.value and "replay" in view.findings_note.value
+
+
+def test_quantity_pick_redraws_the_heatmap_with_the_recorded_values(view, run_path):
+    run = nbkit.load(run_path)
+    view.quantity = "grad_norm"
+    image = view.layer_map.image.get_array()                               # (tensors, columns)
+    np.testing.assert_allclose(np.ma.filled(image, np.nan), run.series("grad_norm").T, rtol=1e-6)
+    assert "gradient" in view.layer_map.colourbar.ax.get_ylabel()
+    assert view.layer_map.image.get_cmap().name == "viridis"
+    view.quantity = "grad_cosine"
+    assert view.layer_map.image.get_cmap().name == "PuOr_r"                # signed: diverging map
+
+
+def test_png_output(view, tmp_path):
+    path = view.to_png(tmp_path / "explorer.png")
+    data = path.read_bytes()
+    assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 20_000
+    bundle = view._repr_mimebundle_()
+    assert "image/png" in bundle and "application/vnd.jupyter.widget-view+json" in bundle
+
+
+def test_bad_input_names_the_problem(run_path):
+    with pytest.raises(TypeError, match="Recording, a recording path or a Recorder"):
+        nbkit.explore(42)
+    with pytest.raises(nbkit.RecordingError, match="No recording found"):
+        nbkit.explore(run_path.parent / "missing")
+    with pytest.raises(ValueError, match="run.quantities"):
+        nbkit.explore(run_path, quantity="loss_curvature")
+
+
+def test_a_failing_part_is_reported_in_the_view_not_raised(view, monkeypatch):
+    def broken(*args, **kwargs):
+        raise RuntimeError("probe read failed on purpose")
+    monkeypatch.setattr(view.data, "probes_at", broken)
+    view.step = 33                                                         # must not raise
+    assert "probe read failed on purpose" in view.errors.value
+    view.errors.value = ""
+
+
+def test_long_recordings_use_the_overview_and_keep_extremes(run_path, monkeypatch):
+    monkeypatch.setattr(view_data, "LONG", 10)                              # treat 60 steps as long
+    run = nbkit.load(run_path)
+    v = nbkit.explore(run)
+    try:
+        y = np.asarray(v.timeline.loss_line.get_ydata(), dtype=np.float64)
+        assert len(y) == 2 * len(run.overview("loss")[0])
+        np.testing.assert_allclose([np.nanmin(y), np.nanmax(y)], [np.nanmin(run.loss), np.nanmax(run.loss)], rtol=1e-6)
+        assert "maximum per 256 steps" in v.layer_map.title.get_text()
+    finally:
+        v.close()
+
+
+def test_minmax_downsample_keeps_spikes():
+    x = np.arange(100_000)
+    y = np.sin(x / 5000.0)
+    y[77_777] = 50.0
+    y[12_345] = -50.0
+    xs, ys = minmax_downsample(x, y, 500)
+    assert len(ys) <= 1000
+    assert ys.max() == 50.0 and xs[np.argmax(ys)] == 77_777 and ys.min() == -50.0
+
+
+@pytest.mark.slow
+def test_live_view_follows_a_running_recorder_and_keeps_a_moved_cursor(tmp_path, monkeypatch):
+    monkeypatch.setattr("nbkit.views.explorer.LIVE_MIN_INTERVAL", 0.0)
+    monkeypatch.setattr("nbkit.views.explorer.LIVE_COST_FACTOR", 0.0)
+    model = _model()
+    opt = torch.optim.Adam(model.parameters(), lr=1e-2)
+    x, y = torch.randn(16, 6), torch.randn(16, 1)
+    rec = nbkit.record(model, opt, tmp_path / "live", probes=4, flush_seconds=60)
+    try:
+        _train(model, opt, rec, x, y, 3)
+        rec.flush()
+        v = nbkit.explore(rec)
+        start_rows = v.data.rows
+        assert v.step == int(v.data.steps[-1])                             # a live view starts at the end
+        import time
+
+        seen = []
+        for _ in range(40):                                                # the hook asks the writer to commit
+            _train(model, opt, rec, x, y, 1)
+            time.sleep(0.02)
+            seen.append(v.data.rows)
+        assert len(set(seen)) >= 3 and seen[-1] > start_rows              # grew, several times, during the loop
+        assert v.step == int(v.data.steps[-1])                             # and the cursor followed the end
+        v.step = 2
+        for _ in range(20):
+            _train(model, opt, rec, x, y, 1)
+            time.sleep(0.02)
+        assert v.step == 2                                                 # a moved cursor stays
+        assert v.errors.value == ""
+        v.close()
+        before = v.data.rows
+        _train(model, opt, rec, x, y, 5)                                   # removed hook: no more refreshes
+        assert v.data.rows == before
+    finally:
+        rec.close()
