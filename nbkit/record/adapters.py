@@ -30,6 +30,7 @@ class StepContext:
     step: torch.Tensor             # (T, 1) the optimizer's own step count after this step
     group: dict                    # the parameter group's hyper-parameters
     lr: float
+    scalars: dict = field(default_factory=dict)   # (T, 1) scalar state after the step (NAdam's mu_product)
 
     def hyper(self, name, default=None):
         return self.group.get(name, default)
@@ -62,6 +63,7 @@ class Adapter:
     gain_applicable: bool = True    # False where post-step gradients do not belong to the update
     notes: str = ""
     renamed: dict = field(default_factory=dict)
+    before_keys: tuple = ()         # state keys the factors need from before the step (sampled pre-step)
 
     def probe_field(self, state_key: str) -> str:
         """Name of a state tensor in the probes: first_moment / second_moment, or its own name."""
@@ -73,7 +75,8 @@ class Adapter:
 
 
 def _ones(like):
-    return torch.ones_like(like)
+    """A factor of exactly 1, constant along each tensor: (T, 1), broadcast where used."""
+    return torch.ones((like.shape[0], 1), dtype=like.dtype)
 
 
 def _divide(numerator, denominator):
@@ -131,7 +134,7 @@ def _nadam(ctx: StepContext) -> Factors:
     t = ctx.step
     mu = beta1 * (1 - 0.5 * 0.96 ** (t * psi))
     mu_next = beta1 * (1 - 0.5 * 0.96 ** ((t + 1) * psi))
-    product = ctx.after["mu_product"]
+    product = ctx.scalars["mu_product"]
     numerator = (1 - mu) / (1 - product) * ctx.effective_grad() + mu_next / (1 - product * mu_next) * ctx.after["exp_avg"]
     root_v_hat = torch.sqrt(ctx.after["exp_avg_sq"] / (1 - beta2 ** t))
     momentum = _divide(numerator, ctx.grad)
@@ -223,7 +226,7 @@ ADAPTERS: dict[str, Adapter] = {
     "Adamax": Adapter("Adamax", "exp_avg", None, _adamax),
     "RMSprop": Adapter("RMSprop", None, "square_avg", _rmsprop),
     "Adagrad": Adapter("Adagrad", None, "sum", _adagrad),
-    "Adadelta": Adapter("Adadelta", None, "square_avg", _adadelta),
+    "Adadelta": Adapter("Adadelta", None, "square_avg", _adadelta, before_keys=("acc_delta",)),
     "SparseAdam": Adapter("SparseAdam", "exp_avg", "exp_avg_sq", _not_applicable,
                           notes="sparse gradients are skipped; moments kept as probes where dense"),
     "Muon": Adapter("Muon", "momentum_buffer", None, _not_applicable,
