@@ -93,7 +93,10 @@ def make_canvas(width_px: int, height_px: int, *, css_class: str, dpi: int = 100
     canvas = _canvas_class()(figure)
     with warnings.catch_warnings():      # ipympl 0.10's Toolbar passes traitlets an argument it deprecates
         warnings.simplefilter("ignore", DeprecationWarning)
-        FigureManager(canvas, id(figure))
+        manager = FigureManager(canvas, id(figure))
+    # Publish the size now (ipympl does it when the browser says "initialized", which a kernel busy
+    # in a training loop never reads): a live view then shows at its size from the first image on.
+    manager.resize(width_px, height_px)
     canvas.header_visible = False
     canvas.footer_visible = False
     canvas.toolbar_visible = False

@@ -1,0 +1,126 @@
+"""One end-to-end test in a real browser: JupyterLab on 127.0.0.1, headless Chromium via Playwright.
+
+It runs notebooks/01-tour.ipynb, moves the explorer's cursor by dragging on the timeline and by the
+slider, and checks from the page that the layer map and coordinate view redrew (canvas pixels
+changed) and that the step shown matches the slider. Then a live notebook: the explorer of a running
+Recorder must change while the training loop in the same kernel is still running. Screenshots go
+to test-output/browser/.
+"""
+from __future__ import annotations
+
+import re
+import time
+from pathlib import Path
+
+import nbformat
+import pytest
+
+from tests.browser_harness import JupyterLab, browser_available
+
+ROOT = Path(__file__).resolve().parents[1]
+OUTPUT = ROOT / "test-output" / "browser"
+EXPLORER = ".nbkit-explorer"
+
+pytestmark = [pytest.mark.browser, pytest.mark.slow]
+
+LIVE_SETUP = """import time, torch, nbkit
+torch.manual_seed(0)
+model = torch.nn.Sequential(torch.nn.Linear(8, 32), torch.nn.Tanh(), torch.nn.Linear(32, 1))
+optimizer = torch.optim.Adam(model.parameters(), lr=1e-2)
+x = torch.randn(128, 8); y = x[:, :2].sum(dim=1, keepdim=True)
+rec = nbkit.record(model, optimizer, "runs/live", probes=16, overwrite=True)
+def train(n):
+    for _ in range(n):
+        optimizer.zero_grad()
+        loss = torch.nn.functional.mse_loss(model(x), y)
+        loss.backward(); rec.loss(loss); optimizer.step()
+train(5); rec.flush()
+view = nbkit.explore(rec)
+view"""
+LIVE_LOOP = """for _ in range(400):      # about 40 s: the view must change while this runs
+    train(1)
+    time.sleep(0.1)
+rec.close()"""
+
+
+def _step_shown(page):
+    text = page.locator(".nbkit-step-label").first.inner_text()
+    match = re.search(r"step (\d+)", text)
+    return int(match.group(1)) if match else None
+
+
+def _readout(page):
+    return int(page.locator(".nbkit-step-slider .widget-readout").first.inner_text().strip())
+
+
+@pytest.fixture(scope="module")
+def live_notebook(tmp_path_factory):
+    nb = nbformat.v4.new_notebook()
+    nb.cells = [nbformat.v4.new_code_cell(LIVE_SETUP), nbformat.v4.new_code_cell(LIVE_LOOP)]
+    nb.metadata["kernelspec"] = {"name": "python3", "display_name": "Python 3", "language": "python"}
+    path = tmp_path_factory.mktemp("live") / "live-explorer.ipynb"
+    nbformat.write(nb, path)
+    return path
+
+
+def test_explorer_scrubs_and_follows_a_live_run_in_jupyterlab(live_notebook):
+    why = browser_available()
+    if why:
+        pytest.skip(why)
+    with JupyterLab([ROOT / "notebooks" / "01-tour.ipynb"], OUTPUT, extra_files=[live_notebook]) as lab:
+        page = lab.open("01-tour.ipynb")
+        lab.run_all(page)
+        lab.wait_for(page, f"{EXPLORER} .nbkit-coordinates canvas", timeout=240)
+        lab.wait_idle()
+        page.locator(f"{EXPLORER} .nbkit-timeline").first.scroll_into_view_if_needed()
+        maps = [lab.stable_digest(page, sel) for sel in (".nbkit-layer-map", ".nbkit-coordinates")]
+        assert all(maps), "the explorer's canvases were never drawn"
+        first = _step_shown(page)
+        lab.screenshot(page, "01-opened")
+
+        # 1. drag on the timeline: the cursor follows the mouse
+        lab.drag(page, ".nbkit-timeline canvas", 0.25, 0.7)
+        after_drag = [lab.stable_digest(page, sel) for sel in (".nbkit-layer-map", ".nbkit-coordinates")]
+        dragged = _step_shown(page)
+        lab.screenshot(page, "02-dragged")
+        assert dragged is not None and dragged != first
+        # the loss axes span 9 %..99 % of the canvas width over steps 0..299
+        assert abs(dragged - (0.7 - 0.09) / 0.90 * 299) < 15, dragged
+        assert _readout(page) == dragged
+        assert after_drag[0] != maps[0] and after_drag[1] != maps[1], "layer map / coordinate view did not redraw"
+
+        # 2. the slider: drag its handle left
+        handle = page.locator(".nbkit-step-slider .noUi-handle").first
+        box = handle.bounding_box()
+        page.mouse.move(box["x"] + box["width"] / 2, box["y"] + box["height"] / 2)
+        page.mouse.down()
+        page.mouse.move(box["x"] - 150, box["y"] + box["height"] / 2, steps=6)
+        page.mouse.up()
+        after_slider = [lab.stable_digest(page, sel) for sel in (".nbkit-layer-map", ".nbkit-coordinates")]
+        slid = _step_shown(page)
+        lab.screenshot(page, "03-slider")
+        assert slid is not None and slid < dragged
+        assert _readout(page) == slid
+        assert after_slider[0] != after_drag[0] and after_slider[1] != after_drag[1]
+
+        # 3. live: the view of a running Recorder changes while the loop still runs
+        live = lab.open("live-explorer.ipynb")
+        lab.run_all(live)
+        lab.wait_for(live, f"{EXPLORER} .nbkit-timeline canvas", timeout=240)
+        seen_steps, seen_pixels, busy = set(), set(), 0
+        deadline = time.monotonic() + 40
+        while time.monotonic() < deadline:
+            kernels = lab.api("/api/kernels")
+            if any(k.get("execution_state") == "busy" for k in kernels):
+                busy += 1
+                step = _step_shown(live)
+                if step is not None:
+                    seen_steps.add(step)
+                seen_pixels.add(lab.canvas_digest(live, ".nbkit-timeline"))
+            elif busy:
+                break                      # the loop ended
+            time.sleep(1.0)
+        lab.screenshot(live, "04-live")
+        assert busy >= 3, "the training loop was not observed running"
+        assert len(seen_steps) >= 2, f"the step shown did not change while the loop ran: {seen_steps}"
+        assert len(seen_pixels - {None}) >= 2, "the timeline did not redraw while the loop ran"
