@@ -6,8 +6,8 @@ planted faults a practitioner could plausibly make:
     (an orphan tensor);
   * the three light sensors arrive in the wrong unit, about 1e-6 of the other features, so the
     light branch's gradients fall below Adam's epsilon and it barely learns (eps-dominated);
-  * the learning-rate warm-up climbs too high, and the loss spikes once the step size passes the
-    stability limit set by the curvature (over-stability-limit).
+  * the learning rate after the warm-up was configured ten times too high, and the loss spikes
+    once the step size passes the stability limit set by the curvature (over-stability-limit).
 """
 from __future__ import annotations
 
@@ -25,8 +25,9 @@ WRONG_UNIT = 1e-6          # the light block's planted unit error (a factor appl
 HOURS = 24 * 60            # two months of hourly readings
 BATCH = 64
 STEPS = 600
-PEAK_LR = 0.1              # warm-up target: too high for this model (the planted spike)
-WARMUP_STEPS = 400
+PEAK_LR = 0.1              # the configured rate after warm-up: a typo for 1e-2 (the planted spike)
+WARMUP_LR = 0.01           # the warm-up's end point
+WARMUP_STEPS = 300
 
 
 def sensor_data(seed: int = 7, *, wrong_unit: bool = True):
@@ -85,8 +86,12 @@ def optimizer_parameters(model: LeafTemperatureNet):
 
 
 def warmup_lr(step: int, peak: float = PEAK_LR) -> float:
-    """Linear warm-up from peak/30 to `peak` over WARMUP_STEPS, then constant."""
-    return peak * min(1.0, (1 + 29 * step / WARMUP_STEPS) / 30)
+    """Linear warm-up from WARMUP_LR/10 to WARMUP_LR over WARMUP_STEPS, then the configured rate
+    `peak`. The planted fault: the configured rate has a typo (1e-1 where 1e-2 was meant), so the
+    rate jumps tenfold at the end of the warm-up."""
+    if step >= WARMUP_STEPS:
+        return peak
+    return WARMUP_LR * (0.1 + 0.9 * step / WARMUP_STEPS)
 
 
 class Batches:
@@ -127,19 +132,20 @@ def adam_lower_lr(groups):
 REPLAY_OPTIMIZERS = {"sgd-momentum": sgd_momentum, "rmsprop": rmsprop, "adam-lr-0.01": adam_lower_lr}
 
 
-def train_first_run(path, *, steps: int = STEPS, curvature_every: int = 25, overwrite: bool = True):
+def train_first_run(path, *, steps: int = STEPS, curvature_every: int = 25, peak_lr: float = PEAK_LR,
+                    overwrite: bool = True):
     """The first run, recorded: Adam with the too-high warm-up, the orphan and the unit error."""
     import nbkit
 
     features, targets = sensor_data()
     batches = Batches(features, targets)
     model = make_model()
-    optimizer = torch.optim.Adam(optimizer_parameters(model), lr=warmup_lr(0))
+    optimizer = torch.optim.Adam(optimizer_parameters(model), lr=warmup_lr(0, peak_lr))
     with nbkit.record(model, optimizer, path, criterion=criterion, curvature_every=curvature_every,
                       keyframe_every=100, overwrite=overwrite):
         for step in range(steps):
             for group in optimizer.param_groups:
-                group["lr"] = warmup_lr(step)
+                group["lr"] = warmup_lr(step, peak_lr)
             inputs, target = batches(step)
             optimizer.zero_grad()
             loss = criterion(model(inputs), target)
