@@ -62,7 +62,7 @@ class RecordingWriter:
         self.meta.setdefault("keyframe_retention", {"budget_bytes": KEYFRAME_BUDGET_BYTES,
                                                     "kept_recent": KEYFRAMES_KEPT_RECENT, "thinned": []})
         self._group = zarr.open_group(str(self.path), mode="a", use_consolidated=False)
-        self._arrays = dict(self._group.arrays()) if resume_rows else {}
+        self._arrays = {}
         if resume_rows:
             self._arrays = {name: self._group[name] for name in self._array_names()}
             # a crash during _grow can leave arrays of different lengths: the shortest one bounds all
