@@ -56,12 +56,13 @@ class TinySequence(torch.nn.Module):
 
 def train(model, optimizer, x, y, steps, path, *, batch=32, criterion=None, seed=0, before=None, scheduler=None,
           **record):
-    """A plain loop, recorded; `before(step, x_batch, model)` may plant a fault and return the batch."""
+    """A plain loop, recorded; `before(step, x_batch, model)` may plant a fault and return the batch.
+    batch=None: full-batch (every step sees all of x)."""
     criterion = criterion or torch.nn.CrossEntropyLoss()
     generator = torch.Generator().manual_seed(seed)
     with nbkit.record(model, optimizer, path, criterion=criterion, keyframe_every=1000, **record):
         for step in range(steps):
-            rows = torch.randint(0, len(x), (batch,), generator=generator)
+            rows = torch.arange(len(x)) if batch is None else torch.randint(0, len(x), (batch,), generator=generator)
             xb, yb = x[rows], y[rows]
             if before is not None:
                 xb = before(step, xb, model)
@@ -126,7 +127,7 @@ def test_healthy_full_batch_regression_with_plain_sgd_is_quiet(tmp_path):
         def forward(self, prediction, target):
             return criterion(prediction.squeeze(-1), target)
 
-    run = train(model, torch.optim.SGD(model.parameters(), lr=0.05), x, y, 300, tmp_path / "reg", batch=256,
+    run = train(model, torch.optim.SGD(model.parameters(), lr=0.05), x, y, 300, tmp_path / "reg", batch=None,
                 criterion=Squeeze())
     assert loud(run.findings()) == [], run.findings()
 
@@ -143,8 +144,16 @@ def test_orphan_names_the_tensor_left_out_of_the_optimizer(tmp_path):
 
 def test_no_gradient_names_the_unused_tensor(tmp_path):
     x, y = digits()
-    model = mlp()
-    model.unused = torch.nn.Linear(3, 3)            # in the optimizer, never in the forward pass
+
+    class WithUnused(torch.nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.net, self.unused = mlp(), torch.nn.Linear(3, 3)   # unused: in the optimizer, not the forward
+
+        def forward(self, xb):
+            return self.net(xb)
+
+    model = WithUnused()
     run = train(model, torch.optim.SGD(model.parameters(), lr=0.05), x, y, 30, tmp_path / "unused")
     found = [f for f in run.findings() if f.kind == "no-gradient"]
     assert sorted(t for f in found for t in f.tensors) == ["unused.bias", "unused.weight"]
@@ -235,7 +244,7 @@ def test_eps_dominated_when_eps_is_far_above_the_gradient_scale(tmp_path):
 def quadratic_run(tmp_path, name, optimizer_factory, steps, *, curvature_every=0, scale=(4.0, 1.0, 0.25)):
     """Linear least squares with a known Hessian diag(scale) (the data are its square roots)."""
     dims = len(scale)
-    x = torch.diag(torch.tensor(scale).sqrt()) * math.sqrt(dims)       # mean of x xᵀ = diag(scale)
+    x = torch.diag(torch.tensor(scale, dtype=torch.float32).sqrt()) * math.sqrt(dims)       # mean of x xᵀ = diag(scale)
     y = torch.zeros(dims)
     torch.manual_seed(0)
     model = torch.nn.Linear(dims, 1, bias=False)
@@ -247,7 +256,7 @@ def quadratic_run(tmp_path, name, optimizer_factory, steps, *, curvature_every=0
             return 0.5 * ((prediction.squeeze(-1) - target) ** 2).mean()
 
     optimizer = optimizer_factory(model.parameters())
-    return train(model, optimizer, x, y, steps, tmp_path / name, batch=dims, criterion=HalfSquare(),
+    return train(model, optimizer, x, y, steps, tmp_path / name, batch=None, criterion=HalfSquare(),
                  curvature_every=curvature_every), model
 
 
@@ -259,10 +268,15 @@ def test_oscillation_on_a_quadratic_just_past_the_limit(tmp_path):
 
 
 def test_overshoot_with_heavy_momentum(tmp_path):
-    run, _ = quadratic_run(tmp_path, "over", lambda p: torch.optim.SGD(p, lr=0.3, momentum=0.97), 120,
-                           scale=tuple(np.linspace(0.5, 4.0, 16)))
+    # β = 0.99: an underdamped spiral; the iterate keeps running past the minimum (updates against the
+    # gradient) while the gradient's sign changes only twice per turn
+    scale = tuple(np.linspace(0.5, 4.0, 64))
+    run, _ = quadratic_run(tmp_path, "over", lambda p: torch.optim.SGD(p, lr=0.1, momentum=0.99), 150, scale=scale)
     found = [f for f in run.findings() if f.kind == "overshoot"]
-    assert found and found[0].tensors == ["weight"]
+    assert found and found[0].tensors == ["weight"] and found[0].first_step < 30
+    damped, _ = quadratic_run(tmp_path, "damped", lambda p: torch.optim.SGD(p, lr=0.1, momentum=0.5), 150,
+                              scale=scale)
+    assert "overshoot" not in kinds(damped.findings())
 
 
 def test_dead_units_from_the_step_they_died(tmp_path):
@@ -297,8 +311,8 @@ def test_plateau_of_a_deep_linear_network_from_small_initialisation(tmp_path):
     model = torch.nn.Sequential(*[torch.nn.Linear(8, 8, bias=False) for _ in range(3)])
     with torch.no_grad():
         for layer in model:
-            layer.weight.mul_(0.05)                 # a saddle at 0: a long flat start, then an escape
-    run = train(model, torch.optim.SGD(model.parameters(), lr=0.05), x, y, 600, tmp_path / "plateau", batch=64,
+            layer.weight.mul_(0.3)                  # near the saddle at 0: a flat start, then an escape
+    run = train(model, torch.optim.SGD(model.parameters(), lr=0.02), x, y, 600, tmp_path / "plateau", batch=64,
                 criterion=torch.nn.MSELoss())
     assert run.loss[-20:].mean() < 0.3 * run.loss[:20].mean()          # it escaped
     found = [f for f in run.findings() if f.kind == "plateau"]
@@ -351,7 +365,8 @@ def test_thresholds_are_overridable_and_unknown_names_are_refused(tmp_path):
     model = mlp()
     run = train(model, torch.optim.Adam(model.parameters(), lr=0.5), x, y, 40, tmp_path / "t")
     assert "update-ratio" in kinds(run.findings())
-    assert "update-ratio" not in kinds(run.findings(update_ratio_high=1e9, update_ratio_low=0))
+    assert "update-ratio" not in kinds(run.findings(update_ratio_high=1e9, update_ratio_extreme=1e9,
+                                                         update_ratio_low=0))
     with pytest.raises(nbkit.NbkitError, match="Unknown finding threshold"):
         run.findings(spike_factr=3)
     assert Thresholds().window == find.__globals__["Thresholds"]().window
@@ -384,19 +399,17 @@ def test_done_when_orphan_nan_and_high_learning_rate_are_all_named(tmp_path, cap
     from nbkit.cli import main
 
     x, y = digits()
-    model = mlp()
-    model.extra = torch.nn.Linear(64, 10)                             # orphan: used, never optimized
 
     class WithExtra(torch.nn.Module):
-        def __init__(self, inner):
+        def __init__(self):
             super().__init__()
-            self.inner = inner
+            self.inner, self.extra = mlp(), torch.nn.Linear(64, 10)   # extra: used, never optimized
 
         def forward(self, xb):
-            return self.inner(xb) + 0.1 * self.inner.extra(xb)
+            return self.inner(xb) + 0.1 * self.extra(xb)
 
-    wrapped = WithExtra(model)
-    optimizer = torch.optim.SGD([p for n, p in model.named_parameters() if not n.startswith("extra")], lr=3.0)
+    wrapped = WithExtra()
+    optimizer = torch.optim.SGD(wrapped.inner.parameters(), lr=3.0)
 
     def plant(step, xb, _):
         if step == 150:
@@ -409,7 +422,7 @@ def test_done_when_orphan_nan_and_high_learning_rate_are_all_named(tmp_path, cap
     capsys.readouterr()
     assert main(["findings", str(run.path)]) == 1
     out = capsys.readouterr().out
-    assert "orphan" in out and "inner.extra.weight" in out
+    assert "orphan" in out and "extra.weight" in out
     nonfinite = [f for f in findings if f.kind == "nonfinite"]
     assert nonfinite and nonfinite[0].first_step <= 150
     assert kinds(loud(findings)) & {"update-ratio", "grad-spike", "oscillation", "overshoot"}

@@ -33,13 +33,18 @@ class Thresholds:
     spike_history: int = 50           # rows of running history
     spike_min_history: int = 10       # rows needed before spikes are judged
     update_ratio_high: float = 0.25   # 250× the common-practice 1e-3: weights rewritten every few steps
+    update_ratio_extreme: float = 1.0 # any single step that moves a weight by more than its own norm
     update_ratio_low: float = 1e-6    # 1000× below 1e-3 while the learning rate is not decayed
     eps_share: float = 0.5            # "most coordinates": ε outweighs √v̂ for over half of them
     relevant_grad: float = 1e-4       # eps-dominated, lost-updates: only tensors whose gradient RMS is at
                                       # least 1e-4 × the median tensor's (others barely matter to the loss)
-    sign_flip: float = 0.65           # oscillation: well above the 0.5 of pure noise ...
-    grad_cosine: float = -0.3         # ... with consecutive gradients pointing against each other
-    reversed_share: float = 0.6       # overshoot: above the ≤ 0.5 that noise alone gives momentum methods
+    sign_flip: float = 0.25           # oscillation: a quarter of the coordinates flip sign (the sharp
+                                      # directions that oscillate are few, but dominate the gradient) ...
+    grad_cosine: float = -0.3         # ... with consecutive gradients pointing against each other ...
+    oscillation_decay: float = 0.5    # ... and a gradient norm that does not decay (a converging zig-zag)
+    reversed_share: float = 0.3       # overshoot: many updates move against the gradient ...
+    reversed_over_flip: float = 2.0   # ... twice as often as gradients flip sign (noise reverses about as
+                                      # often as it flips; momentum carried past a minimum reverses more)
     dead_share: float = 0.25          # dead-units: a quarter of a weight's rows without gradient ...
     dead_window: int = 50             # ... in every row of this many heavy rows
     lost_share: float = 0.25          # lost-updates: a quarter of the updates round to nothing
@@ -144,7 +149,7 @@ def _merge(findings: list[Finding]) -> list[Finding]:
 
 
 def _per_tensor(data, t, kind, severity, condition, describe, suggestion, source="common practice",
-                tensors=None, window=None, share=None):
+                tensors=None, window=None, share=None, merge=True):
     """Findings where `condition(column k) -> bool mask over heavy rows` is sustained for tensor k."""
     out = []
     for k, name in enumerate(data.tensors):
@@ -156,7 +161,7 @@ def _per_tensor(data, t, kind, severity, condition, describe, suggestion, source
             first, last = int(data.heavy_steps[a]), int(data.heavy_steps[b])
             out.append(Finding(kind, [name], first, last, severity, describe(k, a, b),
                                suggestion + " " + REPLAY.format(step=first) + ".", source))
-    return _merge(out)
+    return _merge(out) if merge else out
 
 
 def _median(x):
@@ -338,9 +343,26 @@ def _update_ratio(data, t):
     def describe(k, a, b):
         return {"median_update_ratio": _median(ratio[a:b + 1, k])}
 
+    text = ("Each step changes this weight by a large share of its norm (common practice aims near 1e-3): the "
+            "learning rate is likely too high for it.")
     high = _per_tensor(data, t, "update-ratio", "warning", lambda k: ratio[:, k] > t.update_ratio_high, describe,
-                       "Each step changes this weight by a large share of its norm (common practice aims near "
-                       "1e-3): the learning rate is likely too high for it.", tensors=weights)
+                       text, tensors=weights)
+    # one step larger than the weight itself; a zero-initialised weight (norm 0 at its first recorded step)
+    # is left alone for its first `window` rows, where such steps are harmless
+    norm = data.series("weight_norm")
+    grown = np.ones_like(norm, dtype=bool)
+    grown[:t.window, norm[0] == 0] = False
+    single = []
+    for k in weights:
+        rows = np.flatnonzero((ratio[:, k] > t.update_ratio_extreme) & grown[:, k])
+        if len(rows) and not any(data.tensors[k] in f.tensors and f.first_step <= data.heavy_steps[rows[0]]
+                                 for f in high):
+            first = int(data.heavy_steps[rows[0]])
+            single.append(Finding("update-ratio", [data.tensors[k]], first, int(data.heavy_steps[rows[-1]]),
+                                  "warning", {"max_update_ratio": float(np.nanmax(ratio[rows, k])), "steps": len(rows)},
+                                  text + " One step moved it by more than its own norm. " + REPLAY.format(step=first)
+                                  + ".", "common practice"))
+    high = _merge(high + single)
     low = _per_tensor(data, t, "update-ratio", "info",
                       lambda k: (ratio[:, k] < t.update_ratio_low) & (lr_share[:, k] >= 0.1), describe,
                       "Updates are tiny relative to the weight (common practice aims near 1e-3) although the "
@@ -361,18 +383,30 @@ def _eps_dominated(data, t):
 
 def _oscillation(data, t):
     flips, cos = data.series("sign_flip"), data.series("grad_cosine")
-    return _per_tensor(data, t, "oscillation", "warning",
+    norm = data.series("grad_norm")
+
+    def growing(f):
+        """Gradient descent with 1 < lr·λ < 2 converges while alternating: a healthy, decaying oscillation.
+        Kept only where the gradient norm does not shrink: last quarter ≥ half the first quarter's."""
+        k, (a, b) = data.tensors.index(f.tensors[0]), np.searchsorted(data.heavy_steps, [f.first_step, f.last_step])
+        quarter = max(1, (b - a + 1) // 4)
+        return _median(norm[b + 1 - quarter:b + 1, k]) >= t.oscillation_decay * _median(norm[a:a + quarter, k])
+
+    found = _per_tensor(data, t, "oscillation", "warning",
                        lambda k: (flips[:, k] > t.sign_flip) & (cos[:, k] < t.grad_cosine),
                        lambda k, a, b: {"median_sign_flip": _median(flips[a:b + 1, k]),
                                         "median_grad_cosine": _median(cos[a:b + 1, k])},
                        "Gradients keep flipping sign and point against the previous step: the iterate bounces "
-                       "across a valley. Lower the learning rate (or the momentum).")
+                       "across a valley. Lower the learning rate (or the momentum).", merge=False)
+    return _merge([f for f in found if growing(f)])
 
 
 def _overshoot(data, t):
-    rev = data.series("reversed")
-    return _per_tensor(data, t, "overshoot", "warning", lambda k: rev[:, k] > t.reversed_share,
-                       lambda k, a, b: {"median_reversed": _median(rev[a:b + 1, k])},
+    rev, flips = data.series("reversed"), data.series("sign_flip")
+    return _per_tensor(data, t, "overshoot", "warning",
+                       lambda k: (rev[:, k] > t.reversed_share) & (rev[:, k] > t.reversed_over_flip * flips[:, k]),
+                       lambda k, a, b: {"median_reversed": _median(rev[a:b + 1, k]),
+                                        "median_sign_flip": _median(flips[a:b + 1, k])},
                        "Most updates move against the current gradient: momentum carries the weights past the "
                        "minimum. Lower the learning rate or the momentum (β1).")
 
