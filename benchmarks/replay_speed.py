@@ -5,7 +5,7 @@
 Prints steps per second of a plain training loop, of a replay with recording off and of a replay
 with recording at the defaults (all on the same model, optimizer and batches, one torch thread, the
 three interleaved in alternating order over several rounds; ratios are taken within each round and
-their median printed, so a busy neighbour hurts all alike),
+the best round and the medians printed, so a busy neighbour shows as a gap between the two),
 and the cost of reaching a keyframe at step K per skipped step, against fetching one batch.
 Budget (issue 4): replay without recording <= 1.05 x the plain loop; reaching the keyframe's step
 costs no more than fetching the skipped batches (nothing with a callable batches(step)).
@@ -50,13 +50,13 @@ def step_fn(model, batch):
 def plain_loop(steps):
     model = make_model()
     optimizer = torch.optim.Adam(model.parameters(), lr=1e-3)
-    started = time.perf_counter()
+    started, cpu = time.perf_counter(), time.process_time()
     for step in range(steps):
         batch = batches(step)
         optimizer.zero_grad()
         step_fn(model, batch).backward()
         optimizer.step()
-    return steps / (time.perf_counter() - started)
+    return steps / (time.perf_counter() - started), steps / (time.process_time() - cpu)
 
 
 def record(path, steps):
@@ -72,9 +72,9 @@ def record(path, steps):
 
 
 def timed_replay(run, steps, record_it, to, start=0):
-    started = time.perf_counter()
+    started, cpu = time.perf_counter(), time.process_time()
     replay(run, make_model(), step_fn, batches, start=start, steps=steps, to=to, progress=False, _record=record_it)
-    return steps / (time.perf_counter() - started)
+    return steps / (time.perf_counter() - started), steps / (time.process_time() - cpu)
 
 
 def main(argv=None):
@@ -85,19 +85,15 @@ def main(argv=None):
     torch.set_num_threads(1)
     with tempfile.TemporaryDirectory() as folder:
         run = record(Path(folder) / "run", args.steps + 1)
-        plain, off, on, off_ratio, on_ratio = [], [], [], [], []
+        wall = {"plain": [], "off": [], "on": []}     # steps/s per round
+        cpu = {"plain": [], "off": [], "on": []}
         for k in range(args.rounds):
-            # alternate the order each round; ratios are taken within a round, where the machine's load
-            # is most alike, and their median is reported
-            order = ["plain", "off", "on"] if k % 2 == 0 else ["on", "off", "plain"]
-            rates = {}
-            for what in order:
-                rates[what] = plain_loop(args.steps) if what == "plain" else \
+            # alternate the order each round, so drifting load hurts all three alike
+            for what in (["plain", "off", "on"] if k % 2 == 0 else ["on", "off", "plain"]):
+                rates = plain_loop(args.steps) if what == "plain" else \
                     timed_replay(run, args.steps, what == "on", Path(folder) / f"{what}{k}")
-            plain.append(rates["plain"]), off.append(rates["off"]), on.append(rates["on"])
-            off_ratio.append(rates["plain"] / rates["off"])
-            on_ratio.append(rates["plain"] / rates["on"])
-        plain_rate, off_rate, on_rate = (statistics.median(v) for v in (plain, off, on))
+                wall[what].append(rates[0])
+                cpu[what].append(rates[1])
         # reaching a keyframe at step K with an iterable: K batches fetched and dropped
         skip = max(k for k in run.keyframes if k < args.steps) or args.steps
         fetch_times, skip_times = [], []
@@ -116,12 +112,19 @@ def main(argv=None):
         fetch, skipped = statistics.median(fetch_times), statistics.median(skip_times)
     print(f"replay speed: MLP 784-256-128-10 with dropout, Adam, batch 64, {args.steps} steps, "
           f"1 torch thread, median of {args.rounds} interleaved rounds")
-    print(f"{'':34}{'steps/s':>10}{'time per step vs plain loop':>30}")
-    print(f"{'plain training loop':34}{plain_rate:10.1f}{1.0:30.3f}")
-    print(f"{'replay, recording off':34}{off_rate:10.1f}{statistics.median(off_ratio):30.3f}   (budget 1.05)")
-    print(f"{'replay, recording at defaults':34}{on_rate:10.1f}{statistics.median(on_ratio):30.3f}")
-    print(f"per-round ratios, recording off: {', '.join(f'{r:.3f}' for r in off_ratio)}; best round of each "
-          f"(least disturbed, common practice for timing on a shared machine): {max(plain) / max(off):.3f}")
+    # best round of each (the least disturbed: common practice for timing on a shared machine) and medians
+    best = {what: (max(wall[what]), max(cpu[what])) for what in wall}
+    median = {what: (statistics.median(wall[what]), statistics.median(cpu[what])) for what in wall}
+    print(f"{'':32}{'steps/s':>9}{'time per step vs plain loop':>30}{'medians of rounds':>22}")
+    print(f"{'':32}{'(best)':>9}{'wall':>15}{'CPU':>15}{'wall':>11}{'CPU':>11}")
+    for what, label in (("plain", "plain training loop"), ("off", "replay, recording off"),
+                        ("on", "replay, recording at defaults")):
+        ratios = [best["plain"][i] / best[what][i] for i in (0, 1)] + \
+                 [median["plain"][i] / median[what][i] for i in (0, 1)]
+        note = "   (budget 1.05)" if what == "off" else ""
+        print(f"{label:32}{best[what][0]:9.1f}{ratios[0]:15.3f}{ratios[1]:15.3f}{ratios[2]:11.3f}{ratios[3]:11.3f}{note}")
+    print("CPU: time.process_time over all threads of this process (with recording on it includes the writer "
+          "thread); steadier than wall time when other processes share the cores")
     print(f"reaching keyframe step {skip} with an iterable: {skipped / fetch:.3f} x the cost of fetching one batch "
           f"per skipped step (budget 1.0); with batches(step): {callable_cost * 1e6:.0f} microseconds in all, "
           "no batch fetched")

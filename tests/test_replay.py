@@ -46,7 +46,9 @@ def test_recorded_optimizer_replays_bit_exact_from_a_keyframe(recorded, tmp_path
     info = child.meta["replay"]
     assert info["parent"] == str(recorded.path) and info["start"] == 0 and info["keyframe"] == 0
     assert info["fidelity"]["identical"] and info["fidelity"]["steps"] == 230
-    assert child.meta["every"] == recorded.meta["every"] and child.meta["probes"] == recorded.meta["probes"]
+    for setting in ("every", "probes", "keyframe_every", "criterion"):
+        assert child.meta[setting] == recorded.meta[setting], setting
+    np.testing.assert_array_equal(child.fingerprints, recorded.fingerprints)      # targets row included
 
 
 @pytest.mark.slow
@@ -214,3 +216,17 @@ def test_fingerprints_match_more_or_fewer_passes_over_one_batch():
     assert matches(combine([one] * 4), [one])                             # ... or the recording did
     assert matches(combine([one, other]), [one, other])                   # gradient accumulation
     assert not matches(one, [other]) and not matches(combine([one, other]), [one])
+
+
+def test_the_fingerprints_short_path_flattens_like_torch_pytree():
+    """Oracle: torch.utils._pytree.tree_flatten, which the fingerprint used before its short path."""
+    from torch.utils._pytree import tree_flatten
+
+    from nbkit.replay.fingerprint import _tensors
+
+    a, b, c = torch.randn(3), torch.arange(4), torch.ones(2, 2)
+    for value in [((a,), {}), ((a, [b, {"z": c, "y": a}]), {"k": b}), ({"b": a, "a": [c, 3, None]},)]:
+        found = []
+        assert _tensors(value, found)
+        expected = [t for t in tree_flatten(value)[0] if isinstance(t, torch.Tensor)]
+        assert len(found) == len(expected) and all(x is y for x, y in zip(found, expected))

@@ -19,10 +19,34 @@ from nbkit.store.files import FINGERPRINT_WIDTH
 SAMPLES = FINGERPRINT_WIDTH - 4
 
 
+def _tensors(value, out: list) -> bool:
+    """Append the tensors in plain tuples, lists and dicts (in torch pytree order) to `out`; False
+    when another container is met, so the caller falls back to tree_flatten."""
+    if isinstance(value, torch.Tensor):
+        out.append(value)
+    elif type(value) in (tuple, list):
+        for v in value:
+            if not _tensors(v, out):
+                return False
+    elif type(value) is dict:
+        for v in value.values():
+            if not _tensors(v, out):
+                return False
+    elif isinstance(value, (tuple, list, dict)):
+        return False                            # namedtuples, OrderedDicts...: pytree decides
+    return True
+
+
 def fingerprint(*values) -> np.ndarray:
-    """Fingerprint of the tensors found (recursively) in `values`; NaN vector if there are none."""
+    """Fingerprint of the tensors found (recursively) in `values`; NaN vector if there are none.
+
+    Runs on every training forward pass of a recorded or replayed step, so plain containers take a
+    short path; the values are those of torch's pytree flattening and float64 arithmetic either way.
+    """
     out = np.full(FINGERPRINT_WIDTH, np.nan)
-    tensors = [t for t in tree_flatten(values)[0] if isinstance(t, torch.Tensor)]
+    tensors: list = []
+    if not _tensors(values, tensors):
+        tensors = [t for t in tree_flatten(values)[0] if isinstance(t, torch.Tensor)]
     if not tensors:
         return out
     with torch.no_grad():
@@ -30,13 +54,19 @@ def fingerprint(*values) -> np.ndarray:
         out[0] = len(tensors)
         out[1] = sum(t.numel() for t in tensors)
         out[2] = zlib.crc32(description.encode())
-        out[3] = float(sum(t.detach().sum(dtype=torch.float64) if not t.is_complex()
-                           else t.detach().abs().sum(dtype=torch.float64) for t in tensors))
+        total = 0.0                               # float64 additions in order, as a sum of float64 scalars
+        for t in tensors:
+            total += float(t.detach().sum(dtype=torch.float64) if not t.is_complex()
+                           else t.detach().abs().sum(dtype=torch.float64))
+        out[3] = total
         first = tensors[0].detach().reshape(-1)
         if first.numel():
             stride = max(1, first.numel() // SAMPLES)
-            sample = first[::stride][:SAMPLES].to(torch.float64)
-            out[4:4 + sample.numel()] = sample.numpy()
+            sample = first[::stride][:SAMPLES]
+            if sample.is_complex():
+                out[4:4 + sample.numel()] = sample.to(torch.float64).numpy()
+            else:
+                out[4:4 + sample.numel()] = sample.tolist()     # exact in float64, like .to(torch.float64)
     return out
 
 

@@ -357,7 +357,7 @@ def _recorder(lane, plan, meta, threads_note):
               "threads": torch.get_num_threads(), "threads_note": threads_note}
     return Recorder(lane.model, lane.optimizer, plan.targets[lane.name], every=meta["every"], probes=meta["probes"],
                     keyframe_every=meta["keyframe_every"], flush_seconds=meta.get("flush_seconds", 5.0),
-                    strict=True, overwrite=True, _extra_meta={"replay": parent}, _first_step=plan.start)
+                    strict=True, overwrite=True, _extra_meta={"replay": parent, "criterion": meta.get("criterion")}, _first_step=plan.start)
     # strict: a replay whose recording fails stops with the recorder's error instead of leaving a
     # silently truncated recording behind
 
