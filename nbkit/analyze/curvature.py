@@ -29,6 +29,7 @@ from nbkit.analyze.stability import ADAM_FAMILY, coupled_weight_decay
 from nbkit.errors import NbkitError
 
 START_SEED = 20251202      # the private seed of Lanczos start vectors
+PASS_SEED = 20251203       # the global generator's seed inside the forked RNG of an extra pass (dropout)
 
 
 class AnalysisError(NbkitError):
@@ -38,9 +39,11 @@ class AnalysisError(NbkitError):
 @contextlib.contextmanager
 def untouched(model: torch.nn.Module):
     """Run extra passes without changing training: fork the CPU RNG state (torch.random.fork_rng)
-    and restore every buffer (BatchNorm running statistics, counters) afterwards."""
+    and restore every buffer (BatchNorm running statistics, counters) afterwards. Inside, the generator
+    is seeded with PASS_SEED so estimates on a model with dropout are repeatable."""
     saved = [(b, b.detach().clone()) for b in model.buffers()]
     with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(PASS_SEED)
         try:
             yield
         finally:
