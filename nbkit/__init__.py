@@ -24,7 +24,9 @@ def record(model, optimizer, path, *, every=1, probes=64, keyframe_every=100, cr
     flush_seconds=5.0: at most this much recorded time is lost in a crash.
     expected_steps=None: lets record() refuse when the disk cannot hold the run.
     strict=False: True makes recorder errors raise instead of warning once.
-    resume=False: True appends to an existing recording; steps continue.
+    resume=False: True appends to an existing recording; steps continue (an int names the restart
+        step; an overlap or gap is stated in the metadata under "resumes").
+    Under torch.distributed only rank 0 records; other ranks get an InactiveRecorder.
     overwrite=False: True replaces an existing recording at `path`.
     """
     from nbkit.record import distributed

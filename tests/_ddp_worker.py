@@ -23,7 +23,7 @@ def main(out, local):
         nbkit.record_local_gradients(model, rec)
     data = torch.Generator().manual_seed(100 + rank)      # different data on each rank
     started = time.perf_counter()
-    for _ in range(12):
+    for _ in range(int(os.environ.get("NBKIT_DDP_STEPS", "12"))):
         x, y = torch.randn(16, 6, generator=data), torch.randn(16, 2, generator=data)
         optimizer.zero_grad()
         loss = torch.nn.functional.mse_loss(model(x), y)
