@@ -10,6 +10,9 @@ Everything runs on a temporary copy of the notebooks (Lab autosaves) with all Ju
 temporary folder; every request that is not to 127.0.0.1 is aborted (some front ends try a CDN
 and then stall). Uses the Debian chromium at /usr/bin/chromium (Playwright's own browser download
 does not work on these machines). See ../shared/notes/browser-and-notebook-testing.md.
+
+Wait with `page.wait_for_timeout`, never `time.sleep`, while a page is open: Playwright's sync API
+runs route handlers (and so lets the page's requests through) only inside its own calls.
 """
 from __future__ import annotations
 
@@ -154,7 +157,7 @@ class JupyterLab:
             if any(k.get("execution_state") == "idle" and k.get("connections", 0) > 0 for k in kernels):
                 page.wait_for_selector(".jp-Notebook", timeout=30_000)
                 return page
-            time.sleep(0.5)
+            page.wait_for_timeout(500)
         raise TimeoutError(f"no connected idle kernel for {notebook} after {timeout} s")
 
     def run_all(self, page):
@@ -162,14 +165,14 @@ class JupyterLab:
         page.locator(".lm-MenuBar-itemLabel", has_text="Run").first.click()
         page.locator(".lm-Menu-itemLabel", has_text="Run All Cells").first.click()
 
-    def wait_idle(self, timeout=300.0):
+    def wait_idle(self, page, timeout=300.0):
         """Wait until every kernel is idle (the cells have finished)."""
         deadline = time.monotonic() + timeout
-        time.sleep(1.0)
+        page.wait_for_timeout(1000)
         while time.monotonic() < deadline:
             if all(k.get("execution_state") == "idle" for k in self.api("/api/kernels")):
                 return
-            time.sleep(0.5)
+            page.wait_for_timeout(500)
         raise TimeoutError(f"kernel still busy after {timeout} s")
 
     @staticmethod
@@ -187,7 +190,7 @@ class JupyterLab:
         deadline = time.monotonic() + timeout
         last, since = self.canvas_digest(page, selector), time.monotonic()
         while time.monotonic() < deadline:
-            time.sleep(0.15)
+            page.wait_for_timeout(150)
             now = self.canvas_digest(page, selector)
             if now != last:
                 last, since = now, time.monotonic()

@@ -71,7 +71,7 @@ def test_explorer_scrubs_and_follows_a_live_run_in_jupyterlab(live_notebook):
         page = lab.open("01-tour.ipynb")
         lab.run_all(page)
         lab.wait_for(page, f"{EXPLORER} .nbkit-coordinates canvas", timeout=240)
-        lab.wait_idle()
+        lab.wait_idle(page)
         page.locator(f"{EXPLORER} .nbkit-timeline").first.scroll_into_view_if_needed()
         maps = [lab.stable_digest(page, sel) for sel in (".nbkit-layer-map", ".nbkit-coordinates")]
         assert all(maps), "the explorer's canvases were never drawn"
@@ -119,7 +119,7 @@ def test_explorer_scrubs_and_follows_a_live_run_in_jupyterlab(live_notebook):
                 seen_pixels.add(lab.canvas_digest(live, ".nbkit-timeline"))
             elif busy:
                 break                      # the loop ended
-            time.sleep(1.0)
+            live.wait_for_timeout(1000)
         lab.screenshot(live, "04-live")
         assert busy >= 3, "the training loop was not observed running"
         assert len(seen_steps) >= 2, f"the step shown did not change while the loop ran: {seen_steps}"

@@ -113,8 +113,8 @@ class Explorer(widgets.VBox):
                                       value=1, layout=widgets.Layout(width="160px"))
         self.speed.add_class("nbkit-speed")
         widgets.link((self.speed, "value"), (self.play, "step"))
-        self.previous_button = widgets.Button(description="◀ step", layout=widgets.Layout(width="70px"))
-        self.next_button = widgets.Button(description="step ▶", layout=widgets.Layout(width="70px"))
+        self.previous_button = widgets.Button(description="◀ step", layout=widgets.Layout(width="84px"))
+        self.next_button = widgets.Button(description="step ▶", layout=widgets.Layout(width="84px"))
         self.previous_button.add_class("nbkit-previous")
         self.next_button.add_class("nbkit-next")
         self.previous_button.on_click(lambda _: self._nudge(-1))
@@ -220,7 +220,7 @@ class Explorer(widgets.VBox):
                 raise ValueError(f"No tensor named {change['new']!r}; pick one of explorer.run.tensors")
             self.coordinates.set_tensor(change["new"])
             self.layer_map.set_tensor(change["new"])
-            self._redraw_all(self.step)
+            self._redraw(self.step, full=(self.coordinates,))
         self._guard(pick)
 
     def _on_quantity(self, change):
@@ -228,7 +228,7 @@ class Explorer(widgets.VBox):
             if change["new"] not in self.run.quantities:
                 raise ValueError(f"Unknown quantity {change['new']!r}; choose one of run.quantities")
             self.layer_map.set_quantity(change["new"])
-            self._redraw_all(self.step)
+            self._redraw(self.step, full=(self.layer_map,))
         self._guard(pick)
 
     def _on_finding(self, change):
@@ -274,6 +274,17 @@ class Explorer(widgets.VBox):
             self.timeline.blitter.update()
             self.layer_map.blitter.update()
             (self.coordinates.blitter.full if full else self.coordinates.blitter.update)()
+        finally:
+            self._moving = False
+
+    def _redraw(self, step, full):
+        """Place the cursor; fully redraw the parts in `full` (their data changed), blit the others."""
+        self._moving = True
+        try:
+            _, coordinates_moved = self._place(step)
+            full = (*full, self.coordinates) if coordinates_moved else full
+            for part in (self.timeline, self.layer_map, self.coordinates):
+                (part.blitter.full if part in full else part.blitter.update)()
         finally:
             self._moving = False
 

@@ -52,8 +52,10 @@ class LayerMap:
             if layer_of[k] != layer_of[k - 1]:
                 for ax in (self.map_axes, self.value_axes):
                     ax.axhline(k - 0.5, color="white" if ax is self.map_axes else "#cccccc", lw=0.6)
-        self.selection = self.map_axes.axhspan(-0.5, 0.5, fill=False, ec=OKABE_ITO["reddish purple"], lw=1.5)
         self.blitter = Blitter(self.figure)
+        # The selected row follows clicks: animated like the cursor, so a pick needs no full draw.
+        self.selection = self.blitter.add(self.map_axes.axhspan(-0.5, 0.5, fill=False, ec=OKABE_ITO["reddish purple"],
+                                                                lw=1.5))
         self.cursor = self.blitter.add(self.map_axes.axvline(0, color=OKABE_ITO["reddish purple"], lw=1.2))
         self.values, = self.value_axes.plot([], [], "o", ms=3.5, color=OKABE_ITO["black"])
         self.blitter.add(self.values)

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import numpy as np
+from matplotlib.ticker import FuncFormatter, MaxNLocator
 
 from nbkit.views.common import OKABE_ITO, Blitter, make_canvas
 
@@ -22,7 +23,8 @@ class Timeline:
         self.lr_line, = self.lr_axes.plot([], [], color=OKABE_ITO["bluish green"], lw=1.0)
         self.loss_axes.set_ylabel("loss")
         self.lr_axes.set_ylabel("learning rate")
-        self.lr_axes.ticklabel_format(axis="y", useOffset=False, style="sci", scilimits=(-3, 4))
+        self.lr_axes.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:.3g}"))   # no offset text
+        self.lr_axes.yaxis.set_major_locator(MaxNLocator(3))
         self.lr_axes.set_xlabel("optimizer step")
         self.keyframe_marks = self.loss_axes.vlines([], 0, 1, transform=self.loss_axes.get_xaxis_transform(),
                                                     colors=OKABE_ITO["sky blue"], lw=0.8, label="keyframe")
@@ -94,4 +96,8 @@ class Timeline:
             self.on_pick(int(round(event.xdata)))
 
     def _release(self, event):
+        # The browser throttles motion events, so the last ones of a fast drag may never arrive:
+        # the release position is where the user let go.
+        if self._dragging and event.inaxes in (self.loss_axes, self.lr_axes) and event.xdata is not None:
+            self.on_pick(int(round(event.xdata)))
         self._dragging = False
