@@ -52,6 +52,16 @@ def untouched(model: torch.nn.Module):
                     buffer.copy_(value)
 
 
+@contextlib.contextmanager
+def second_order():
+    """Gradients enabled, and attention on PyTorch's math kernel: the fused CPU attention kernels have no
+    double backward ("derivative for ..._flash_attention_for_cpu_backward is not implemented")."""
+    from torch.nn.attention import SDPBackend, sdpa_kernel
+
+    with torch.enable_grad(), sdpa_kernel([SDPBackend.MATH]):
+        yield
+
+
 def loss_of(step_fn, model, batch) -> torch.Tensor:
     """step_fn(model, batch) as a scalar tensor that depends on the parameters, or a clear error."""
     if not callable(step_fn):
@@ -189,7 +199,7 @@ def sharpness(model, step_fn, batch, optimizer=None, tol=1e-6) -> float:
         params, P, decays = _optimizer_parts(optimizer, model)
     else:
         params, P, decays = [p for p in model.parameters() if p.requires_grad], None, None
-    with untouched(model), torch.enable_grad():
+    with untouched(model), second_order():
         loss = loss_of(step_fn, model, batch)
         return sharpness_of(loss, params, precondition=P, weight_decay=decays, tol=tol)
 
@@ -226,7 +236,7 @@ def fill_keyframe_sharpness(run, model, step_fn, batch, *, tol=1e-6) -> dict[int
         params, P, decays = _keyframe_parts(name, groups, optimizer_state, by_name)
         if params is None:
             continue
-        with untouched(work), torch.enable_grad():
+        with untouched(work), second_order():
             loss = loss_of(step_fn, work, batch)
             values[step] = sharpness_of(loss, params, precondition=P, weight_decay=decays, tol=tol)
     rows = [int(np.searchsorted(steps, s)) for s in values]

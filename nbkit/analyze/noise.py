@@ -19,7 +19,7 @@ from dataclasses import dataclass
 import torch
 from torch.utils._pytree import tree_flatten, tree_unflatten
 
-from nbkit.analyze.curvature import AnalysisError, loss_of, untouched
+from nbkit.analyze.curvature import AnalysisError, loss_of, second_order, untouched
 
 MICRO_BATCHES = 8          # micro-batches of the fallback (fewer when the batch is small)
 VMAP_BUDGET = 1 << 26      # per-example gradient values held at once (chunks of examples)
@@ -144,7 +144,7 @@ def noise_parts(model, step_fn, batch, *, params=None, method="auto") -> NoisePa
     size = _batch_size(batch)
     if size < 2:
         raise AnalysisError(f"The gradient noise scale needs a batch of at least 2 examples, got {size}")
-    with untouched(model), torch.enable_grad():
+    with untouched(model), second_order():
         if method == "per-example" or (method == "auto" and not _mixes_examples(model)):
             try:
                 return _per_example_parts(model, step_fn, batch, params, size)
