@@ -86,7 +86,7 @@ def combine(prints: list[np.ndarray]) -> np.ndarray:
 
 def same(a: np.ndarray, b: np.ndarray) -> bool:
     """True when two fingerprints agree (NaN equals NaN: a missing target is missing in both)."""
-    return bool(np.array_equal(a, b, equal_nan=True))
+    return a.tobytes() == b.tobytes() or bool(np.array_equal(a, b, equal_nan=True))
 
 
 def matches(recorded: np.ndarray, prints: list[np.ndarray]) -> bool:

@@ -62,6 +62,9 @@ class _Lane:
     saw_criterion: bool = False      # the recorded criterion class was seen during any step
     criterion_now: bool = False      # ... during the step being taken
     active: bool = False             # this lane's step is running (global hooks listen only then)
+    watch: object = None             # the global hook that looks for the recorded criterion's object
+    rewatch: object = None           # re-installs it
+    rewatched: bool = False          # it had to be re-installed: it stays
     handles: list = field(default_factory=list)
     mismatches: list = field(default_factory=list)
 
@@ -330,7 +333,7 @@ def _lane(name, factory, model, meta, model_state, optimizer_state, extra_params
         own = {id(m) for m in copy.modules()}
 
         def criterion_hook(module, inputs, output):
-            if type(module).__name__ != criterion or id(module) in own or not lane.active:
+            if not lane.active:
                 return
             if torch.is_grad_enabled() and copy.training and isinstance(output, torch.Tensor):
                 lane.saw_criterion = lane.criterion_now = True
@@ -339,7 +342,25 @@ def _lane(name, factory, model, meta, model_state, optimizer_state, extra_params
                 if lane.recorder is not None:
                     lane.recorder._after_criterion(module, inputs, output)    # the recorder's own loss rule
 
-        lane.handles.append(torch.nn.modules.module.register_module_forward_hook(criterion_hook))
+        def find_criterion(module, inputs, output):
+            # A global hook slows every module call, so it only finds the criterion object; the
+            # hook then moves onto that object (and back here if step_fn makes a new one per step).
+            if type(module).__name__ != criterion or id(module) in own or not lane.active:
+                return
+            if lane.rewatched:                     # step_fn makes a new criterion per step: keep looking
+                return criterion_hook(module, inputs, output)
+            lane.watch.remove()
+            lane.watch = None
+            lane.handles.append(module.register_forward_hook(criterion_hook))
+            criterion_hook(module, inputs, output)
+
+        def watch(again=True):
+            lane.rewatched = again
+            lane.watch = torch.nn.modules.module.register_module_forward_hook(find_criterion)
+            lane.handles.append(lane.watch)
+
+        lane.rewatch = watch
+        watch(again=False)
     return lane
 
 
@@ -425,6 +446,8 @@ def _step(lane, step_fn, batch, before_step, step, lrs):
         loss = step_fn(model, batch)
         if _needs_backward(loss):
             loss.backward()
+        if not lane.criterion_now and lane.watch is None and lane.rewatch is not None:
+            lane.rewatch()                  # the criterion object found earlier was not used this step
         if lane.recorder is not None and not lane.criterion_now:
             lane.recorder.loss(loss)        # no criterion call seen: the step_fn's loss is the step's loss
         if before_step is not None:
