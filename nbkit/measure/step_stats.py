@@ -26,40 +26,39 @@ def _dot(a, b):
     a, b = a.reshape(-1), b.reshape(-1)
     if a.dtype not in (torch.float32, torch.float64):
         a, b = a.float(), b.float()
-    return torch.dot(a, b)
+    return torch.dot(a, b).float()
 
 
-def whole_tensor_statistics(grads, befores, params, previous_grads, previous_norms):
+def whole_tensor_statistics(grads, minus_updates, previous_grads, previous_norms, weight_norm):
     """Exact statistics over all coordinates of each tensor, in a few batched passes.
 
-    grads, params: the tensors' gradients and values after the step; befores: copies of the values
-    before the step, turned in place into −Δθ (the buffers are reused next step); previous_grads,
-    previous_norms: the gradients (or None) and their norms at the previous recorded step.
-    Returns a dict of (T,) float64 tensors. The plain reference is nbkit.measure.reference.
+    grads: the tensors' gradients; minus_updates: θ_before − θ_after = −Δθ; previous_grads: the
+    gradients at the previous recorded step (or None); previous_norms: their norms (T,);
+    weight_norm: ‖θ‖ before the step (T,). Returns a dict of (T,) float64 tensors. The plain
+    reference is nbkit.measure.reference.whole_tensor_reference.
     """
     T = len(grads)
+    empty = torch.zeros(0, dtype=torch.float64)
     grad_norm = _norms(grads)
-    weight_norm = _norms(befores)
-    torch._foreach_sub_(befores, params)                      # befores := θ_before − θ_after = −Δθ
-    update_norm = _norms(befores)
-    zero = torch.zeros((), dtype=torch.float64)
+    update_norm = _norms(minus_updates)
+    nan = torch.full((), NAN, dtype=torch.float32)
     grad_max, update_dot, previous_dot, dead_rows = [], [], [], []
-    for g, minus_update, previous in zip(grads, befores, previous_grads):
+    for g, minus_update, previous in zip(grads, minus_updates, previous_grads):
         low, high = torch.aminmax(g.reshape(-1))
-        grad_max.append(torch.maximum(-low, high))
+        grad_max.append(torch.maximum(-low, high).float())
         # cos(Δθ, −g) = (−Δθ)·g / (|Δθ||g|): +1 means the update points straight down the gradient.
         update_dot.append(_dot(minus_update, g))
-        previous_dot.append(_dot(g, previous) if previous is not None else zero.new_tensor(NAN))
+        previous_dot.append(_dot(g, previous) if previous is not None else nan)
         if g.dim() >= 2:
             rows = torch.linalg.vector_norm(g.reshape(g.shape[0], -1), dim=1, dtype=torch.float32)
-            dead_rows.append((rows == 0).sum())
+            dead_rows.append((rows == 0).sum().float())
         else:
-            dead_rows.append(zero.new_tensor(NAN))
+            dead_rows.append(nan)
     out = {"grad_norm": grad_norm, "weight_norm": weight_norm, "update_norm": update_norm}
-    out["grad_max"] = torch.stack(grad_max).double() if T else torch.zeros(0, dtype=torch.float64)
-    out["dead_rows"] = torch.stack(dead_rows).double() if T else torch.zeros(0, dtype=torch.float64)
-    dots = torch.stack(update_dot).double() if T else torch.zeros(0, dtype=torch.float64)
-    previous_dots = torch.stack(previous_dot).double() if T else torch.zeros(0, dtype=torch.float64)
+    out["grad_max"] = torch.stack(grad_max).double() if T else empty
+    out["dead_rows"] = torch.stack(dead_rows).double() if T else empty
+    dots = torch.stack(update_dot).double() if T else empty
+    previous_dots = torch.stack(previous_dot).double() if T else empty
     out["update_grad_cosine"] = cosine(dots, update_norm, grad_norm)
     out["grad_cosine"] = cosine(previous_dots, grad_norm, previous_norms)
     numel = torch.tensor([g.numel() for g in grads], dtype=torch.float64)
@@ -67,19 +66,16 @@ def whole_tensor_statistics(grads, befores, params, previous_grads, previous_nor
     out["update_ratio"] = torch.where(weight_norm > 0, update_norm / weight_norm, NAN)
     # Non-finite counts: a finite norm means no NaN/Inf in the tensor, so only the rare tensors
     # with a non-finite norm are counted coordinate by coordinate (one check for all).
-    counts = {"nonfinite": torch.zeros(T, dtype=torch.float64), "weight_nonfinite": torch.zeros(T, dtype=torch.float64),
-              "update_nonfinite": torch.zeros(T, dtype=torch.float64)}
-    norms = torch.stack([grad_norm, weight_norm, update_norm]) if T else torch.zeros((3, 0))
+    out["nonfinite"] = torch.zeros(T, dtype=torch.float64)
+    out["update_nonfinite"] = torch.zeros(T, dtype=torch.float64)
+    norms = torch.stack([grad_norm, update_norm]) if T else torch.zeros((2, 0))
     if T and not bool(torch.isfinite(norms).all()):
         bad = (~torch.isfinite(norms)).tolist()
         for i in range(T):
             if bad[0][i]:
-                counts["nonfinite"][i] = (~torch.isfinite(grads[i])).sum().double()
+                out["nonfinite"][i] = (~torch.isfinite(grads[i])).sum().double()
             if bad[1][i]:
-                counts["weight_nonfinite"][i] = (~torch.isfinite(befores[i] + params[i])).sum().double()
-            if bad[2][i]:
-                counts["update_nonfinite"][i] = (~torch.isfinite(params[i])).sum().double()
-    out.update(counts)
+                out["update_nonfinite"][i] = (~torch.isfinite(minus_updates[i])).sum().double()
     return out
 
 

@@ -10,11 +10,11 @@ in the optimizer's own tensors).
 from __future__ import annotations
 
 import math
+import time
 
 import torch
 
-from nbkit.measure.step_stats import sampled_statistics, whole_tensor_statistics
-from nbkit.record.adapters import step_count
+from nbkit.measure.step_stats import _norms, sampled_statistics, whole_tensor_statistics
 
 
 class Block:
@@ -29,10 +29,14 @@ class Block:
         offsets = [0]
         for n in sizes:
             offsets.append(offsets[-1] + n)
+        spans = list(zip(offsets, offsets[1:], tensors))
         self.before_flat = torch.empty(offsets[-1], dtype=dtype)
-        self.grad_flat = torch.zeros(offsets[-1], dtype=dtype)
-        self.befores = [self.before_flat[a:b].view(t.param.shape) for a, b, t in zip(offsets, offsets[1:], tensors)]
-        self.grads = [self.grad_flat[a:b].view(t.param.shape) for a, b, t in zip(offsets, offsets[1:], tensors)]
+        self.befores = [self.before_flat[a:b].view(t.param.shape) for a, b, t in spans]
+        # two gradient buffers, alternating: this step's gradient and the previous recorded one
+        self.grad_flats = [torch.zeros(offsets[-1], dtype=dtype), torch.zeros(offsets[-1], dtype=dtype)]
+        self.grads = [[flat[a:b].view(t.param.shape) for a, b, t in spans] for flat in self.grad_flats]
+        self.turn = 0                                # which gradient buffer the next step writes
+        self.pending = None                          # Future of the statistics of the last step
         S = max(len(t.index) for t in tensors)
         self.local = torch.zeros((len(tensors), S), dtype=torch.int64)     # (T, S) index into each tensor
         self.valid = torch.zeros((len(tensors), S), dtype=torch.bool)      # (T, S) False for padding
@@ -44,9 +48,11 @@ class Block:
         # float32 values, 1e-7 relative for the ratios, and half the memory traffic of float64
         self.work = torch.float64 if dtype == torch.float64 else torch.float32
         self.pad = torch.where(self.valid, 0.0, math.nan).to(self.work)         # (T, S) NaN in the padding
+        # concatenating a state key costs one pass over all its coordinates: worth it when most are sampled
+        self.concatenate = offsets[-1] <= 4 * int(self.valid.sum())
         self.has_previous = [False] * len(tensors)   # grad buffer holds the previous recorded gradient
         self.previous_norms = [math.nan] * len(tensors)
-        self.previous_sample = None                  # (T, S) float64 sampled previous gradient
+        self.previous_sample = None                  # (T, S) sampled previous gradient
         self.state_before: dict = {}                 # key -> (T, S) sampled state before the step
         self.copied = False
 
@@ -90,10 +96,17 @@ def state_tensors(optimizer, p) -> tuple[dict, dict]:
 
 
 def _sample_state(block: Block, rows: list[int], states: list[dict]) -> dict:
+    """(R, S) sampled values of each state key. A block of small tensors (most coordinates sampled)
+    concatenates each key's tensors and gathers once; large tensors are gathered one by one."""
     keys = sorted(set().union(*[s.keys() for s in states])) if states else []
-    S = block.local.shape[1]
     out = {}
+    everything = len(rows) == len(block.tensors)
     for key in keys:
+        if block.concatenate and everything and all(key in s for s in states):
+            flat = torch.cat([s[key].reshape(-1) for s in states])
+            out[key] = _gather(flat, block.flat_index, block.work)
+            continue
+        S = block.local.shape[1]
         out[key] = torch.stack([s[key].reshape(-1).index_select(0, block.local[r]) if key in s else
                                 torch.full((S,), math.nan) for r, s in zip(rows, states)]).to(block.work)
     return out
@@ -104,6 +117,7 @@ def copy_before(blocks: list[Block], optimizer, before_keys: tuple) -> None:
     """Pre-step: copy θ of every tensor into its block's buffer (one foreach call per block), and
     sample the state keys the adapter needs from before the step (`before_keys`)."""
     for block in blocks:
+        wait(block)
         live = [r for r, t in enumerate(block.tensors) if not t.stopped]
         if len(live) == len(block.tensors):
             torch._foreach_copy_(block.befores, [t.param.detach() for t in block.tensors])
@@ -122,54 +136,124 @@ def _gather(flat: torch.Tensor, index: torch.Tensor, dtype) -> torch.Tensor:
     return flat.index_select(0, index.reshape(-1)).view(index.shape).to(dtype)
 
 
+_worker = None
+BACKGROUND_CPU = [0.0]      # CPU seconds spent in _measure so far (all recorders; for benchmarks)
+
+
+def _executor():
+    """One background thread shared by all recorders: the statistics of step s run there while
+    the training thread goes on with step s + 1's forward and backward pass."""
+    global _worker
+    if _worker is None:
+        from concurrent.futures import ThreadPoolExecutor
+
+        _worker = ThreadPoolExecutor(max_workers=1, thread_name_prefix="nbkit-statistics")
+    return _worker
+
+
 @torch.no_grad()
-def measure_block(block: Block, rows: list[int], optimizer, adapter, probes: int):
+def measure_block(block: Block, rows: list[int], optimizer, adapter, probes: int, *, deliver,
+                  background: bool = True):
     """Post-step: statistics of the tensors `rows` of `block` (those with a dense gradient).
 
-    Returns (whole-tensor dict of (R,) tensors, sampled dict of (R,) tensors, histograms
-    (3, R, bins + 2), probe values dict of (R, probes) tensors, state_nonfinite (R,) or None).
+    The training thread does what must see the live tensors: θ_after − θ_before into the block's
+    buffer, a copy of the gradients, the sampled optimizer state, the norms that decide whether
+    anything is non-finite. The rest reads only the block's own buffers and runs on a background
+    thread (`background=False`: here), which ends by calling deliver(results) with (whole-tensor
+    dict of (R,) tensors, sampled dict of (R,) tensors, histograms (3, R, bins + 2), probe values
+    dict of (R, probes) tensors, state_nonfinite (R,) or None). Returns the Future of that work;
+    wait(block) must come before the block's buffers are reused.
     """
+    wait(block)
     everything = len(rows) == len(block.tensors)
-    tensors = [block.tensors[r] for r in rows]
+    pick = (lambda xs: xs) if everything else (lambda xs: [xs[r] for r in rows])
+    tensors = pick(block.tensors)
     grads = [t.param.grad for t in tensors]
     params = [t.param.detach() for t in tensors]
-    befores = block.befores if everything else [block.befores[r] for r in rows]
-    previous = [block.grads[r] if block.has_previous[r] else None for r in rows]
-    previous_norms = torch.tensor([block.previous_norms[r] for r in rows], dtype=torch.float64)
+    befores = pick(block.befores)
+    current, previous = block.grads[block.turn], block.grads[1 - block.turn]
+    block.turn = 1 - block.turn                      # the next step writes the other gradient buffer
     flat_index = block.flat_index if everything else block.flat_index[rows]
-    valid = block.valid if everything else block.valid[rows]
-    pad = block.pad if everything else block.pad[rows]
 
+    weight_norm = _norms(befores)                                                 # ‖θ before‖
+    weight_nonfinite = torch.zeros(len(rows), dtype=torch.float64)
+    if not bool(torch.isfinite(weight_norm).all()):                               # rare: count them
+        weight_nonfinite = torch.stack([(~torch.isfinite(b)).sum() for b in befores]).double()
     theta_before = _gather(block.before_flat, flat_index, block.work)            # (R, S)
-    whole = whole_tensor_statistics(grads, befores, params, previous, previous_norms)   # befores := −Δθ
-    update = _gather(block.before_flat, flat_index, block.work).neg_()           # (R, S) Δθ
-    torch._foreach_copy_(block.grads if everything else [block.grads[r] for r in rows], grads)
-    grad = _gather(block.grad_flat, flat_index, block.work)                       # (R, S)
-
+    torch._foreach_sub_(befores, params)                                          # befores := −Δθ
+    torch._foreach_copy_(pick(current), grads)
     states, scalars = zip(*[state_tensors(optimizer, t.param) for t in tensors])
     after = _sample_state(block, rows, list(states))
     before = {k: v if everything else v[rows] for k, v in block.state_before.items()}
-    scalar_keys = sorted(set().union(*[s.keys() for s in scalars]))
     scalar_values = {k: torch.tensor([[s.get(k, math.nan)] for s in scalars], dtype=block.work)
-                     for k in scalar_keys}
-    finite = bool(torch.isfinite(torch.stack([whole["grad_norm"], whole["update_norm"]])).all())
+                     for k in sorted(set().union(*[s.keys() for s in scalars]))}
     # float64: the step-dependent coefficients (RAdam's ρ_t) cancel badly in float32
-    steps = torch.tensor([[step_count(optimizer.state.get(t.param, {}))] for t in tensors], dtype=torch.float64)
-    group = optimizer.param_groups[block.group]
+    steps = torch.tensor([[s.get("step", math.nan)] for s in scalars], dtype=torch.float64)
+    group = {k: v for k, v in optimizer.param_groups[block.group].items() if k != "params"}
+    has_previous = [block.has_previous[r] for r in rows]
+    previous_norms = torch.tensor([block.previous_norms[r] for r in rows], dtype=torch.float64)
+    job = dict(block=block, rows=rows, everything=everything, current=pick(current),
+               previous=[p if h else None for p, h in zip(pick(previous), has_previous)],
+               minus_update=befores, flat_index=flat_index, theta_before=theta_before, weight_norm=weight_norm,
+               weight_nonfinite=weight_nonfinite, previous_norms=previous_norms, after=after, before=before,
+               scalars=scalar_values, steps=steps, group=group, adapter=adapter, probes=probes,
+               current_flat=block.grad_flats[1 - block.turn], has_previous=has_previous, deliver=deliver)
+    for r in rows:
+        block.has_previous[r] = True
+    if background:
+        block.pending = _executor().submit(_measure, job)
+    else:
+        from concurrent.futures import Future
+
+        block.pending = Future()
+        try:
+            block.pending.set_result(_measure(job))
+        except Exception as exc:
+            block.pending.set_exception(exc)
+    return block.pending
+
+
+def wait(block: Block) -> None:
+    """Block until the statistics of the block's last step are done (its buffers are free)."""
+    if block.pending is not None:
+        pending, block.pending = block.pending, None
+        pending.exception()                          # waits; the error is reported with the row
+
+
+@torch.no_grad()
+def _measure(job: dict):
+    """The statistics of one block at one step, from the block's own buffers only."""
+    started = time.thread_time()
+    try:
+        job["deliver"](_measure_timed(job))
+    finally:
+        BACKGROUND_CPU[0] += time.thread_time() - started
+
+
+def _measure_timed(job: dict):
+    block, rows, everything = job["block"], job["rows"], job["everything"]
+    valid = block.valid if everything else block.valid[rows]
+    pad = block.pad if everything else block.pad[rows]
+    whole = whole_tensor_statistics(job["current"], job["minus_update"], job["previous"], job["previous_norms"],
+                                    job["weight_norm"])
+    whole["weight_nonfinite"] = job["weight_nonfinite"]
+    update = _gather(block.before_flat, job["flat_index"], block.work).neg_()     # (R, S) Δθ
+    grad = _gather(job["current_flat"], job["flat_index"], block.work)            # (R, S)
+    finite = bool(torch.isfinite(torch.stack([whole["grad_norm"], whole["update_norm"]])).all())
     previous_sample = None
-    if block.previous_sample is not None and all(block.has_previous[r] for r in rows):
+    if block.previous_sample is not None and all(job["has_previous"]):
         previous_sample = block.previous_sample if everything else block.previous_sample[rows]
+    group = job["group"]
     sampled, hist, probe_values = sampled_statistics(
-        grad=grad, theta_before=theta_before, update=update, valid=valid, before=before, after=after,
-        scalars=scalar_values, step=steps, group=group, lr=float(group["lr"]), adapter=adapter,
-        previous_grad=previous_sample, probes=probes, finite=finite, pad=pad)
+        grad=grad, theta_before=job["theta_before"], update=update, valid=valid, before=job["before"],
+        after=job["after"], scalars=job["scalars"], step=job["steps"], group=group, lr=float(group["lr"]),
+        adapter=job["adapter"], previous_grad=previous_sample, probes=job["probes"], finite=finite, pad=pad)
+    after = job["after"]
     state_nonfinite = None
     if after:
-        state_nonfinite = sum((~torch.isfinite(v)).sum(dim=1) for v in after.values())
-
+        state_nonfinite = sum((~torch.isfinite(v) & valid).sum(dim=1) for v in after.values())
     norms = whole["grad_norm"].tolist()
     for i, r in enumerate(rows):
-        block.has_previous[r] = True
         block.previous_norms[r] = norms[i]
     if everything:
         block.previous_sample = grad

@@ -7,6 +7,8 @@ torch.Generator), so a recorded run ends bit-identical to the same run unrecorde
 from __future__ import annotations
 
 import atexit
+import collections
+import functools
 import datetime
 import math
 import os
@@ -115,6 +117,8 @@ class Recorder:
         self._analysis = analysis_for(self, curvature_every, noise_every)   # None when both are 0
         self._generator = torch.Generator().manual_seed(SAMPLE_SEED)
         self._blocks = None                 # nbkit.record.capture.Block list, made at the first step
+        self._waiting_rows = collections.deque()   # rows whose statistics are still being computed
+        self.background = True              # statistics on a background thread (False: in the hook)
         self._q_index = {q: i for i, q in enumerate(QUANTITIES)}
         self._tensors, orphans, frozen = self._table(model, optimizer)
         self._groups = [[t for t in self._tensors if t.group == g] for g in range(len(optimizer.param_groups))]
@@ -313,10 +317,18 @@ class Recorder:
                           "Pass strict=True to raise instead.", RecorderWarning, stacklevel=3)
         if stop:
             self._failed = True
+            try:                     # the previous step's row is complete: keep it
+                self._finalize_row()
+            except Exception:
+                pass
 
     def _check_writer(self):
         if self._writer.error is not None and not self._failed:
             self._fail("writing the recording failed", self._writer.error)
+        if self._writer.dropped_rows and "the writer fell behind" not in self._warned:
+            self._fail("the writer fell behind", RuntimeError(
+                f"{self._writer.dropped_rows} rows were dropped because the disk is slower than training; "
+                "raise every= to record heavy rows less often"), stop=False)
 
     @property
     def active(self) -> bool:
@@ -424,10 +436,47 @@ class Recorder:
                 "q": np.full((len(QUANTITIES), len(self._tensors)), np.nan, dtype=np.float32),
                 "hist": np.zeros((3, len(self._tensors), HISTOGRAM_BINS + 2), dtype=np.uint32), "probes": {}}
 
-    def _finalize_row(self):
+    def _finalize_row(self, force: bool = False):
+        """Hand finished rows to the writer, in step order. A row whose statistics still run on
+        the background thread waits for a later hook unless `force` (flush, close)."""
         if self._open_row is not None:
             row, self._open_row = self._open_row, None
+            self._waiting_rows.append(row)
+        while self._waiting_rows:
+            row = self._waiting_rows[0]
+            if not force and not all(job.done() for job in row.get("_jobs", ())):
+                return
+            self._waiting_rows.popleft()
+            self._complete_row(row)
             self._writer.put_row(row)
+
+    def _complete_row(self, row: dict):
+        """Wait for the background statistics of the row (re-raising their error, if any)."""
+        for job in row.pop("_jobs", ()):
+            job.result()
+
+    def _deliver(self, row: dict, ks: list, probe_counts: list, results) -> None:
+        """Write one block's statistics into the row's arrays (runs on the statistics thread)."""
+        whole, sampled, hist, probe_values, state_nonfinite = results
+        q_index = self._q_index
+        summary, histograms = row["q"], row["hist"]
+        for name, values in (*whole.items(), *sampled.items()):
+            i = q_index.get(name)
+            if i is not None:
+                summary[i, ks] = values.numpy()
+        if state_nonfinite is not None:
+            summary[q_index["state_nonfinite"], ks] = state_nonfinite.numpy()
+        histograms[:, ks, :] = hist.numpy()
+        for name, values in probe_values.items():
+            block_values = row["probes"].get(name)
+            if block_values is None:
+                block_values = row["probes"][name] = np.full((len(self._tensors), self.probes), np.nan,
+                                                             dtype=np.float32)
+            width = min(values.shape[1], self.probes)
+            block_values[ks, :width] = values[:, :width].numpy()
+            for r, count in enumerate(probe_counts):
+                if count < self.probes:
+                    block_values[ks[r], count:] = np.nan
 
     def loss(self, value) -> None:
         """Report the loss: for the step about to be taken, or for the step just taken when called
@@ -484,25 +533,10 @@ class Recorder:
             if not rows:
                 continue
             ks = [block.positions[r] for r in rows]
-            whole, sampled, hist, probe_values, state_nonfinite = capture.measure_block(
-                block, rows, self.optimizer, self.adapter, self.probes)
-            for name, values in (*whole.items(), *sampled.items()):
-                i = q_index.get(name)
-                if i is not None:
-                    summary[i, ks] = values.numpy()
-            if state_nonfinite is not None:
-                summary[q_index["state_nonfinite"], ks] = state_nonfinite.numpy()
-            histograms[:, ks, :] = hist.numpy()
-            short = [r for r, t in enumerate(block.tensors[r] for r in rows) if t.probes < self.probes]
-            for name, values in probe_values.items():
-                block_values = row["probes"].get(name)
-                if block_values is None:
-                    block_values = row["probes"][name] = np.full((len(self._tensors), self.probes), np.nan,
-                                                                 dtype=np.float32)
-                width = values.shape[1]
-                block_values[ks, :width] = values.numpy()
-                for r in short:
-                    block_values[ks[r], block.tensors[rows[r]].probes:] = np.nan
+            deliver = functools.partial(self._deliver, row, ks, [block.tensors[r].probes for r in rows])
+            job = capture.measure_block(block, rows, self.optimizer, self.adapter, self.probes, deliver=deliver,
+                                        background=self.background)
+            row.setdefault("_jobs", []).append(job)
 
     # --- keyframes ------------------------------------------------------------------------------
     def _snapshot(self, step: int):
@@ -529,7 +563,7 @@ class Recorder:
         """Write everything recorded so far to disk (blocks until the writer has done so)."""
         if self._closed:
             return
-        self._finalize_row()
+        self._finalize_row(force=True)
         self._writer.flush()
         self._check_writer()
 
@@ -541,7 +575,7 @@ class Recorder:
             for handle in self._handles:
                 handle.remove()
             if not self._failed:
-                self._finalize_row()
+                self._finalize_row(force=True)
                 self._snapshot(self.step)
         except Exception as exc:
             self._fail("closing the recording failed", exc)
