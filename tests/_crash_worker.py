@@ -40,7 +40,7 @@ def main(root, trials, seed):
     for trial in range(trials):
         folder = os.path.join(root, f"trial{trial:02d}")
         flush_seconds = rng.choice([0.1, 0.3, 1.0])
-        target = rng.randint(1, 300)
+        target = rng.randint(1, 200)
         read_fd, write_fd = os.pipe()
         pid = os.fork()
         if pid == 0:

@@ -114,14 +114,29 @@ def test_state_a_keyframe_cannot_hold_degrades_to_rows_only(tmp_path, tiny_class
     assert run.keyframes == [0]                                          # taken before the odd state existed
 
 
-def test_unexpected_state_midway_stops_recording_and_keeps_earlier_rows(tmp_path, tiny_classifier):
+def test_a_recorder_bug_midway_stops_recording_and_keeps_earlier_rows(tmp_path, tiny_classifier):
     model, inputs, targets = tiny_classifier
-    optimizer = OddStateSGD(model.parameters(), lr=0.1, bad_step_after=6)
-    messages = _record_warnings(model, optimizer, tmp_path / "r", inputs, targets, 12)
-    assert any("recording stopped" in m and "not a number" in m for m in messages), messages
+    optimizer = torch.optim.Adam(model.parameters(), lr=1e-2)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        rec = nbkit.record(model, optimizer, tmp_path / "r")
+        original, calls = rec._light_row, []
+
+        def buggy():
+            calls.append(1)
+            if len(calls) > 6:
+                raise ZeroDivisionError("an injected bug")
+            return original()
+
+        rec._light_row = buggy
+        losses = train(model, optimizer, inputs, targets, 12)
+        rec.close()
+    assert len(losses) == 12 and np.isfinite(losses).all()
+    messages = [str(w.message) for w in caught if issubclass(w.category, nbkit.RecorderWarning)]
+    assert len(messages) == 1 and "recording stopped" in messages[0] and "injected bug" in messages[0], messages
     run = nbkit.load(tmp_path / "r")
-    assert 3 <= len(run) < 12 and run.steps.tolist() == list(range(len(run)))
-    assert np.isfinite(run.series("grad_norm")).all()
+    assert run.steps.tolist() == list(range(6)) and np.isfinite(run.series("grad_norm")).all()
+    assert run.keyframes == [0]              # no final keyframe from a recorder in doubt
 
 
 def test_strict_mode_raises_on_unexpected_state(tmp_path, tiny_classifier):
@@ -133,3 +148,24 @@ def test_strict_mode_raises_on_unexpected_state(tmp_path, tiny_classifier):
     assert "keyframe" in str(raised.value.__cause__)
     rec.strict = False
     rec.close()
+
+
+def test_a_writer_slower_than_training_drops_rows_with_one_warning(tmp_path, tiny_classifier, monkeypatch):
+    import nbkit.store.writer as writer
+
+    monkeypatch.setattr(writer, "QUEUE_ROWS", 5)
+    model, inputs, targets = tiny_classifier
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.1)
+    rec = nbkit.record(model, optimizer, tmp_path / "r")
+    gate = __import__("threading").Event()
+    original = rec._writer._handle
+    monkeypatch.setattr(rec._writer, "_handle", lambda kind, item: (gate.wait(10), original(kind, item))[1])
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        train(model, optimizer, inputs, targets, 30)
+        gate.set()
+        rec.close()
+    messages = [str(w.message) for w in caught if issubclass(w.category, nbkit.RecorderWarning)]
+    assert len(messages) == 1 and "fell behind" in messages[0] and "rows were dropped" in messages[0]
+    run = nbkit.load(tmp_path / "r")
+    assert 5 <= len(run) < 30 and run.steps.tolist() == sorted(run.steps.tolist())

@@ -22,7 +22,8 @@ from nbkit.store.files import (COMMITTED_FILE, DETAIL_CHUNK, FINGERPRINT_WIDTH, 
 
 KEYFRAME_BUDGET_BYTES = 1 << 30   # above this estimated total, older keyframes are thinned
 KEYFRAMES_KEPT_RECENT = 4         # the newest keyframes are never thinned
-QUEUE_ROWS = 20_000               # rows waiting for the writer before new rows are dropped
+QUEUE_ROWS = 20_000               # rows waiting for the writer before new rows are dropped ...
+QUEUE_BYTES = 256 << 20           # ... or bytes: memory stays bounded when the disk is slower than training
 ROW_ARRAYS = ("step", "loss", "lr", "heavy", "fingerprint")   # every recording has these
 
 
@@ -46,7 +47,9 @@ class RecordingWriter:
         self.flush_seconds = flush_seconds
         self.error: BaseException | None = None
         self._queue: queue.Queue = queue.Queue()
-        self._pending = 0
+        # Each counter is written by one thread only (queued: training, written: writer), so their
+        # difference is the backlog without a lock.
+        self._queued_rows = self._written_rows = self._queued_bytes = self._written_bytes = 0
         self._buffer: list[dict] = []
         self._rows = resume_rows              # rows committed on disk
         self._last_step = resume.last_step if resume is not None else None
@@ -78,11 +81,14 @@ class RecordingWriter:
 
     # --- the training thread's side -------------------------------------------------------------
     def put_row(self, row: dict) -> None:
-        if self._pending >= QUEUE_ROWS:
+        if (self._queued_rows - self._written_rows >= QUEUE_ROWS
+                or self._queued_bytes - self._written_bytes >= QUEUE_BYTES):
             self.dropped_rows += 1
             return
-        self._pending += 1
-        self._queue.put(("row", row))
+        size = _row_bytes(row)
+        self._queued_rows += 1
+        self._queued_bytes += size
+        self._queue.put(("row", (row, size)))
 
     def put_local(self, step: int, values: np.ndarray) -> None:
         """Per-rank local gradient statistics of one step (nbkit.record.distributed)."""
@@ -129,7 +135,9 @@ class RecordingWriter:
 
     def _handle(self, kind, item) -> bool:
         if kind == "row":
-            self._pending -= 1
+            item, size = item
+            self._written_rows += 1
+            self._written_bytes += size
             if self.error is None:
                 self._buffer.append(item)
         elif kind == "keyframe":
@@ -345,6 +353,10 @@ class RecordingWriter:
 
 
 LOCAL_ARRAYS = ("local/step", "local/values")
+
+
+def _row_bytes(row: dict) -> int:
+    return 256 + row["q"].nbytes + row["hist"].nbytes + sum(v.nbytes for v in row["probes"].values())
 
 
 class _quiet_nan_warnings:
