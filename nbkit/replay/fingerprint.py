@@ -17,6 +17,7 @@ from torch.utils._pytree import tree_flatten
 from nbkit.store.files import FINGERPRINT_WIDTH
 
 SAMPLES = FINGERPRINT_WIDTH - 4
+_LAYOUT_CRC: dict = {}     # (shapes, dtypes) -> CRC32 of their description, computed once per layout
 
 
 def _tensors(value, out: list) -> bool:
@@ -49,24 +50,30 @@ def fingerprint(*values) -> np.ndarray:
         tensors = [t for t in tree_flatten(values)[0] if isinstance(t, torch.Tensor)]
     if not tensors:
         return out
-    with torch.no_grad():
-        description = ";".join(f"{tuple(t.shape)}:{t.dtype}" for t in tensors)
-        out[0] = len(tensors)
-        out[1] = sum(t.numel() for t in tensors)
-        out[2] = zlib.crc32(description.encode())
-        total = 0.0                               # float64 additions in order, as a sum of float64 scalars
-        for t in tensors:
-            total += float(t.detach().sum(dtype=torch.float64) if not t.is_complex()
-                           else t.detach().abs().sum(dtype=torch.float64))
-        out[3] = total
-        first = tensors[0].detach().reshape(-1)
-        if first.numel():
-            stride = max(1, first.numel() // SAMPLES)
-            sample = first[::stride][:SAMPLES]
-            if sample.is_complex():
-                out[4:4 + sample.numel()] = sample.to(torch.float64).numpy()
-            else:
-                out[4:4 + sample.numel()] = sample.tolist()     # exact in float64, like .to(torch.float64)
+    layout = tuple((tuple(t.shape), t.dtype) for t in tensors)
+    crc = _LAYOUT_CRC.get(layout)
+    if crc is None:
+        description = ";".join(f"{shape}:{dtype}" for shape, dtype in layout)
+        crc = _LAYOUT_CRC[layout] = zlib.crc32(description.encode())
+        if len(_LAYOUT_CRC) > 4096:
+            _LAYOUT_CRC.clear()
+    out[0] = len(tensors)
+    out[1] = sum(t.numel() for t in tensors)
+    out[2] = crc
+    total = 0.0                               # float64 additions in order, as a sum of float64 scalars
+    for t in tensors:                         # detach(): no graph is built, so no no_grad() needed
+        t = t.detach()
+        total += float(t.sum(dtype=torch.float64) if not t.is_complex() else t.abs().sum(dtype=torch.float64))
+    out[3] = total
+    first = tensors[0].detach().reshape(-1)
+    n = first.numel()
+    if n:
+        stride = max(1, n // SAMPLES)
+        sample = first[::stride][:SAMPLES]
+        if sample.is_complex():
+            out[4:4 + sample.numel()] = sample.to(torch.float64).numpy()
+        else:
+            out[4:4 + sample.numel()] = sample.tolist()     # exact in float64, like .to(torch.float64)
     return out
 
 
