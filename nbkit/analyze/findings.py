@@ -41,11 +41,14 @@ class Thresholds:
     sign_flip: float = 0.25           # oscillation: a quarter of the coordinates flip sign (the sharp
                                       # directions that oscillate are few, but dominate the gradient) ...
     grad_cosine: float = -0.3         # ... with consecutive gradients pointing against each other ...
-    oscillation_decay: float = 0.5    # ... and a gradient norm that does not decay (a converging zig-zag)
+    oscillation_decay: float = 0.5    # ... a gradient norm that does not decay (a converging zig-zag) ...
+    oscillation_progress: float = 0.05  # ... a loss that does not fall by 5 % meanwhile ...
+    oscillation_gap: float = 0.1      # ... and sits above its best by 10 % of the run's loss range
     reversed_share: float = 0.3       # overshoot: many updates move against the gradient ...
     reversed_over_flip: float = 2.0   # ... twice as often as gradients flip sign (noise reverses about as
                                       # often as it flips; momentum carried past a minimum reverses more)
-    dead_share: float = 0.25          # dead-units: a quarter of a weight's rows without gradient ...
+    dead_share: float = 0.25          # dead-units: a quarter of a weight's rows without gradient (info;
+    dead_share_warning: float = 0.5   # half of them: warning) ...
     dead_window: int = 50             # ... in every row of this many heavy rows
     lost_share: float = 0.25          # lost-updates: a quarter of the updates round to nothing
     plateau_window: int = 100         # plateau: loss rows per window
@@ -386,11 +389,27 @@ def _oscillation(data, t):
     norm = data.series("grad_norm")
 
     def growing(f):
-        """Gradient descent with 1 < lr·λ < 2 converges while alternating: a healthy, decaying oscillation.
-        Kept only where the gradient norm does not shrink: last quarter ≥ half the first quarter's."""
+        """Gradient descent with 1 < lr·λ < 2 converges while alternating, and momentum methods zig-zag
+        along sharp directions while the loss keeps falling: both healthy. Kept only where the gradient
+        norm does not shrink (last quarter ≥ oscillation_decay × the first quarter's) and the loss does
+        not improve (last quarter's median ≥ (1 − oscillation_progress) × the first quarter's)."""
         k, (a, b) = data.tensors.index(f.tensors[0]), np.searchsorted(data.heavy_steps, [f.first_step, f.last_step])
         quarter = max(1, (b - a + 1) // 4)
-        return _median(norm[b + 1 - quarter:b + 1, k]) >= t.oscillation_decay * _median(norm[a:a + quarter, k])
+        if _median(norm[b + 1 - quarter:b + 1, k]) < t.oscillation_decay * _median(norm[a:a + quarter, k]):
+            return False
+        rows = data.run.rows_for_steps(f.first_step, f.last_step)
+        loss = data.loss[rows]
+        span = max(1, len(loss) // 4)
+        first, last = _median(loss[:span]), _median(loss[-span:])
+        if last < (1 - t.oscillation_progress) * first:
+            return False
+        # a zig-zag at the noise floor of a converged run is harmless: the loss must sit above its best
+        # by oscillation_gap of the run's loss range
+        return not (_median(loss) - low < t.oscillation_gap * (high - low))
+
+    finite = data.loss[np.isfinite(data.loss)]
+    smooth = _rolling_median(finite, 11) if len(finite) else finite
+    low, high = (float(smooth.min()), float(smooth.max())) if len(smooth) else (math.nan, math.nan)
 
     found = _per_tensor(data, t, "oscillation", "warning",
                        lambda k: (flips[:, k] > t.sign_flip) & (cos[:, k] < t.grad_cosine),
@@ -421,7 +440,13 @@ def _dead_units(data, t):
                              "Whole output units of this weight get no gradient at all (dead ReLUs, saturated "
                              "units). Lower the learning rate, use a leaky activation or check the initialisation.",
                              window=t.dead_window, share=1.0)
-    return [f for f in candidates if _probes_confirm_dead(data, f)]
+    out = []
+    for f in candidates:
+        if _probes_confirm_dead(data, f):
+            severity = "warning" if f.evidence["min_dead_share"] >= t.dead_share_warning else "info"
+            out.append(Finding(f.kind, f.tensors, f.first_step, f.last_step, severity, f.evidence, f.suggestion,
+                               f.source))
+    return out
 
 
 def _probes_confirm_dead(data, finding) -> bool:
