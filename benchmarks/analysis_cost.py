@@ -7,9 +7,12 @@ All timings of one model are taken in the same process, interleaved round by rou
 as ratios of medians to the forward+backward median of that round set (never bare times):
   hvp        one Hessian-vector product from scratch: forward, backward with create_graph, and the
              double backward (what one power-iteration step would cost without graph reuse)
+  hvp/math   the same, divided by a forward+backward with attention on the math kernel (second-order
+             passes must use it: the fused CPU attention kernels have no double backward)
   hvp_reuse  one more product through an already built graph (what each Lanczos step costs)
   sharpness  one nbkit.sharpness estimate at the recording tolerance (1e-3), with the Adam optimizer
-  noise      one nbkit noise-scale estimate (per-example gradients by vmap, or micro-batches)
+  noise      one nbkit noise-scale estimate ("auto": per-example gradients by vmap for small models,
+             micro-batches for large ones or with BatchNorm)
 Budget (issue 5): hvp <= 3 x forward+backward.
 """
 from __future__ import annotations
@@ -93,17 +96,22 @@ def measure(model, batch, rounds: int) -> dict:
     def one_noise():
         noise_parts(model, step_fn, batch)
 
-    times = {name: [] for name in ("fwd_bwd", "hvp", "hvp_reuse", "sharpness", "noise")}
+    def forward_backward_math():
+        with second_order():
+            torch.autograd.grad(step_fn(model, batch), params)
+
+    times = {name: [] for name in ("fwd_bwd", "fwd_bwd_math", "hvp", "hvp_reuse", "sharpness", "noise")}
     for r in range(rounds):                                      # interleaved: drift hits all alike
         times["fwd_bwd"].append(timed(forward_backward))
         times["hvp"].append(timed(hvp_from_scratch))
         times["hvp_reuse"].append(timed(hvp_reuse))
-        times["fwd_bwd"].append(timed(forward_backward))
+        times["fwd_bwd_math"].append(timed(forward_backward_math))
         times["noise"].append(timed(one_noise))
         if r < max(1, rounds // 3):                             # the Lanczos estimate is the long one
             times["sharpness"].append(timed(one_sharpness))
     base = statistics.median(times["fwd_bwd"])
     ratios = {k: statistics.median(v) / base for k, v in times.items() if k != "fwd_bwd"}
+    ratios["hvp_vs_math"] = statistics.median(times["hvp"]) / statistics.median(times["fwd_bwd_math"])
     ratios["params"] = n
     ratios["noise_method"] = method
     ratios["lanczos_hvps_equiv"] = ratios["sharpness"] / ratios["hvp_reuse"]
@@ -121,13 +129,13 @@ def main(argv=None) -> int:
     rounds = args.rounds or (3 if args.quick else 6)
     print(f"torch {torch.__version__}, {torch.get_num_threads()} threads; ratios to one forward+backward "
           f"(median of {2 * rounds} interleaved)")
-    header = f"{'model':42s} {'params':>9s} {'hvp':>6s} {'hvp_reuse':>9s} {'sharpness':>9s} {'(~HVPs)':>8s} " \
-             f"{'noise':>6s}  noise method"
+    header = f"{'model':42s} {'params':>9s} {'hvp':>6s} {'hvp/math':>8s} {'hvp_reuse':>9s} {'sharpness':>9s} " \
+             f"{'(~HVPs)':>8s} {'noise':>6s}  noise method"
     print(header)
     over = []
     for name, (model, batch) in models(args.quick).items():
         r = measure(model, batch, rounds)
-        print(f"{name:42s} {r['params']:9,d} {r['hvp']:6.2f} {r['hvp_reuse']:9.2f} {r['sharpness']:9.1f} "
+        print(f"{name:42s} {r['params']:9,d} {r['hvp']:6.2f} {r['hvp_vs_math']:8.2f} {r['hvp_reuse']:9.2f} {r['sharpness']:9.1f} "
               f"{r['lanczos_hvps_equiv']:8.0f} {r['noise']:6.2f}  {r['noise_method']}")
         if r["hvp"] > HVP_BUDGET:
             over.append(name)

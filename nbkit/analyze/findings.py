@@ -34,7 +34,7 @@ class Thresholds:
     spike_min_history: int = 10       # rows needed before spikes are judged
     update_ratio_high: float = 0.25   # 250× the common-practice 1e-3: weights rewritten every few steps
     update_ratio_extreme: float = 1.0 # any single step that moves a weight by more than its own norm
-    update_ratio_low: float = 1e-6    # 1000× below 1e-3 while the learning rate is not decayed
+    update_ratio_low: float = 1e-5    # 100× below 1e-3 while the learning rate is not decayed
     eps_share: float = 0.5            # "most coordinates": ε outweighs √v̂ for over half of them
     relevant_grad: float = 1e-4       # eps-dominated, lost-updates: only tensors whose gradient RMS is at
                                       # least 1e-4 × the median tensor's (others barely matter to the loss)

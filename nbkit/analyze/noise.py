@@ -23,6 +23,9 @@ from nbkit.analyze.curvature import AnalysisError, loss_of, second_order, untouc
 
 MICRO_BATCHES = 8          # micro-batches of the fallback (fewer when the batch is small)
 VMAP_BUDGET = 1 << 26      # per-example gradient values held at once (chunks of examples)
+PER_EXAMPLE_LIMIT = 1 << 24  # "auto" uses micro-batches above this many per-example gradient values
+                             # (parameters × batch): per-example passes are memory-bound there
+                             # (about 25 × a forward+backward on a 1.3M-parameter MLP at batch 64)
 
 
 @dataclass(frozen=True)
@@ -133,7 +136,8 @@ def noise_parts(model, step_fn, batch, *, params=None, method="auto") -> NoisePa
     """Unbiased |G|² and tr(Σ) on one batch. step_fn(model, batch) must return the *mean* loss.
 
     params=None: all parameters requiring grad. method: "auto" (per-example unless the model has
-    BatchNorm in training mode or vmap fails), "per-example" or "micro-batch". The RNG state and
+    BatchNorm in training mode, parameters × batch exceeds PER_EXAMPLE_LIMIT, or vmap fails),
+    "per-example" or "micro-batch". The RNG state and
     buffers are restored; .grad is not touched.
     """
     if method not in ("auto", "per-example", "micro-batch"):
@@ -145,7 +149,8 @@ def noise_parts(model, step_fn, batch, *, params=None, method="auto") -> NoisePa
     if size < 2:
         raise AnalysisError(f"The gradient noise scale needs a batch of at least 2 examples, got {size}")
     with untouched(model), second_order():
-        if method == "per-example" or (method == "auto" and not _mixes_examples(model)):
+        small = sum(p.numel() for p in params) * size <= PER_EXAMPLE_LIMIT
+        if method == "per-example" or (method == "auto" and small and not _mixes_examples(model)):
             try:
                 return _per_example_parts(model, step_fn, batch, params, size)
             except AnalysisError:
