@@ -118,7 +118,8 @@ def reference_sampled_statistics(*, grad, theta_before, update, valid, before, a
     histograms = torch.stack([
         log2_histograms(grad, valid, HISTOGRAM_LOW["grad"]),
         log2_histograms(update, valid, HISTOGRAM_LOW["update"]),
-        log2_histograms(gain, valid & (grad != 0) & ~(gain < 0) & adapter.gain_applicable, HISTOGRAM_LOW["gain"]),
+        log2_histograms(gain, valid & (grad != 0) & ~((gain < 0) & torch.isfinite(gain)) & adapter.gain_applicable,
+                        HISTOGRAM_LOW["gain"]),      # reversed gains are a series; non-finite ones are counted
     ])
     return quantities, histograms, probe_values
 
@@ -182,7 +183,7 @@ def sampled_statistics(*, grad, theta_before, update, valid, before, after, step
     if previous_grad is not None:
         both = g * previous_grad                 # < 0: sign changed; NaN / 0: left out
         counted = torch.isfinite(both) & (both != 0)
-        quantities["sign_flip"] = share((both < 0).sum(dim=1).to(grad.dtype),
+        quantities["sign_flip"] = share(((both < 0) & counted).sum(dim=1).to(grad.dtype),
                                         counted.sum(dim=1).to(grad.dtype))
     probe_values = {"grad": grad[:, :probes], "update": update[:, :probes]}
     for key, value in after.items():
@@ -229,9 +230,9 @@ def sampled_statistics(*, grad, theta_before, update, valid, before, after, step
             probe_values["scale_factor"] = factors.scale.expand_as(gain)[:, :probes]
             probe_values["residual"] = factors.residual.expand_as(gain)[:, :probes]
     # gain histogram: positive gains, zeros and non-finite where g != 0 (reversed left out)
-    gain_values = gain if gain is not None else torch.full_like(grad, NAN)
-    include = torch.stack([valid, valid, (g != 0) & valid & ~(gain_values < 0)]) if gain is not None else None
-    histograms = fast_log2_histograms(torch.stack([grad, update, gain_values]), include)
-    if gain is None:
-        histograms[2] = 0
+    if gain is None:                         # not applicable (LBFGS): no gain histogram
+        gain, counted = torch.full_like(grad, NAN), torch.zeros_like(valid)
+    else:
+        counted = (g != 0) & valid & ~(gain < 0)       # gain is NaN (counted non-finite) where undefined
+    histograms = fast_log2_histograms(torch.stack([grad, update, gain]), torch.stack([valid, valid, counted]))
     return quantities, histograms, probe_values
