@@ -426,3 +426,23 @@ def test_done_when_orphan_nan_and_high_learning_rate_are_all_named(tmp_path, cap
     nonfinite = [f for f in findings if f.kind == "nonfinite"]
     assert nonfinite and nonfinite[0].first_step <= 150
     assert kinds(loud(findings)) & {"update-ratio", "grad-spike", "oscillation", "overshoot"}
+
+
+def test_findings_on_sparse_tiny_and_lossless_recordings(tmp_path):
+    x, y = digits()
+    model = mlp()
+    sparse = train(model, torch.optim.Adam(model.parameters(), lr=1e-3), x, y, 40, tmp_path / "sparse", every=7,
+                   before=_poison_batch_at(30))
+    found = [f for f in sparse.findings() if f.kind == "nonfinite"]
+    assert [f.first_step for f in found] == [30] and "the input batch" in found[0].suggestion
+    model = mlp()
+    tiny = train(model, torch.optim.SGD(model.parameters(), lr=0.01), x, y, 2, tmp_path / "tiny")
+    assert loud(tiny.findings()) == []
+    model = mlp()
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.01)
+    with nbkit.record(model, optimizer, tmp_path / "no-loss"):             # no criterion: the loss is unknown
+        for _ in range(30):
+            optimizer.zero_grad()
+            torch.nn.functional.cross_entropy(model(x[:32]), y[:32]).backward()
+            optimizer.step()
+    assert loud(nbkit.load(tmp_path / "no-loss").findings()) == []
