@@ -93,3 +93,14 @@ def test_the_landscape_view_moves_its_markers_with_step(replays, tmp_path):
     k = list(view.slice.path_steps["sgd-m"]).index(20)
     np.testing.assert_allclose(view.panel.markers["sgd-m"].get_xydata()[0], view.slice.paths["sgd-m"][k])
     assert view.to_png(tmp_path / "slice.png").stat().st_size > 10_000
+
+
+def test_a_bit_exact_replay_beside_its_parent_does_not_collapse_the_plane(replays):
+    """The parent and its recorded-optimizer replay end at one point; the next run spans the plane."""
+    parent, out = replays
+    exact = nbkit.replay(parent, rs.make_model(), rs.step_fn, rs.Batches(), start=10, steps=30, progress=False,
+                         to=parent.path.parent / "exact")["recorded"]
+    piece = landscape_slice(rs.make_model(), rs.step_fn, rs.Batches()(10),
+                            {"run": parent, "recorded": exact, "sgd-m": out["sgd-m"]}, resolution=5, progress=False)
+    assert piece.axes == "end points" and "sgd-m" in piece.axis_labels[1]
+    np.testing.assert_allclose(piece.paths["run"][-1], piece.paths["recorded"][-1], atol=1e-9)

@@ -1,8 +1,9 @@
 """Loss-landscape slices: the loss on a plane through parameter space, and runs' paths projected on it.
 
 The plane goes through the runs' shared start point θ0. With two or more runs its axes are the
-directions to the first two runs' end points, orthonormalised (Gram-Schmidt), so coordinates are
-distances in parameter space. With one run they are two random directions with filter
+directions to the end points of the first two runs that span a plane with θ0 (a bit-exact replay
+ends where its parent does), orthonormalised (Gram-Schmidt), so coordinates are distances in
+parameter space. With one run they are two random directions with filter
 normalisation (Li et al. 2018, "Visualizing the Loss Landscape of Neural Nets", section 4: each
 filter d_i of the direction, a slice along the output dimension, is rescaled to the norm of the
 same filter of θ0: d_i <- d_i / ‖d_i‖ · ‖θ0_i‖). One-dimensional tensors (biases, norm scales) get a
@@ -127,9 +128,9 @@ def landscape_slice(model, step_fn, batch, runs: dict, resolution: int = 21, *, 
     for name, run in runs.items():
         steps = [k for k in run.keyframes if k >= origin_step]
         paths_raw[name] = (np.array(steps), torch.stack([flat(run.keyframe(k)["model"], names) for k in steps]))
-    if len(runs) >= 2:
-        (first, a), (second, b) = list(paths_raw.items())[:2]
-        d1, d2 = orthonormal_axes(a[1][-1] - origin, b[1][-1] - origin)
+    pair = _spanning_pair(paths_raw, origin) if len(runs) >= 2 else None
+    if pair is not None:
+        first, second, d1, d2 = pair
         axes, labels, base = "end points", (f"towards the end of {first}", f"towards the end of {second} "
                                             "(orthogonalised)"), (0.0, 0.0)
     else:
@@ -151,6 +152,21 @@ def landscape_slice(model, step_fn, batch, runs: dict, resolution: int = 21, *, 
         origin_loss = float(step_fn(copy.eval(), batch))
     return LandscapeSlice(alpha, beta, loss, origin_loss, origin_step, axes, labels, paths,
                           {name: steps for name, (steps, _) in paths_raw.items()})
+
+
+def _spanning_pair(paths_raw: dict, origin: torch.Tensor):
+    """(name, name, e1, e2) of the first two runs, in order, whose end points span a plane with the
+    start (a bit-exact replay ends where its parent ends, so it cannot serve as the second axis);
+    None when all end points lie on one line (random directions are used then)."""
+    names = list(paths_raw)
+    for i, first in enumerate(names):
+        for second in names[i + 1:]:
+            try:
+                e1, e2 = orthonormal_axes(paths_raw[first][1][-1] - origin, paths_raw[second][1][-1] - origin)
+            except NbkitError:
+                continue
+            return first, second, e1, e2
+    return None
 
 
 def shared_start(recordings: list, names: list[str]) -> tuple[int, dict]:
