@@ -21,8 +21,16 @@ def run(args) -> int:
         steps = recording.steps
         meta = recording.meta
         span = f"steps {steps[0]}..{steps[-1]}" if len(steps) else "no steps yet"
+        size = recording.size_report()
+        per_step = size["row_bytes_per_step"]
+        parent = meta.get("parent") or {}
         print(f"{path}: {len(steps)} recorded steps ({span}), {len(recording.tensors)} tensors, "
-              f"optimizer {meta['optimizer']['class']}, keyframes {recording.keyframes}, "
-              f"{recording.size_bytes() / 1e6:.1f} MB, "
-              f"{'closed cleanly' if recording.closed_cleanly else 'not closed cleanly (still running or crashed)'}")
+              f"optimizer {meta['optimizer']['class']}, keyframes {recording.keyframes}")
+        print(f"  size {size['total'] / 1e6:.1f} MB (rows {size['rows'] / 1e6:.1f} MB"
+              + (f", {per_step:,.0f} bytes per step" if per_step == per_step else "")
+              + f"; keyframes {size['keyframes'] / 1e6:.1f} MB)")
+        print("  " + ("closed cleanly" if recording.closed_cleanly else
+                      "not closed cleanly: still being written, or the process stopped before close()"))
+        if parent:
+            print(f"  replay of {parent.get('path')} from step {parent.get('start')}")
     return status
