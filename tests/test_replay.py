@@ -245,3 +245,38 @@ def test_a_step_fn_that_makes_its_criterion_each_step_still_replays_exactly(reco
     # targets are seen (and checked) on every step but the one where the new object was first missed
     assert np.isnan(targets).all(axis=1).sum() <= 1
     np.testing.assert_array_equal(child.loss, recorded.loss[50:58])
+
+
+class ThreadSpy:
+    """step_fn that notes the torch thread count it runs under."""
+
+    def __init__(self):
+        self.seen = set()
+
+    def __call__(self, model, batch):
+        self.seen.add(torch.get_num_threads())
+        return rs.step_fn(model, batch)
+
+
+def test_the_recorded_thread_count_is_set_for_the_replay_and_restored(recorded, tmp_path):
+    import shutil
+
+    from nbkit.store.meta_update import update_meta
+
+    copy = tmp_path / "two-threads"
+    shutil.copytree(recorded.path, copy)
+    update_meta(copy, threads=2)                  # as if recorded with 2 threads
+    spy = ThreadSpy()
+    runs = nbkit.replay(copy, rs.make_model(), spy, rs.Batches(), start=50, steps=2, progress=False)
+    assert spy.seen == {2} and torch.get_num_threads() == 1
+    assert runs["recorded"].meta["replay"]["threads"] == 2
+    assert "set to the recorded 2" in runs["recorded"].meta["replay"]["threads_note"]
+
+
+def test_the_command_line_names_a_bad_setup(recorded, tmp_path, capsys):
+    from nbkit.cli import main
+
+    assert main(["replay", str(recorded.path), "--setup", "replay_setup", "--no-progress"]) == 1
+    assert "module:attribute" in capsys.readouterr().err
+    assert main(["replay", str(recorded.path), "--setup", "replay_setup:nothing_here", "--no-progress"]) == 1
+    assert "has no 'nothing_here'" in capsys.readouterr().err

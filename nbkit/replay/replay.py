@@ -11,7 +11,6 @@ copy of the global torch/numpy/python random states, so dropout draws what the o
 from __future__ import annotations
 
 import os
-import pickle
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -93,7 +92,9 @@ def replay(run, model, step_fn, batches, optimizers=None, start=None, steps=None
                      _record)
     names = list(plan.factories)
     if workers > 1 and len(names) > 1:
-        paths = _in_workers(plan, restore.copy_model(model), step_fn, batches, workers, progress)
+        from nbkit.replay.workers import in_workers
+
+        paths = in_workers(plan, restore.copy_model(model), step_fn, batches, workers, progress)
     else:
         paths = run_plan(plan, model, step_fn, batches, names, progress)
     return {name: (load(paths[name]) if plan.record else None) for name in names}
@@ -486,29 +487,3 @@ def _check_fingerprint(lane, recorded, step, strict):
     if not lane.mismatches:
         warnings.warn(message, stacklevel=4)
     lane.mismatches.append(int(step))
-
-
-# --- several processes --------------------------------------------------------------------------
-def _in_workers(plan, model, step_fn, batches, workers, progress) -> dict:
-    """Split the replays over `workers` spawned processes (not forked: a forked child can hang on
-    torch's thread pool). Everything sent must pickle by reference to an importable module."""
-    import multiprocessing
-    from concurrent.futures import ProcessPoolExecutor
-
-    for what, value in (("step_fn", step_fn), ("batches", batches), ("before_step", plan.before_step),
-                        ("model", model), *((f"optimizers[{n!r}]", f) for n, f in plan.factories.items())):
-        try:
-            pickle.dumps(value)
-        except Exception as exc:
-            raise ReplayError(f"workers={workers} sends {what} to spawned processes, but it cannot be pickled "
-                              f"({type(exc).__name__}: {exc}). Define it at module level in an importable file "
-                              "(not a lambda, a nested function or a generator), or use workers=1") from exc
-    names = list(plan.factories)
-    shares = [names[i::workers] for i in range(min(workers, len(names)))]
-    context = multiprocessing.get_context("spawn")
-    with ProcessPoolExecutor(max_workers=len(shares), mp_context=context) as pool:
-        futures = [pool.submit(run_plan, plan, model, step_fn, batches, share, progress) for share in shares]
-        paths = {}
-        for future in futures:
-            paths.update(future.result())
-    return paths
