@@ -45,6 +45,17 @@ def step_fn(model, batch):
     return CRITERION(model(x), y)
 
 
+def accumulating_step_fn(model, batch):
+    """Two micro-batches per step, backward on each (gradient accumulation); returns a float."""
+    x, y = batch
+    total = 0.0
+    for part in (slice(0, 16), slice(16, 32)):
+        loss = CRITERION(model(x[part]), y[part]) / 2
+        loss.backward()
+        total += float(loss)
+    return total
+
+
 def adam(groups):
     return torch.optim.Adam(groups, lr=1e-2)
 
@@ -61,7 +72,7 @@ def clip(model, optimizer, step):
     torch.nn.utils.clip_grad_norm_(model.parameters(), 0.5)
 
 
-def record_run(path, steps=230, keyframe_every=50, schedule=False, clipping=False, seed=0):
+def record_run(path, steps=230, keyframe_every=50, schedule=False, clipping=False, seed=0, accumulate=False):
     """Record `steps` Adam steps of make_model() on Batches(seed); returns the Recording."""
     model = make_model()
     optimizer = torch.optim.Adam(model.parameters(), lr=1e-2)
@@ -70,8 +81,10 @@ def record_run(path, steps=230, keyframe_every=50, schedule=False, clipping=Fals
     with nbkit.record(model, optimizer, path, criterion=CRITERION, keyframe_every=keyframe_every, probes=16):
         for step in range(steps):
             optimizer.zero_grad()
-            loss = step_fn(model, batches(step))
-            loss.backward()
+            if accumulate:
+                accumulating_step_fn(model, batches(step))
+            else:
+                step_fn(model, batches(step)).backward()
             if clipping:
                 clip(model, optimizer, step)
             optimizer.step()

@@ -280,3 +280,13 @@ def test_the_command_line_names_a_bad_setup(recorded, tmp_path, capsys):
     assert "module:attribute" in capsys.readouterr().err
     assert main(["replay", str(recorded.path), "--setup", "replay_setup:nothing_here", "--no-progress"]) == 1
     assert "has no 'nothing_here'" in capsys.readouterr().err
+
+
+def test_a_step_fn_that_runs_backward_itself_replays_exactly(tmp_path):
+    """Gradient accumulation: step_fn returns a float, so the replay does not call backward."""
+    parent = rs.record_run(tmp_path / "run", steps=30, keyframe_every=10, accumulate=True)
+    assert (parent.fingerprints[:, 0, 0] == 2).all()          # two forward passes per step
+    child = nbkit.replay(parent, rs.make_model(), rs.accumulating_step_fn, rs.Batches(), start=10,
+                         progress=False)["recorded"]
+    assert child.meta["replay"]["fidelity"]["identical"]
+    np.testing.assert_array_equal(child.fingerprints, parent.fingerprints[10:])
