@@ -153,24 +153,34 @@ class JupyterLab:
         page.goto(f"{self.base}/lab/tree/{notebook}?token={self.token}&reset", wait_until="domcontentloaded")
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
-            kernels = self.api("/api/kernels")
-            if any(k.get("execution_state") == "idle" and k.get("connections", 0) > 0 for k in kernels):
+            kernel = self.kernel_of(notebook)
+            if kernel and kernel.get("execution_state") == "idle" and kernel.get("connections", 0) > 0:
                 page.wait_for_selector(".jp-Notebook", timeout=30_000)
+                page.wait_for_timeout(1000)        # "idle" can show before the notebook panel is usable
                 return page
             page.wait_for_timeout(500)
         raise TimeoutError(f"no connected idle kernel for {notebook} after {timeout} s")
+
+    def kernel_of(self, notebook: str) -> dict | None:
+        """The kernel model (/api/kernels) of the session that has `notebook` open, or None."""
+        for session in self.api("/api/sessions"):
+            if session.get("path", "").endswith(notebook) and session.get("kernel"):
+                kernel_id = session["kernel"]["id"]
+                return next((k for k in self.api("/api/kernels") if k["id"] == kernel_id), None)
+        return None
 
     def run_all(self, page):
         """Run > Run All Cells, from the menu bar."""
         page.locator(".lm-MenuBar-itemLabel", has_text="Run").first.click()
         page.locator(".lm-Menu-itemLabel", has_text="Run All Cells").first.click()
 
-    def wait_idle(self, page, timeout=300.0):
-        """Wait until every kernel is idle (the cells have finished)."""
+    def wait_idle(self, page, notebook, timeout=300.0):
+        """Wait until the kernel of `notebook` is idle (its cells have finished)."""
         deadline = time.monotonic() + timeout
         page.wait_for_timeout(1000)
         while time.monotonic() < deadline:
-            if all(k.get("execution_state") == "idle" for k in self.api("/api/kernels")):
+            kernel = self.kernel_of(notebook)
+            if kernel and kernel.get("execution_state") == "idle":
                 return
             page.wait_for_timeout(500)
         raise TimeoutError(f"kernel still busy after {timeout} s")

@@ -71,7 +71,7 @@ def test_explorer_scrubs_and_follows_a_live_run_in_jupyterlab(live_notebook):
         page = lab.open("01-tour.ipynb")
         lab.run_all(page)
         lab.wait_for(page, f"{EXPLORER} .nbkit-coordinates canvas", timeout=240)
-        lab.wait_idle(page)
+        lab.wait_idle(page, "01-tour.ipynb")
         page.locator(f"{EXPLORER} .nbkit-timeline").first.scroll_into_view_if_needed()
         maps = [lab.stable_digest(page, sel) for sel in (".nbkit-layer-map", ".nbkit-coordinates")]
         assert all(maps), "the explorer's canvases were never drawn"
@@ -104,14 +104,18 @@ def test_explorer_scrubs_and_follows_a_live_run_in_jupyterlab(live_notebook):
         assert after_slider[0] != after_drag[0] and after_slider[1] != after_drag[1]
 
         # 3. live: the view of a running Recorder changes while the loop still runs
+        page.close()
         live = lab.open("live-explorer.ipynb")
         lab.run_all(live)
-        lab.wait_for(live, f"{EXPLORER} .nbkit-timeline canvas", timeout=240)
+        try:
+            lab.wait_for(live, f"{EXPLORER} .nbkit-timeline canvas", timeout=240)
+        finally:
+            lab.screenshot(live, "04-live-opened")
         seen_steps, seen_pixels, busy = set(), set(), 0
         deadline = time.monotonic() + 40
         while time.monotonic() < deadline:
-            kernels = lab.api("/api/kernels")
-            if any(k.get("execution_state") == "busy" for k in kernels):
+            kernel = lab.kernel_of("live-explorer.ipynb") or {}
+            if kernel.get("execution_state") == "busy":
                 busy += 1
                 step = _step_shown(live)
                 if step is not None:

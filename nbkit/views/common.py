@@ -1,7 +1,9 @@
 """Helpers any nbkit view can reuse: colours, ipympl canvases, blitted redraws, PNG output."""
 from __future__ import annotations
 
+import base64
 import io
+import threading
 import traceback
 import warnings
 
@@ -76,6 +78,23 @@ def _canvas_class():
                     Image.fromarray(data).save(png, format="png", compress_level=1)
                     return png.getvalue()
 
+            def send_binary(self, data):
+                # ipympl 0.10's send_binary, while no browser has said "initialized", replaces the PNG
+                # it was given by the raw RGBA pixels before sending them, so a browser showing the
+                # canvas while the kernel is busy (a live view during training) gets a broken image.
+                # Here the PNG is always what is sent; the static copy (_data_url) is kept as ipympl
+                # keeps it.
+                if self.syncing_data_url:
+                    png = data if self._current_image_mode == "full" else _png(self._last_buff)
+                    self._data_url = base64.b64encode(png).decode("utf-8")
+                self.send({"data": '{"type": "binary"}'}, buffers=[data])
+
+        def _png(buff):
+            with io.BytesIO() as out:
+                Image.fromarray(buff.view(dtype=np.uint8).reshape((*buff.shape, 4))).save(
+                    out, format="png", compress_level=1)
+                return out.getvalue()
+
         _CANVAS_CLASS = ViewCanvas
     return _CANVAS_CLASS
 
@@ -113,10 +132,14 @@ class Blitter:
     draw (matplotlib's draw_event), which also covers resizes and dpi changes from the browser.
     """
 
-    def __init__(self, figure):
+    HEAL_SECONDS = 0.4
+
+    def __init__(self, figure, lock=None):
         self.figure = figure
         self.artists: list = []
         self._background = None
+        self.lock = lock or threading.RLock()
+        self._heal_timer = None
         figure.canvas.mpl_connect("draw_event", self._on_draw)
 
     def add(self, artist):
@@ -143,6 +166,35 @@ class Blitter:
         for artist in self.artists:
             self.figure.draw_artist(artist)
         canvas.blit(self.figure.bbox)
+        self._schedule_heal()
+
+    def _schedule_heal(self):
+        """Send one full frame shortly after the last blit of a burst.
+
+        Blits reach the browser as diff images, and ipympl's front end skips an image that is still
+        loading when the next arrives; a skipped diff leaves stale pixels (seen here: a second
+        cursor line after a fast drag). The figure's Agg buffer always holds the whole current
+        image, so re-sending it as a full frame heals whatever was skipped.
+        """
+        if self._heal_timer is not None:
+            self._heal_timer.cancel()
+        self._heal_timer = threading.Timer(self.HEAL_SECONDS, self._heal)
+        self._heal_timer.daemon = True
+        self._heal_timer.start()
+
+    def _heal(self):
+        canvas = self.figure.canvas
+        with self.lock:
+            try:
+                canvas._force_full = True          # FigureCanvasWebAggCore's own "next frame is full" flag
+                canvas._png_is_old = True
+                canvas.manager.refresh_all()
+            except Exception:                      # noqa: BLE001 - a closed canvas; nothing to heal
+                pass
+
+    def stop(self):
+        if self._heal_timer is not None:
+            self._heal_timer.cancel()
 
 
 def figure_png(figure) -> np.ndarray:

@@ -70,6 +70,8 @@ class Explorer(widgets.VBox):
         self.timeline = Timeline(self.data, self._pick_step)
         self.layer_map = LayerMap(self.data, self._pick_tensor)
         self.coordinates = CoordinateView(self.data)
+        for part in (self.timeline, self.layer_map, self.coordinates):
+            part.blitter.lock = self._lock
         self._build_controls(run, quantity, findings_note)
         super().__init__(children=self._layout())
         self.add_class("nbkit-explorer")
@@ -143,7 +145,8 @@ class Explorer(widgets.VBox):
         controls = widgets.HBox([self.play, self.previous_button, self.slider, self.next_button, self.speed,
                                  self.log_toggle, self.step_label])
         pickers = widgets.HBox([self.quantity_picker, self.tensor_picker])
-        middle = widgets.HBox([self.layer_map.canvas, self.coordinates.canvas])
+        middle = widgets.HBox([self.layer_map.canvas, self.coordinates.canvas],
+                              layout=widgets.Layout(flex_flow="row wrap"))   # narrow pages stack them
         findings = widgets.VBox([widgets.HTML("<b>findings</b>"), self.findings_note, self.findings_list])
         findings.add_class("nbkit-findings-box")
         return [controls, self.timeline.canvas, pickers, middle, findings, self.errors]
@@ -320,6 +323,7 @@ class Explorer(widgets.VBox):
             if old_rows == 0:
                 self.slider.min = self.play.min = int(self.data.steps[0])
             target = last if at_end else self.step
+            self._prepare_busy_frontends()
             self._redraw_all(target)
             if self.step != target:
                 self._moving = True
@@ -328,6 +332,20 @@ class Explorer(widgets.VBox):
                 finally:
                     self._moving = False
             return True
+
+    def _prepare_busy_frontends(self):
+        """Make full frames reach a browser whose canvases the kernel has not heard from yet.
+
+        A canvas shown while the kernel runs a training loop never gets its "initialized" message
+        handled, so ipympl never sends the "resize" that sizes the page's canvas, and it has no base
+        image for diff frames. Sending the resize here and forcing full frames lets a live view draw.
+        """
+        for part in (self.timeline, self.layer_map, self.coordinates):
+            canvas = part.canvas
+            if canvas.syncing_data_url:              # ipympl: True until the browser said "initialized"
+                width, height = part.figure.bbox.size
+                canvas.manager.resize(int(width), int(height))
+                canvas._force_full = True
 
     def _on_recorder_step(self, recorder):
         """Called after each optimizer step of a live Recorder (same kernel, inside the training loop):
@@ -373,6 +391,7 @@ class Explorer(widgets.VBox):
             self._live_handle.remove()
         for name in ("timeline", "layer_map", "coordinates"):
             if hasattr(self, name):
+                getattr(self, name).blitter.stop()
                 getattr(self, name).canvas.close()
         super().close()
 
