@@ -325,7 +325,7 @@ def test_over_stability_limit_fires_where_gradient_descent_diverges(tmp_path, lr
     run, model = quadratic_run(tmp_path, f"gd{lr}", lambda p: torch.optim.SGD(p, lr=lr), 30, curvature_every=5)
     sharp = run.series("sharpness")[:, 0]
     np.testing.assert_allclose(sharp[::5], 4.0, rtol=1e-3)            # constant on a quadratic
-    grew = abs(float(model.weight[0, 0])) > 1.0                          # observed: started at 1
+    grew = abs(model.weight[0, 0].item()) > 1.0                          # observed: started at 1
     assert grew == diverges
     found = [f for f in run.findings() if f.kind == "over-stability-limit"]
     assert bool(found) == diverges
