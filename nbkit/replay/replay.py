@@ -83,7 +83,12 @@ def replay(run, model, step_fn, batches, optimizers=None, start=None, steps=None
     replays run in this many spawned processes. progress=True: a tqdm.auto bar. strict=True: a batch
     whose fingerprint differs from the recording stops the replay (False: a warning, listed in meta).
     Returns {name: Recording}; each replay's meta["replay"] holds its parent, start, process id,
-    thread count and, for the recorded optimizer, the largest differences from the parent.
+    thread count and, for the recorded optimizer, the largest differences from the parent
+    ("fidelity"). The model copies run in training mode. The recorded optimizer gets the recorded
+    learning rates after before_step, so a scheduler's effect is reproduced without its object (and a
+    scheduler stepped in before_step does not change it). For closure optimizers (LBFGS) before_step
+    runs once before step(closure), not inside the closure. A replay running past a previous replay
+    of the same run at the same folder replaces it; any other recording there is left alone.
     """
     from nbkit.store.reader import Recording, load
 
