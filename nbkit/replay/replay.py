@@ -87,8 +87,8 @@ def replay(run, model, step_fn, batches, optimizers=None, start=None, steps=None
     ("fidelity"). The model copies run in training mode. The recorded optimizer gets the recorded
     learning rates after before_step, so a scheduler's effect is reproduced without its object (and a
     scheduler stepped in before_step does not change it). For closure optimizers (LBFGS) before_step
-    runs once before step(closure), not inside the closure. A replay running past a previous replay
-    of the same run at the same folder replaces it; any other recording there is left alone.
+    runs once before step(closure), not inside the closure. An earlier replay of the same run in the
+    target folder is replaced; any other recording there is left alone (an error says so).
     """
     from nbkit.store.reader import Recording, load
 
