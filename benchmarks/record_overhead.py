@@ -45,9 +45,9 @@ def mlp():
 
 def conv():
     def block(i, o):
-        return [nn.Conv2d(i, o, 3, padding=1, bias=False), nn.BatchNorm2d(o), nn.ReLU()]
-    model = nn.Sequential(*block(3, 32), *block(32, 64), nn.MaxPool2d(2), *block(64, 128), nn.MaxPool2d(2),
-                          *block(128, 128), nn.AdaptiveAvgPool2d(1), nn.Flatten(), nn.Linear(128, 10))
+        return [nn.Conv2d(i, o, 3, padding=1, bias=False), nn.BatchNorm2d(o), nn.ReLU(), nn.MaxPool2d(2)]
+    model = nn.Sequential(*block(3, 32), *block(32, 64), *block(64, 128), *block(128, 256),
+                          nn.AdaptiveAvgPool2d(1), nn.Flatten(), nn.Linear(256, 10))
     return model, (64, 3, 32, 32), 10
 
 
