@@ -57,7 +57,8 @@ class Comparison(widgets.VBox):
         first = self.runs[self.names[0]]
         if quantity not in first.quantities:
             raise ValueError(f"Unknown quantity {quantity!r}; choose one of run.quantities: {', '.join(first.quantities)}")
-        self.steps = np.unique(np.concatenate([r.steps for r in self.runs.values()]))
+        self.run_steps = {name: r.steps for name, r in self.runs.items()}   # read once: each read hits the store
+        self.steps = np.unique(np.concatenate(list(self.run_steps.values())))
         if not len(self.steps):
             raise ValueError("None of the recordings holds a step yet; record or replay some steps first")
         self.tensors = [t for t in first.tensors if all(t in r.tensors for r in self.runs.values())]
@@ -98,7 +99,7 @@ class Comparison(widgets.VBox):
         self.loss_lines = {}
         for name in self.names:
             run = self.runs[name]
-            self.loss_lines[name] = self.loss_axes.plot(run.steps, run.loss, color=self.colours[name], linewidth=1.2,
+            self.loss_lines[name] = self.loss_axes.plot(self.run_steps[name], run.loss, color=self.colours[name], linewidth=1.2,
                                                         label=name)[0]
         self.loss_axes.set_ylabel("loss")
         self.loss_axes.legend(fontsize=8, loc="upper right", ncol=min(4, n))
@@ -152,8 +153,8 @@ class Comparison(widgets.VBox):
             origin = f", replay of {html.escape(str(parent.get('parent')))} from step {parent.get('start')}" \
                 if parent else ""
             lines.append(f"<span style='color:{self.colours[name]}'>■</span> <b>{html.escape(name)}</b>: "
-                         f"{html.escape(run.meta['optimizer']['class'])}, steps {int(run.steps[0])}–"
-                         f"{int(run.steps[-1])}{origin}")
+                         f"{html.escape(run.meta['optimizer']['class'])}, steps {int(self.run_steps[name][0])}–"
+                         f"{int(self.run_steps[name][-1])}{origin}")
         self.header = widgets.HTML("<br>".join(lines))
         self.slider = widgets.IntSlider(int(self.steps[0]), min=int(self.steps[0]), max=int(self.steps[-1]),
                                         description="step", continuous_update=True)
@@ -197,9 +198,10 @@ class Comparison(widgets.VBox):
     def shares_at(self, step: int) -> dict:
         """{run: {share: value}} of the chosen tensor at `step` (NaN where a run has no such step)."""
         out = {}
-        for name, run in self.runs.items():
-            row = int(np.searchsorted(run.steps, step))
-            inside = row < len(run.steps) and run.steps[row] == step
+        for name in self.runs:
+            steps = self.run_steps[name]
+            row = int(np.searchsorted(steps, step))
+            inside = row < len(steps) and steps[row] == step
             out[name] = {s: float(self._series(name, s, self.tensor)[row]) if inside else np.nan for s in SHARES}
         return out
 
@@ -213,7 +215,7 @@ class Comparison(widgets.VBox):
         values = []
         for name, line in self.quantity_lines.items():
             series = self._series(name, self.quantity, self.tensor)
-            line.set_data(self.runs[name].steps, series)
+            line.set_data(self.run_steps[name], series)
             values.append(series[np.isfinite(series)])
         values = np.concatenate(values)
         axes = self.quantity_axes[0]
@@ -267,9 +269,9 @@ class Comparison(widgets.VBox):
             cursor.set_xdata([step, step])
         self.map_cursor.set_xdata([step, step])
         for name, dot in self.cursor_dots.items():
-            run = self.runs[name]
-            row = int(np.searchsorted(run.steps, step))
-            inside = row < len(run.steps) and run.steps[row] == step
+            steps = self.run_steps[name]
+            row = int(np.searchsorted(steps, step))
+            inside = row < len(steps) and steps[row] == step
             value = self._series(name, self.quantity, self.tensor)[row] if inside else np.nan
             dot.set_data([step], [value])
         shares = self.shares_at(step)
