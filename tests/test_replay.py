@@ -290,3 +290,24 @@ def test_a_step_fn_that_runs_backward_itself_replays_exactly(tmp_path):
                          progress=False)["recorded"]
     assert child.meta["replay"]["fidelity"]["identical"]
     np.testing.assert_array_equal(child.fingerprints, parent.fingerprints[10:])
+
+
+def test_an_orphan_stays_an_orphan_in_the_factorys_groups(tmp_path):
+    model = rs.make_model()
+    optimizer = torch.optim.SGD(model[0].parameters(), lr=0.1)     # the last layer is in no group
+    with nbkit.record(model, optimizer, tmp_path / "run", criterion=rs.CRITERION, keyframe_every=5):
+        for step in range(10):
+            optimizer.zero_grad()
+            rs.step_fn(model, rs.Batches()(step)).backward()
+            optimizer.step()
+    seen = []
+
+    def factory(groups):
+        seen.append([tuple(p.shape) for g in groups for p in g["params"]])
+        return torch.optim.SGD(groups, lr=0.1)
+
+    runs = nbkit.replay(tmp_path / "run", rs.make_model(), rs.step_fn, rs.Batches(),
+                        optimizers={"recorded": None, "same": factory}, start=5, progress=False)
+    assert seen == [[(32, 8), (32,)]]
+    assert runs["recorded"].meta["replay"]["fidelity"]["identical"]
+    np.testing.assert_array_equal(runs["same"].loss, runs["recorded"].loss)     # same rule, same numbers
