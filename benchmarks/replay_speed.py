@@ -110,6 +110,12 @@ def main(argv=None):
         _fetcher(batches, skip)
         callable_cost = time.perf_counter() - started
         fetch, skipped = statistics.median(fetch_times), statistics.median(skip_times)
+        # a replay's fixed cost (open the recording, read a keyframe, copy the model) in plain steps
+        setup = []
+        for k in range(args.rounds):
+            one_plain = 1.0 / plain_loop(20)[1]
+            one_replay = 1.0 / timed_replay(run, 1, False, Path(folder) / f"one{k}")[1]
+            setup.append((one_replay - one_plain) / one_plain)
     print(f"replay speed: MLP 784-256-128-10 with dropout, Adam, batch 64, {args.steps} steps, "
           f"1 torch thread, median of {args.rounds} interleaved rounds")
     # best round of each (the least disturbed: common practice for timing on a shared machine) and medians
@@ -128,6 +134,8 @@ def main(argv=None):
     print(f"reaching keyframe step {skip} with an iterable: {skipped / fetch:.3f} x the cost of fetching one batch "
           f"per skipped step (budget 1.0); with batches(step): {callable_cost * 1e6:.0f} microseconds in all, "
           "no batch fetched")
+    print(f"a replay's set-up (CPU time, beyond its first step) costs {statistics.median(setup):.1f} plain steps; "
+          f"over {args.steps} steps that is {statistics.median(setup) / args.steps:.3f} of the ratio above")
 
 
 if __name__ == "__main__":
