@@ -46,7 +46,9 @@ def recording(steps: int, cache: Path) -> Path:
 def measure(path: Path, moves: int, seed: int = 0) -> dict:
     t = time.perf_counter()
     import nbkit
-    import nbkit.views.explorer  # noqa: F401  (ipywidgets, ipympl, matplotlib: timed as imports)
+    import ipympl.backend_nbagg  # noqa: F401  (ipywidgets, ipympl, matplotlib: timed as imports)
+    import matplotlib.figure  # noqa: F401
+    import nbkit.views.explorer  # noqa: F401
     imports = time.perf_counter() - t
     t = time.perf_counter()
     view = nbkit.explore(path)

@@ -12,7 +12,7 @@ from matplotlib.colors import LogNorm
 from matplotlib.patches import Patch
 
 from nbkit.measure.quantities import GAIN_CLASS_NAMES, classify_gain
-from nbkit.views.common import DENSITY_MAP, GAIN_CLASS_COLOURS, OKABE_ITO, Blitter, make_canvas
+from nbkit.views.common import DENSITY_MAP, GAIN_CLASS_COLOURS, OKABE_ITO, Blitter, make_canvas, plain_log_ticks
 
 WIDTH, HEIGHT = 600, 640
 FIELDS = ("grad", "update", "momentum_factor", "scale_factor")
@@ -50,19 +50,22 @@ class CoordinateView:
         self.data = data
         self.figure, self.canvas = make_canvas(WIDTH, HEIGHT, css_class="nbkit-coordinates")
         grid = self.figure.add_gridspec(2, 2, height_ratios=(1.15, 1), hspace=0.42, wspace=0.32,
-                                        left=0.12, right=0.97, top=0.88, bottom=0.08)
+                                        left=0.12, right=0.97, top=0.92, bottom=0.08)
         self.step_axes = self.figure.add_subplot(grid[0, 0])
         self.factor_axes = self.figure.add_subplot(grid[0, 1])
         self.histogram_axes = self.figure.add_subplot(grid[1, :])
         ax = self.step_axes
         ax.set_xscale("log")
         ax.set_yscale("log")
+        plain_log_ticks(ax.xaxis)
+        plain_log_ticks(ax.yaxis)
         ax.set_xlabel("plain step |lr·g| (parameter units)", fontsize=8)
         ax.set_ylabel("actual update |Δθ| (parameter units)", fontsize=8)
         self.unit_line, = ax.plot([], [], color=OKABE_ITO["black"], lw=0.8, ls="--")
         ax.tick_params(labelsize=7)
         fx = self.factor_axes
         fx.set_yscale("log")
+        plain_log_ticks(fx.yaxis)
         fx.set_xlabel("momentum factor (first moment / g)", fontsize=8)
         fx.set_ylabel("scale factor (from second moment)", fontsize=8)
         fx.tick_params(labelsize=7)
@@ -85,11 +88,13 @@ class CoordinateView:
                                          fontsize=8, wrap=True))
         self.step_note = b.add(ax.text(0.5, 0.5, "", transform=ax.transAxes, ha="center", va="center", fontsize=8))
         self.histogram_cursor = b.add(hx.axvline(0, color=OKABE_ITO["sky blue"], lw=1.2))
-        self.heading = b.add(self.figure.text(0.02, 0.975, "", fontsize=9, va="top"))
+        # What the points say in words is page text (Explorer.coordinate_summary), not figure text:
+        # rendering ~100 glyphs per cursor move would cost more than all the points together.
+        self.summary = ""
         handles = [Patch(color=GAIN_CLASS_COLOURS[n], label=n) for n in GAIN_CLASS_NAMES]
         handles += [Patch(color=OKABE_ITO["sky blue"], alpha=0.4, label="median gain ×½ … ×2")]
         self.figure.legend(handles=handles, loc="upper center", ncols=5, fontsize=7, frameon=False,
-                           bbox_to_anchor=(0.5, 0.925))
+                           bbox_to_anchor=(0.5, 0.99))
         self.tensor = None
         self._xlim = self._ylim = self._flim = None
         self.classes = np.zeros(0, dtype=np.int8)     # class code per probe at the cursor (for tests)
@@ -123,6 +128,7 @@ class CoordinateView:
             self.colourbar.ax.tick_params(labelsize=6)
         else:
             self.colourbar.update_normal(self.mesh)
+        plain_log_ticks(self.colourbar.ax.yaxis)
         used = np.flatnonzero(np.nan_to_num(share).sum(axis=1) > 0)
         if used.size:
             self.histogram_axes.set_ylim(bin_edges[max(used[0] - 1, 0)], bin_edges[min(used[-1] + 2, len(bin_edges) - 1)])
@@ -170,8 +176,8 @@ class CoordinateView:
         self.step_note.set_text("" if keep.any() else "no coordinate with a non-zero gradient and update")
         full |= self._set_factors(probes, classes, keep)
         counts = {n: int((classes == k).sum()) for k, n in enumerate(GAIN_CLASS_NAMES)}
-        self.heading.set_text(f"{tensor} at step {int(data.steps[row])}, median gain {median:.3g}\n"
-                              f"{len(gain)} probe coordinates: " + ", ".join(f"{v} {n}" for n, v in counts.items()))
+        self.summary = (f"{tensor} at step {int(data.steps[row])}: median gain {median:.3g}; {len(gain)} probe "
+                        "coordinates: " + ", ".join(f"{v} {n}" for n, v in counts.items()))
         return full
 
     def _set_band(self, line, median):
@@ -212,5 +218,5 @@ class CoordinateView:
         self.band.set_verts([np.zeros((0, 2))])
         self.classes = np.zeros(0, dtype=np.int8)
         self.step_note.set_text(why)
-        self.heading.set_text(f"{self.tensor or ''}: {why}")
+        self.summary = f"{self.tensor or ''}: {why}"
         return False

@@ -138,13 +138,15 @@ class Explorer(widgets.VBox):
         self.findings_list.add_class("nbkit-findings")
         self.findings_list.observe(self._on_finding, "value")
         self.findings_note = widgets.HTML(f"<small>{html.escape(findings_note)}</small>")
+        self.coordinate_summary = widgets.HTML()
+        self.coordinate_summary.add_class("nbkit-coordinate-summary")
         self.errors = widgets.HTML()
         self.errors.add_class("nbkit-errors")
 
     def _layout(self):
         controls = widgets.HBox([self.play, self.previous_button, self.slider, self.next_button, self.speed,
                                  self.log_toggle, self.step_label])
-        pickers = widgets.HBox([self.quantity_picker, self.tensor_picker])
+        pickers = widgets.HBox([self.quantity_picker, self.tensor_picker, self.coordinate_summary])
         middle = widgets.HBox([self.layer_map.canvas, self.coordinates.canvas],
                               layout=widgets.Layout(flex_flow="row wrap"))   # narrow pages stack them
         findings = widgets.VBox([widgets.HTML("<b>findings</b>"), self.findings_note, self.findings_list])
@@ -261,6 +263,7 @@ class Explorer(widgets.VBox):
         note = "" if heavy == row or heavy is None else \
             f" (per-tensor values from step {int(self.data.steps[heavy])})"
         self.step_label.value = f"<b>step {snapped}</b> of {int(self.data.steps[-1])}{note}"
+        self.coordinate_summary.value = f"<small>{html.escape(self.coordinates.summary)}</small>"
         with self.slider.hold_trait_notifications():
             self.slider.max = max(self.slider.max, int(self.data.steps[-1]))
             self.slider.value = snapped
@@ -400,11 +403,13 @@ class Explorer(widgets.VBox):
         with self._lock:
             images = [[figure_png(self.timeline.figure)],
                       [figure_png(self.layer_map.figure), figure_png(self.coordinates.figure)]]
-            lines = [f"{self.run.path.name}: step {self.step}, tensor {self.tensor}, layer map of {self.quantity}"]
+            lines = [f"{self.run.path.name}: step {self.step}, layer map of {self.quantity}; {self.coordinates.summary}"]
             lines += [label for label, _ in self._finding_options()[:8]] or [self.findings_note.value
                                                                                 .replace("<small>", "")
                                                                                 .replace("</small>", "")]
-            return compose_png(images, "\n".join(lines))
+            # PIL's built-in font covers Latin-1 only: spell out the few other characters we use.
+            text = "\n".join(lines).replace("–", "-").replace("·", "|").replace("…", "...").replace("×", "x")
+            return compose_png(images, text.encode("latin-1", "replace").decode("latin-1"))
 
     def to_png(self, path):
         """Render the whole view as it is now to a PNG file at `path`."""

@@ -5,7 +5,7 @@ import numpy as np
 from matplotlib.colors import LogNorm, Normalize, TwoSlopeNorm
 
 from nbkit.views.common import (MAGNITUDE_MAP, OKABE_ITO, SHARE_MAP, SHARE_QUANTITIES, SIGNED_MAP,
-                                SIGNED_QUANTITIES, Blitter, label_of, make_canvas)
+                                SIGNED_QUANTITIES, Blitter, label_of, make_canvas, plain_log_ticks)
 
 WIDTH = 620
 DECADES_FOR_LOG = 2.0     # a quantity spanning more than 100x is coloured on a log scale
@@ -59,7 +59,7 @@ class LayerMap:
         self.cursor = self.blitter.add(self.map_axes.axvline(0, color=OKABE_ITO["reddish purple"], lw=1.2))
         self.values, = self.value_axes.plot([], [], "o", ms=3.5, color=OKABE_ITO["black"])
         self.blitter.add(self.values)
-        self.value_title = self.blitter.add(self.value_axes.set_title("", fontsize=8))
+        self.value_axes.set_title("at the cursor", fontsize=8)
         self.title = self.figure.text(0.01, 0.985, "", fontsize=9, va="top")
         self.quantity = None
         self.canvas.mpl_connect("button_press_event", self._press)
@@ -83,6 +83,8 @@ class LayerMap:
         self.colourbar.update_normal(self.image)
         self.colourbar.set_label(label_of(q), fontsize=8)
         self.value_axes.set_xscale("log" if is_log else "linear")
+        plain_log_ticks(self.value_axes.xaxis)
+        plain_log_ticks(self.colourbar.ax.yaxis)
         if np.isfinite(low):
             if is_log:
                 self.value_axes.set_xlim(smallest_positive / 1.5, high * 1.5)
@@ -103,13 +105,11 @@ class LayerMap:
         self.cursor.set_xdata([step, step])
         if row is None or self.quantity is None:
             self.values.set_data([], [])
-            self.value_title.set_text("no per-tensor values yet")
             return
         values = self.data.values_at(self.quantity, row)
         if getattr(self, "_is_log", False):
             values = np.where(values > 0, values, np.nan)
         self.values.set_data(values, np.arange(len(values)))
-        self.value_title.set_text(f"at step {int(self.data.steps[row])}")
 
     def _press(self, event):
         if event.inaxes in (self.map_axes, self.value_axes) and event.ydata is not None and event.button == 1:

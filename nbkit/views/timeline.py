@@ -4,7 +4,7 @@ from __future__ import annotations
 import numpy as np
 from matplotlib.ticker import FuncFormatter, MaxNLocator
 
-from nbkit.views.common import OKABE_ITO, Blitter, make_canvas
+from nbkit.views.common import OKABE_ITO, Blitter, make_canvas, plain_log_ticks
 
 WIDTH, HEIGHT = 980, 230
 BUCKETS = 1200            # min/max pairs per line: a 980-pixel plot needs no more
@@ -63,6 +63,7 @@ class Timeline:
         positive = finite[finite > 0]
         use_log = self.log_scale and positive.size > 0
         self.loss_axes.set_yscale("log" if use_log else "linear")
+        plain_log_ticks(self.loss_axes.yaxis)
         values = positive if use_log else finite
         if values.size:
             low, high = values.min(), values.max()
