@@ -311,3 +311,10 @@ def test_an_orphan_stays_an_orphan_in_the_factorys_groups(tmp_path):
     assert seen == [[(32, 8), (32,)]]
     assert runs["recorded"].meta["replay"]["fidelity"]["identical"]
     np.testing.assert_array_equal(runs["same"].loss, runs["recorded"].loss)     # same rule, same numbers
+
+
+def test_a_mismatch_before_a_non_keyframe_start_leaves_no_hooks_behind(recorded, tmp_path):
+    with pytest.raises(ReplayError, match="from keyframe 50 to start 60.*step 55 differs"):
+        nbkit.replay(recorded, rs.make_model(), rs.step_fn, rs.Batches(corrupt_at=55), start=60, steps=5,
+                     to=tmp_path, progress=False)
+    assert not torch.nn.modules.module._global_forward_hooks

@@ -210,11 +210,15 @@ def _run(plan, run, model, step_fn, batches, names, progress, threads_note) -> d
     lanes = []
     try:
         if plan.start > plan.keyframe:                  # bring the run from the keyframe to `start`
-            bridge = _lane("bridge", None, model, meta, state["model"], state["optimizer"], state["extra_params"])
-            _loop([bridge], recorded, step_fn, fetch, plan.keyframe, plan.start, plan.before_step, plan.strict, bar)
+            bridge = _lane(f"recorded optimizer from keyframe {plan.keyframe} to start {plan.start}", None, model,
+                           meta, state["model"], state["optimizer"], state["extra_params"])
+            try:
+                _loop([bridge], recorded, step_fn, fetch, plan.keyframe, plan.start, plan.before_step, plan.strict,
+                      bar)
+            finally:
+                _detach(bridge)                         # its global hook must not outlive an error
             state = {"model": bridge.model.state_dict(), "optimizer": bridge.optimizer.state_dict(),
                      "extra_params": _extra_tensors(bridge, meta)}
-            _detach(bridge)
         for name in names:
             lanes.append(_lane(name, plan.factories[name], model, meta, state["model"], state["optimizer"],
                                state["extra_params"]))
