@@ -169,7 +169,7 @@ def _check_target(path: Path, parent: Path) -> None:
 
 
 # --- running replays in this process ------------------------------------------------------------
-def run_plan(plan: Plan, model, step_fn, batches, names, progress=True) -> dict:
+def run_plan(plan: Plan, model, step_fn, batches, names, progress=True, position=None) -> dict:
     """Run the replays `names` of `plan` here, in lockstep. Returns {name: output folder}."""
     from nbkit.store.reader import load
 
@@ -177,7 +177,7 @@ def run_plan(plan: Plan, model, step_fn, batches, names, progress=True) -> dict:
     user_rng, user_threads = restore.get_rng(), torch.get_num_threads()
     threads_note = _set_threads(run.meta.get("threads"))
     try:
-        return _run(plan, run, model, step_fn, batches, names, progress, threads_note)
+        return _run(plan, run, model, step_fn, batches, names, progress, threads_note, position)
     finally:
         torch.set_num_threads(user_threads)
         restore.set_rng(user_rng)        # the caller's random streams are left as they were
@@ -197,7 +197,7 @@ def _set_threads(recorded) -> str:
     return f"torch thread count set to the recorded {recorded}"
 
 
-def _run(plan, run, model, step_fn, batches, names, progress, threads_note) -> dict:
+def _run(plan, run, model, step_fn, batches, names, progress, threads_note, position=None) -> dict:
     from nbkit.replay.fidelity import compare_recordings
     from nbkit.store.meta_update import update_meta
 
@@ -206,7 +206,7 @@ def _run(plan, run, model, step_fn, batches, names, progress, threads_note) -> d
     fetch = _fetcher(batches, plan.keyframe)           # reaching the keyframe: batches are only fetched
     restore.set_rng(restore.rng_from_keyframe(state["rng"]))
     recorded = _Recorded(run, plan.keyframe, plan.start + plan.steps)
-    bar = _progress(progress, plan.start + plan.steps - plan.keyframe, names)
+    bar = _progress(progress, plan.start + plan.steps - plan.keyframe, names, position)
     lanes = []
     try:
         if plan.start > plan.keyframe:                  # bring the run from the keyframe to `start`
@@ -301,12 +301,13 @@ def _fetcher(batches, skip: int):
     return fetch
 
 
-def _progress(progress, total, names):
+def _progress(progress, total, names, position=None):
+    """A tqdm.auto bar (a widget in a notebook, text in a terminal); tqdm shows steps per second."""
     if not progress:
         return None
     from tqdm.auto import tqdm
 
-    return tqdm(total=total, unit="step", desc=f"replay {', '.join(names)}", leave=True)
+    return tqdm(total=total, unit="step", desc=f"replay {', '.join(names)}", leave=True, position=position)
 
 
 def _extra_tensors(lane, meta) -> dict:

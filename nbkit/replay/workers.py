@@ -29,7 +29,8 @@ def in_workers(plan, model, step_fn, batches, workers, progress) -> dict:
     shares = [names[i::workers] for i in range(min(workers, len(names)))]
     context = multiprocessing.get_context("spawn")
     with ProcessPoolExecutor(max_workers=len(shares), mp_context=context) as pool:
-        futures = [pool.submit(run_plan, plan, model, step_fn, batches, share, progress) for share in shares]
+        futures = [pool.submit(run_plan, plan, model, step_fn, batches, share, progress, position)
+                   for position, share in enumerate(shares)]
         paths = {}
         for future in futures:
             paths.update(future.result())
