@@ -85,7 +85,9 @@ class Explorer(widgets.VBox):
         self.timeline.load(self.findings)
         self.observe(self._on_tensor, "tensor")
         self.observe(self._on_quantity, "quantity")
-        self._redraw_all(first)
+        # No drawing here: a browser asks each canvas for its first image when it shows it (and a
+        # figure drawn now would be drawn again then). draw() does it for scripts and benchmarks.
+        self._prepare(first)
         self._live_handle = self._poller = None
         self._last_live, self._live_cost = 0.0, 0.0
         if recorder is not None:
@@ -293,6 +295,25 @@ class Explorer(widgets.VBox):
                 (part.blitter.full if part in full else part.blitter.update)()
         finally:
             self._moving = False
+
+    def _prepare(self, step):
+        """Read what every part shows at `step`, without drawing."""
+        self._moving = True
+        try:
+            if self.data.rows and self.layer_map.quantity != self.quantity:
+                self.layer_map.set_quantity(self.quantity)
+            if self.data.rows and self.coordinates.tensor != self.tensor and self.tensor:
+                self.coordinates.set_tensor(self.tensor)
+                self.layer_map.set_tensor(self.tensor)
+            self._place(step)
+        finally:
+            self._moving = False
+
+    def draw(self):
+        """Fully draw every part now (what showing the view costs) and send it to any browser."""
+        with self._lock:
+            for part in (self.timeline, self.layer_map, self.coordinates):
+                part.blitter.full()
 
     def _redraw_all(self, step):
         self._moving = True
