@@ -352,7 +352,6 @@ def _over_stability_limit(data, t):
             hits.append((r, values[r], limit))
     out = []
     for r, value, limit in hits:
-        step = int(data.steps[r])
         if out and out[-1][1] == rows[max(0, np.searchsorted(rows, r) - 1)]:
             out[-1] = (out[-1][0], r, max(out[-1][2], value / limit.limit), out[-1][3], out[-1][4])
         else:
