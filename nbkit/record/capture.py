@@ -1,17 +1,19 @@
-"""The recorder's hot path: copy θ before a step, then measure the step in a few batched passes.
+"""The recorder's hot path: copy θ before a step, measure the step, off the training thread.
 
-Tensors are grouped into blocks (one parameter group, one dtype). Each block owns two flat buffers
-that every step reuses: `before` (θ before the step, turned into −Δθ after it) and `grad` (the
-gradient of the last recorded step, kept for grad_cosine and sign_flip). Per-tensor buffers are
-views into them, so the copies are one foreach call and the sampled coordinates of all tensors of
-a block are one `take` with global indices. Optimizer state is sampled tensor by tensor (it lives
-in the optimizer's own tensors).
+Tensors are grouped into blocks (one parameter group, one dtype, similar sample sizes). Each block
+owns flat buffers that every step reuses: `before` (θ before the step, turned into −Δθ after it)
+and two gradient buffers used in turn (this step's gradient and the previous recorded one, for
+grad_cosine and sign_flip). Per-tensor buffers are views into them, so each copy is one foreach
+call and the sampled coordinates of all tensors of a block are one gather with global indices.
+The training thread does only what must see live tensors (the copies, the sampled optimizer
+state); the statistics read the block's own buffers on a background thread (`measure_block`).
 """
 from __future__ import annotations
 
 import math
 import time
 
+import numpy as np
 import torch
 
 from nbkit.measure.step_stats import _norms, sampled_statistics, whole_tensor_statistics
@@ -262,6 +264,31 @@ def _measure_timed(job: dict):
             block.previous_sample = torch.full(block.local.shape, math.nan, dtype=block.work)
         block.previous_sample[rows] = grad
     return whole, sampled, hist, probe_values, state_nonfinite
+
+
+def deliver(row: dict, ks: list, probe_counts: list, q_index: dict, n_tensors: int, n_probes: int,
+            results) -> None:
+    """Write one block's statistics into a recorder row's arrays (runs on the statistics thread).
+
+    ks: the block's rows in the recording; probe_counts: probe coordinates of each tensor."""
+    whole, sampled, hist, probe_values, state_nonfinite = results
+    summary, histograms = row["q"], row["hist"]
+    for name, values in (*whole.items(), *sampled.items()):
+        i = q_index.get(name)
+        if i is not None:
+            summary[i, ks] = values.numpy()
+    if state_nonfinite is not None:
+        summary[q_index["state_nonfinite"], ks] = state_nonfinite.numpy()
+    histograms[:, ks, :] = hist.numpy()
+    for name, values in probe_values.items():
+        block_values = row["probes"].get(name)
+        if block_values is None:
+            block_values = row["probes"][name] = np.full((n_tensors, n_probes), np.nan, dtype=np.float32)
+        width = min(values.shape[1], n_probes)
+        block_values[ks, :width] = values[:, :width].numpy()
+        for r, count in enumerate(probe_counts):
+            if count < n_probes:
+                block_values[ks[r], count:] = np.nan
 
 
 def forget_gradient(block: Block, r: int) -> None:

@@ -17,7 +17,7 @@ import shutil
 import sys
 import warnings
 import weakref
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -455,29 +455,6 @@ class Recorder:
         for job in row.pop("_jobs", ()):
             job.result()
 
-    def _deliver(self, row: dict, ks: list, probe_counts: list, results) -> None:
-        """Write one block's statistics into the row's arrays (runs on the statistics thread)."""
-        whole, sampled, hist, probe_values, state_nonfinite = results
-        q_index = self._q_index
-        summary, histograms = row["q"], row["hist"]
-        for name, values in (*whole.items(), *sampled.items()):
-            i = q_index.get(name)
-            if i is not None:
-                summary[i, ks] = values.numpy()
-        if state_nonfinite is not None:
-            summary[q_index["state_nonfinite"], ks] = state_nonfinite.numpy()
-        histograms[:, ks, :] = hist.numpy()
-        for name, values in probe_values.items():
-            block_values = row["probes"].get(name)
-            if block_values is None:
-                block_values = row["probes"][name] = np.full((len(self._tensors), self.probes), np.nan,
-                                                             dtype=np.float32)
-            width = min(values.shape[1], self.probes)
-            block_values[ks, :width] = values[:, :width].numpy()
-            for r, count in enumerate(probe_counts):
-                if count < self.probes:
-                    block_values[ks[r], count:] = np.nan
-
     def loss(self, value) -> None:
         """Report the loss: for the step about to be taken, or for the step just taken when called
         after optimizer.step() and before the next forward pass. Wins over `criterion`."""
@@ -502,10 +479,6 @@ class Recorder:
                 t.stopped = f"shape changed from {tuple(t.shape)} to {tuple(t.param.shape)}"
                 self._fail(f"tensor {t.name!r}: {t.stopped}; its recording stops", stop=False)
         capture.copy_before(self._blocks, self.optimizer, self.adapter.before_keys)
-
-    def _state(self, p) -> dict:
-        """The optimizer's state tensors shaped like parameter p."""
-        return capture.state_tensors(self.optimizer, p)[0]
 
     def _heavy_row(self, row: dict):
         """Post-step: the per-tensor quantities, histograms and probes of every block into `row`."""
@@ -533,7 +506,8 @@ class Recorder:
             if not rows:
                 continue
             ks = [block.positions[r] for r in rows]
-            deliver = functools.partial(self._deliver, row, ks, [block.tensors[r].probes for r in rows])
+            deliver = functools.partial(capture.deliver, row, ks, [block.tensors[r].probes for r in rows],
+                                        self._q_index, len(self._tensors), self.probes)
             job = capture.measure_block(block, rows, self.optimizer, self.adapter, self.probes, deliver=deliver,
                                         background=self.background)
             row.setdefault("_jobs", []).append(job)
