@@ -79,7 +79,8 @@ class Comparison(widgets.VBox):
         with self.hold_trait_notifications():
             self.quantity = quantity
             self.tensor = self.tensors[0] if self.tensors else ""
-            self.step = int(self.steps[0])
+            # the first step every run holds, so each run has a bar at the start
+            self.step = self.snap(max(int(steps[0]) for steps in self.run_steps.values() if len(steps)))
         self.observe(lambda c: self._guard(self._move, c["new"]), "step")
         self.observe(lambda c: self._guard(self._redraw), "tensor")
         self.observe(lambda c: self._guard(self._redraw), "quantity")
@@ -102,6 +103,10 @@ class Comparison(widgets.VBox):
             self.loss_lines[name] = self.loss_axes.plot(self.run_steps[name], run.loss, color=self.colours[name], linewidth=1.2,
                                                         label=name)[0]
         self.loss_axes.set_ylabel("loss")
+        losses = np.concatenate([run.loss for run in self.runs.values()])
+        losses = losses[np.isfinite(losses)]
+        if losses.size and losses.min() > 0 and losses.max() / losses.min() > 100:
+            self.loss_axes.set_yscale("log")            # a spike would flatten everything else
         self.loss_axes.legend(fontsize=8, loc="upper right", ncol=min(4, n))
         self.quantity_lines = {name: ax.plot([], [], color=self.colours[name], linewidth=1.1)[0]
                                for name, ax in zip(self.names, self.quantity_axes)}
@@ -112,13 +117,13 @@ class Comparison(widgets.VBox):
             ax.tick_params(labelleft=False)
         self.cursors = [self.timeline_blitter.add(ax.axvline(0, color="black", linewidth=0.9, alpha=0.8))
                         for ax in (self.loss_axes, *self.quantity_axes)]
-        self.cursor_dots = {name: self.timeline_blitter.add(ax.plot([], [], "o", color=self.colours[name],
-                                                                     markersize=5)[0])
+        self.cursor_dots = {name: self.timeline_blitter.add(ax.plot([], [], "o", markerfacecolor="white",
+                                                                     markeredgecolor="black", markersize=6)[0])
                             for name, ax in zip(self.names, self.quantity_axes)}
 
         self.detail_figure, self.detail_canvas = make_canvas(max(760, 250 * n), 360,
                                                              css_class="nbkit-comparison-detail")
-        grid = self.detail_figure.add_gridspec(1, 2, width_ratios=[2.2, 1.0], wspace=0.55)
+        grid = self.detail_figure.add_gridspec(1, 2, width_ratios=[2.2, 1.0], wspace=0.55, bottom=0.2, left=0.14)
         self.map_axes = self.detail_figure.add_subplot(grid[0, 0])
         self.share_axes = self.detail_figure.add_subplot(grid[0, 1])
         self.detail_blitter = Blitter(self.detail_figure)
@@ -132,7 +137,7 @@ class Comparison(widgets.VBox):
             container = self.share_axes.bar(positions + (k - 1) * width, np.zeros(n), width,
                                             color=GAIN_CLASS_COLOURS[share], label=share)
             self.bars[share] = [self.detail_blitter.add(bar) for bar in container]
-        self.share_axes.set_xticks(positions, self.names, rotation=20, fontsize=8)
+        self.share_axes.set_xticks(positions, self.names, rotation=30, ha="right", fontsize=8)
         self.share_axes.set_ylabel("share of coordinates with defined gain")
         self.share_axes.legend(fontsize=7, loc="upper right")
         self.share_title = self.detail_blitter.add(self.share_axes.set_title("", fontsize=9, loc="left"))

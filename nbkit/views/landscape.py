@@ -55,7 +55,9 @@ class LandscapePanel:
         contours = axes.contourf(landscape.alpha, landscape.beta, loss, levels=levels, cmap=MAGNITUDE_MAP, norm=norm)
         axes.contour(landscape.alpha, landscape.beta, loss, levels=contours.levels[::4], colors="white",
                      linewidths=0.4, alpha=0.6, norm=norm)
-        axes.figure.colorbar(contours, ax=axes, label="loss on the batch (eval mode)", shrink=0.9)
+        bar = axes.figure.colorbar(contours, ax=axes, label="loss on the batch (eval mode)", shrink=0.9, format="%.3g")
+        if norm is not None:
+            bar.set_ticks(contours.levels[::4])
         self.markers = {}
         for name, points in landscape.paths.items():
             colour = colours[name]
