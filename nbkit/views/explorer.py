@@ -28,6 +28,7 @@ from nbkit.views.timeline import Timeline
 DEFAULT_QUANTITY = "update_ratio"
 LIVE_MIN_INTERVAL = 0.5      # seconds between live refreshes: at most twice a second ...
 LIVE_COST_FACTOR = 4.0       # ... and never more than 1/4 of the training loop's time
+FINDINGS_START_SECONDS = 5.0   # findings start at the latest this long after the view opened
 POLL_SECONDS = 1.0           # a recording another process writes is checked this often
 FINDINGS_NOTE = ("Findings are heuristics: each points at the step and tensor where a known failure pattern "
                  "starts. Verify one with a replay (nbkit.replay) from the keyframe before its first step "
@@ -96,8 +97,17 @@ class Explorer(widgets.VBox):
             # only a weak reference to the optimizer.
             self._live_handle = recorder.optimizer.register_step_post_hook(
                 lambda optimizer, args, kwargs: self._on_recorder_step(recorder))
+        # Findings can take seconds on a long recording: they run in a thread that starts once every
+        # part has been drawn for the first time (so it does not slow that down), or after
+        # FINDINGS_START_SECONDS if nothing draws the view (a script), or when someone waits for them.
         self._findings_done = threading.Event()
-        threading.Thread(target=self._find, name="nbkit-explorer-findings", daemon=True).start()
+        self._findings_started = False
+        self._drawn_parts: set = set()
+        for part in (self.timeline, self.layer_map, self.coordinates):
+            part.canvas.mpl_connect("draw_event", lambda event, part=part: self._part_drawn(part))
+        self._findings_timer = threading.Timer(FINDINGS_START_SECONDS, self._start_findings)
+        self._findings_timer.daemon = True
+        self._findings_timer.start()
         if live:
             self._poller = threading.Thread(target=self._poll, name="nbkit-explorer-poll", daemon=True)
             self._poller.start()
@@ -155,6 +165,18 @@ class Explorer(widgets.VBox):
         findings.add_class("nbkit-findings-box")
         return [controls, self.timeline.canvas, pickers, middle, findings, self.errors]
 
+    def _part_drawn(self, part):
+        self._drawn_parts.add(id(part))
+        if len(self._drawn_parts) == 3:
+            self._start_findings()
+
+    def _start_findings(self):
+        with self._lock:
+            if self._findings_started:
+                return
+            self._findings_started = True
+        threading.Thread(target=self._find, name="nbkit-explorer-findings", daemon=True).start()
+
     def _find(self):
         """Run the findings off the opening path, then show them (list and timeline marks)."""
         try:
@@ -176,6 +198,7 @@ class Explorer(widgets.VBox):
 
     def wait_for_findings(self, timeout: float | None = None) -> bool:
         """Block until the background search for findings is done (True) or `timeout` passed."""
+        self._start_findings()
         return self._findings_done.wait(timeout)
 
     def _read_findings(self):
@@ -411,6 +434,8 @@ class Explorer(widgets.VBox):
 
     def close(self):
         self._stopped = True
+        if getattr(self, "_findings_timer", None) is not None:
+            self._findings_timer.cancel()
         if getattr(self, "_live_handle", None) is not None:
             self._live_handle.remove()
         for name in ("timeline", "layer_map", "coordinates"):
