@@ -84,6 +84,10 @@ class LayerMap:
         self.colourbar.set_label(label_of(q), fontsize=8)
         self.value_axes.set_xscale("log" if is_log else "linear")
         plain_log_ticks(self.value_axes.xaxis)
+        if is_log:                                   # a narrow axis: three labels at most
+            from matplotlib.ticker import LogLocator
+
+            self.value_axes.xaxis.set_major_locator(LogLocator(numticks=3))
         plain_log_ticks(self.colourbar.ax.yaxis)
         if np.isfinite(low):
             if is_log:
