@@ -77,6 +77,38 @@ def timed_replay(run, steps, record_it, to, start=0):
     return steps / (time.perf_counter() - started), steps / (time.process_time() - cpu)
 
 
+def check_cost(rounds):
+    """(per-step batch checks: fingerprint of inputs and targets and their comparison) / (plain step),
+    each the best of `rounds` runs of 100 (the least disturbed)."""
+    from nbkit.replay.fingerprint import fingerprint, matches
+
+    model = make_model()
+    optimizer = torch.optim.Adam(model.parameters(), lr=1e-3)
+    x, y = batches(0)
+    recorded = fingerprint(((x,), {}))
+
+    def plain():
+        optimizer.zero_grad()
+        step_fn(model, (x, y)).backward()
+        optimizer.step()
+
+    def checks():
+        matches(recorded, [fingerprint(((x,), {}))])
+        matches(recorded, [fingerprint((y,))])
+
+    best = {}
+    for f in (plain, checks):
+        f()
+        times = []
+        for _ in range(rounds):
+            started = time.process_time()
+            for _ in range(100):
+                f()
+            times.append(time.process_time() - started)
+        best[f.__name__] = min(times)
+    return best["checks"] / best["plain"]
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--steps", type=int, default=200)
@@ -134,6 +166,8 @@ def main(argv=None):
     print(f"reaching keyframe step {skip} with an iterable: {skipped / fetch:.3f} x the cost of fetching one batch "
           f"per skipped step (budget 1.0); with batches(step): {callable_cost * 1e6:.0f} microseconds in all, "
           "no batch fetched")
+    print(f"per-step batch checks (fingerprints of inputs and targets, compared): {check_cost(args.rounds):.3f} "
+          "of a plain step (CPU time, best of rounds)")
     print(f"a replay's set-up (CPU time, beyond its first step) costs {statistics.median(setup):.1f} plain steps; "
           f"over {args.steps} steps that is {statistics.median(setup) / args.steps:.3f} of the ratio above")
 
