@@ -266,3 +266,24 @@ def test_live_view_follows_a_running_recorder_and_keeps_a_moved_cursor(tmp_path,
         assert v.data.rows == before
     finally:
         rec.close()
+
+
+@pytest.mark.slow
+def test_tour_notebook_runs_with_nbclient_and_keeps_a_static_picture(tmp_path):
+    import shutil
+    from pathlib import Path
+
+    import nbclient
+    import nbformat
+
+    source = Path(__file__).resolve().parents[1] / "notebooks" / "01-tour.ipynb"
+    shutil.copy(source, tmp_path / source.name)
+    nb = nbformat.read(tmp_path / source.name, as_version=4)
+    nbclient.NotebookClient(nb, timeout=600, kernel_name="python3", store_widget_state=True,
+                            resources={"metadata": {"path": str(tmp_path)}}).execute()
+    outputs = [o for cell in nb.cells if cell.cell_type == "code" for o in cell.outputs]
+    assert not [o for o in outputs if o.get("output_type") == "error"]
+    explorer = [o for o in outputs if "application/vnd.jupyter.widget-view+json" in o.get("data", {})]
+    assert explorer and "image/png" in explorer[0]["data"]                  # the PNG fallback is stored
+    assert (tmp_path / "runs" / "tour-explorer.png").stat().st_size > 20_000
+    assert nb.metadata["widgets"]["application/vnd.jupyter.widget-state+json"]["state"]
