@@ -241,6 +241,40 @@ def test_eps_dominated_when_eps_is_far_above_the_gradient_scale(tmp_path):
     del healthy
 
 
+class TwoBranch(torch.nn.Module):
+    """Digits pixels through one branch, three extra features through their own small layer."""
+
+    def __init__(self):
+        super().__init__()
+        torch.manual_seed(3)
+        self.pixels = torch.nn.Sequential(torch.nn.Linear(64, 32), torch.nn.Tanh())
+        self.extra = torch.nn.Sequential(torch.nn.Linear(3, 8), torch.nn.Tanh())
+        self.head = torch.nn.Linear(40, 10)
+
+    def forward(self, x):
+        return self.head(torch.cat([self.pixels(x[:, :64]), self.extra(x[:, 64:])], dim=1))
+
+
+@pytest.mark.parametrize("unit", [1e-7, 1.0])
+def test_eps_dominated_traces_inputs_in_the_wrong_unit(tmp_path, unit):
+    """Three features scaled by 1e-7 feed their own layer: its weight gradient falls under Adam's ε
+    while the layer's bias gradient stays normal. The finding fires on that weight with the input scale
+    as evidence (weight-gradient RMS / bias-gradient RMS ≈ the inputs' scale); with correct units it
+    stays silent."""
+    x, y = digits()
+    extra = torch.stack([x[:, :32].mean(1), x[:, 32:].mean(1), x.std(1)], dim=1)
+    extra = (extra - extra.mean(0)) / extra.std(0) * unit
+    model = TwoBranch()
+    run = train(model, torch.optim.Adam(model.parameters(), lr=1e-3), torch.cat([x, extra], 1), y,
+                150, tmp_path / f"units-{unit}")
+    found = [f for f in run.findings() if f.kind == "eps-dominated"]
+    if unit == 1.0:
+        assert found == []
+        return
+    assert [f.tensors for f in found] == [["extra.0.weight"]]
+    assert found[0].evidence["input_scale"] == pytest.approx(unit, rel=1.0)   # within a factor of 2
+
+
 def quadratic_run(tmp_path, name, optimizer_factory, steps, *, curvature_every=0, scale=(4.0, 1.0, 0.25)):
     """Linear least squares with a known Hessian diag(scale) (the data are its square roots)."""
     dims = len(scale)

@@ -38,6 +38,8 @@ class Thresholds:
     eps_share: float = 0.5            # "most coordinates": ε outweighs √v̂ for over half of them
     relevant_grad: float = 1e-4       # eps-dominated, lost-updates: only tensors whose gradient RMS is at
                                       # least 1e-4 × the median tensor's (others barely matter to the loss)
+    tiny_input: float = 1e-3          # ... or weights whose gradient RMS is below 1e-3 × their own layer's
+                                      # bias gradient RMS: the layer's inputs are ~1000× below unit scale
     sign_flip: float = 0.25           # oscillation: a quarter of the coordinates flip sign (the sharp
                                       # directions that oscillate are few, but dominate the gradient) ...
     grad_cosine: float = -0.3         # ... with consecutive gradients pointing against each other ...

@@ -174,15 +174,52 @@ def _update_ratio(data, t):
     return high + low
 
 
+def _input_scale(data) -> np.ndarray:
+    """(heavy rows, tensors): a weight's gradient RMS over its own layer's bias gradient RMS (NaN where
+    there is no bias). For a linear map the weight gradient is δ·xᵀ and the bias gradient δ, so the
+    ratio estimates the scale of the layer's inputs: far below 1 means inputs in the wrong unit."""
+    rms = data.series("grad_rms")
+    out = np.full(rms.shape, np.nan)
+    index = {name: k for k, name in enumerate(data.tensors)}
+    for k in _weights(data):
+        name = data.tensors[k]
+        bias = index.get(name[:-len("weight")] + "bias") if name.endswith("weight") else None
+        if bias is not None:
+            with np.errstate(all="ignore"):
+                out[:, k] = rms[:, k] / rms[:, bias]
+    return out
+
+
 def _eps_dominated(data, t):
     share = data.series("eps_share")
     relevant = _relevant(data, t)
-    return _per_tensor(data, t, "eps-dominated", "warning",
-                       lambda k: (share[:, k] > t.eps_share) & relevant[:, k],
-                       lambda k, a, b: {"median_eps_share": _median(share[a:b + 1, k])},
-                       "ε outweighs √v̂ in the update's denominator for most coordinates, so the optimizer "
-                       "behaves like SGD with learning rate lr/ε there. Lower eps, or check the gradient scale "
-                       "(a loss scaled far down).", source="common practice")
+    scale = _input_scale(data)
+    with np.errstate(invalid="ignore"):
+        tiny_inputs = scale < t.tiny_input
+    # a weight whose inputs are tiny matters although its own gradient is negligible: its bias must matter
+    bias_relevant = np.zeros_like(relevant)
+    index = {name: k for k, name in enumerate(data.tensors)}
+    for k, name in enumerate(data.tensors):
+        bias = index.get(name[:-len("weight")] + "bias") if name.endswith("weight") else None
+        if bias is not None:
+            bias_relevant[:, k] = relevant[:, bias]
+    tiny_inputs &= bias_relevant
+    plain = _per_tensor(data, t, "eps-dominated", "warning",
+                        lambda k: (share[:, k] > t.eps_share) & relevant[:, k],
+                        lambda k, a, b: {"median_eps_share": _median(share[a:b + 1, k])},
+                        "ε outweighs √v̂ in the update's denominator for most coordinates, so the optimizer "
+                        "behaves like SGD with learning rate lr/ε there. Lower eps, or check the gradient scale "
+                        "(a loss scaled far down).", source="common practice")
+    inputs = _per_tensor(data, t, "eps-dominated", "warning",
+                         lambda k: (share[:, k] > t.eps_share) & tiny_inputs[:, k] & ~relevant[:, k],
+                         lambda k, a, b: {"median_eps_share": _median(share[a:b + 1, k]),
+                                          "input_scale": _median(scale[a:b + 1, k])},
+                         "ε outweighs √v̂ for most coordinates because this weight's gradient is tiny while its "
+                         "layer's bias gradient is not: the layer's inputs are about input_scale of unit size. "
+                         "Check the units and normalisation of the features feeding this layer.",
+                         source="common practice: normalise inputs to unit scale (LeCun et al. 1998, "
+                                "Efficient BackProp; from memory)")
+    return plain + inputs
 
 
 def _oscillation(data, t):
