@@ -11,6 +11,8 @@ import html
 import tempfile
 from pathlib import Path
 
+import numpy as np
+
 CAUTION = ("Findings are heuristics: each points at a step and tensor worth a look, not a proven cause. "
            "Verify a finding with a replay from a keyframe before acting on it. Recordings (and this report) "
            "can hold traces of the training data: treat them like the data itself.")
@@ -53,6 +55,13 @@ def findings_table(findings) -> str:
             "<th>suggestion</th><th>source</th></tr>" + "".join(rows) + "</table>")
 
 
+def _focus(findings):
+    """The finding a static picture should show: the most severe one that names a tensor, earliest first."""
+    rank = {"error": 0, "warning": 1, "info": 2}
+    named = [f for f in findings if f.tensors and f.kind not in ("orphan", "no-gradient")]
+    return min(named, key=lambda f: (rank[f.severity], f.first_step), default=None)
+
+
 def _number(value) -> str:
     if isinstance(value, float):
         return f"{value:.4g}"
@@ -75,7 +84,13 @@ def _run_table(run) -> str:
                                                                              "weight_decay", "alpha"))
                       for g in groups)
     parent = meta.get("parent") or {}
+    lr = run.lr
+    lr_range = ""
+    if lr.size and np.isfinite(lr).any():
+        low, high = np.nanmin(lr), np.nanmax(lr)
+        lr_range = f"{low:.4g}" if low == high else f"{low:.4g} … {high:.4g} (varies over the run)"
     rows = [("path", str(run.path)), ("optimizer", f"{meta['optimizer']['class']} ({hyper})"),
+            ("learning rate recorded", lr_range or "unknown"),
             ("steps", f"{len(steps)} ({steps[0]}–{steps[-1]})" if len(steps) else "none"),
             ("tensors", str(len(run.tensors))), ("keyframes", ", ".join(map(str, run.keyframes))),
             ("closed cleanly", "yes" if run.closed_cleanly else "no"),
@@ -108,12 +123,23 @@ def write_report(runs, path, *, title: str = "nbkit report", findings=None, land
         parts.append(f"<h2>{html.escape(run.path.name)}</h2>")
         parts.append(_run_table(run))
         parts.append("<h3>Findings</h3>" + findings_table(found))
-        parts.append(_figure("Explorer", _png_data_uri(nbkit.explore(run)),
-                             "Timeline, layer map and coordinate view at the cursor step, as the notebook view shows them."))
+        explorer = nbkit.explore(run)
+        caption = "Timeline, layer map and coordinate view, as the notebook view shows them"
+        focus = _focus(found)
+        if focus is not None:
+            explorer.wait_for_findings(timeout=120)
+            with explorer.hold_sync():
+                explorer.step, explorer.tensor = focus.first_step, focus.tensors[0]
+            caption += f", with the cursor on the {focus.kind} finding at step {focus.first_step} in {focus.tensors[0]}"
+        parts.append(_figure("Explorer", _png_data_uri(explorer), caption + "."))
     if len(runs) > 1:
         parts.append("<h2>Comparison</h2>")
-        parts.append(_figure("Runs side by side", _png_data_uri(nbkit.compare(*runs)),
-                             "Replays share the first run's step numbers and batches."))
+        comparison = nbkit.compare(*runs)
+        shared = max(int(r.steps[0]) for r in runs if len(r.steps))
+        comparison.step = shared
+        parts.append(_figure("Runs side by side", _png_data_uri(comparison),
+                             f"Replays share the first run's step numbers and batches; cursor at step {shared}, "
+                             "the first step every run holds."))
     if landscape is not None:
         parts.append("<h2>Loss landscape slice</h2>")
         parts.append(_figure("Loss on the plane through the start point and the runs' end points",
