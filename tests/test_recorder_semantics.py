@@ -330,3 +330,22 @@ def test_global_random_generators_untouched(tmp_path, tiny_classifier):
     assert torch.equal(torch.get_rng_state(), state[0])
     assert np.array_equal(np.random.get_state()[1], state[1])
     assert random.getstate() == state[2]
+
+
+def test_recording_left_open_is_flushed_at_interpreter_exit(tmp_path):
+    """DESIGN.md section 3: a Recorder also flushes at interpreter exit (no rec.close() here)."""
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    script = (f"import sys; sys.path.insert(0, {str(Path(__file__).resolve().parents[1])!r})\n"
+              "import torch, nbkit\n"
+              "model = torch.nn.Linear(4, 2); optimizer = torch.optim.Adam(model.parameters())\n"
+              f"rec = nbkit.record(model, optimizer, {str(tmp_path / 'r')!r})\n"
+              "for _ in range(3):\n"
+              "    optimizer.zero_grad(); model(torch.randn(5, 4)).sum().backward(); optimizer.step()\n")
+    subprocess.run([sys.executable, "-c", script], check=True, timeout=120)
+    run = nbkit.load(tmp_path / "r")
+    assert run.steps.tolist() == [0, 1, 2]
+    assert run.keyframes == [0, 3]
+    assert run.closed_cleanly

@@ -47,6 +47,25 @@ def _close_all_at_exit():
             pass
 
 
+_exit_hook_registered = False
+
+
+def _close_before_thread_pools_stop():
+    """Also close at threading shutdown, which runs before atexit: by atexit time the thread pools
+    that zarr writes through already refuse work, and an open recording would lose every row
+    since its last flush. Registered after zarr is imported, so it runs before their exit hooks."""
+    global _exit_hook_registered
+    if _exit_hook_registered:
+        return
+    import threading
+
+    try:
+        threading._register_atexit(_close_all_at_exit)
+        _exit_hook_registered = True
+    except (AttributeError, RuntimeError):      # no such hook in this Python, or already shutting down
+        pass
+
+
 @dataclass
 class _Tensor:
     name: str
@@ -153,6 +172,7 @@ class Recorder:
             self._handles.append(criterion.register_forward_hook(self._after_criterion))
         optimizer._nbkit_recorder = weakref.ref(self)
         _live_recorders.add(self)
+        _close_before_thread_pools_stop()
 
     # --- set-up ---------------------------------------------------------------------------------
     @staticmethod
