@@ -287,3 +287,36 @@ def test_tour_notebook_runs_with_nbclient_and_keeps_a_static_picture(tmp_path):
     assert explorer and "image/png" in explorer[0]["data"]                  # the PNG fallback is stored
     assert (tmp_path / "runs" / "tour-explorer.png").stat().st_size > 20_000
     assert nb.metadata["widgets"]["application/vnd.jupyter.widget-state+json"]["state"]
+
+
+@pytest.mark.slow
+def test_view_of_a_path_follows_a_recording_another_process_writes(tmp_path):
+    import json
+    import subprocess
+    import sys
+    import time
+
+    path = tmp_path / "growing"
+    writer = subprocess.Popen([sys.executable, "-c", "import sys, time\n"
+                               "from nbkit.store.synthetic import write_synthetic\n"
+                               f"write_synthetic({str(path)!r}, steps=4000, tensors=4, probes=4)\n"])
+    try:
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline:           # wait for the first committed rows
+            try:
+                if json.loads((path / "committed.json").read_text())["rows"] > 0:
+                    break
+            except (OSError, ValueError, KeyError):
+                pass
+            time.sleep(0.05)
+        v = nbkit.explore(path)
+        first_rows = v.data.rows
+        while time.monotonic() < deadline and v.data.rows < 4000:
+            time.sleep(0.2)
+        assert writer.wait(120) == 0
+        time.sleep(2.5)                              # one more poll after the writer closed
+        assert first_rows < 4000 and v.data.rows == 4000
+        assert v.step == 3999 and v.slider.max == 3999   # it was at the end, so it followed
+        v.close()
+    finally:
+        writer.kill()
