@@ -15,10 +15,20 @@ from nbkit.record.adapters import Adapter, StepContext
 NAN = float("nan")
 
 
+def _accumulation_dtype(tensor):
+    """float32 for half and single precision (half would overflow), float64 for float64."""
+    return torch.promote_types(tensor.dtype, torch.float32)
+
+
 def _norms(tensors):
     if not tensors:
         return torch.zeros(0, dtype=torch.float32)
-    return torch.stack(torch._foreach_norm(tensors, 2, dtype=torch.float32)).to(torch.float64)
+    dtypes = {_accumulation_dtype(t) for t in tensors}
+    if len(dtypes) == 1:
+        norms = torch._foreach_norm(tensors, 2, dtype=dtypes.pop())
+    else:
+        norms = [torch.linalg.vector_norm(t, dtype=_accumulation_dtype(t)) for t in tensors]
+    return torch.stack([n.double() for n in norms])
 
 
 def _dot(a, b):
@@ -50,7 +60,7 @@ def whole_tensor_statistics(grads, minus_updates, previous_grads, previous_norms
         update_dot.append(_dot(minus_update, g))
         previous_dot.append(_dot(g, previous) if previous is not None else nan)
         if g.dim() >= 2:
-            rows = torch.linalg.vector_norm(g.reshape(g.shape[0], -1), dim=1, dtype=torch.float32)
+            rows = torch.linalg.vector_norm(g.reshape(g.shape[0], -1), dim=1, dtype=_accumulation_dtype(g))
             dead_rows.append((rows == 0).sum().float())
         else:
             dead_rows.append(nan)
