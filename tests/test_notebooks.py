@@ -1,0 +1,29 @@
+"""The template notebook executes top to bottom under nbclient (the tour has its own test in
+test_explorer.py and the real-browser test)."""
+import shutil
+from pathlib import Path
+
+import pytest
+
+NOTEBOOKS = Path(__file__).resolve().parents[1] / "notebooks"
+
+
+@pytest.mark.slow
+def test_your_model_template_runs_top_to_bottom(tmp_path):
+    import nbclient
+    import nbformat
+
+    shutil.copy(NOTEBOOKS / "02-your-model.ipynb", tmp_path)
+    nb = nbformat.read(tmp_path / "02-your-model.ipynb", as_version=4)
+    nbclient.NotebookClient(nb, timeout=600, kernel_name="python3", store_widget_state=True,
+                            resources={"metadata": {"path": str(tmp_path)}}).execute()
+    outputs = [o for cell in nb.cells if cell.cell_type == "code" for o in cell.outputs]
+    assert not [o for o in outputs if o.get("output_type") == "error"]
+    views = [o for o in outputs if o.get("data", {}).get("text/plain", "").startswith(("Explorer(", "Comparison("))]
+    assert len(views) == 2                                   # the explorer and the comparison
+    assert all("image/png" in v["data"] for v in views)      # static pictures for exported notebooks
+    assert all("application/vnd.jupyter.widget-view+json" in v["data"] for v in views)
+    recording = tmp_path / "runs" / "your-model"
+    assert (recording / "nbkit.json").is_file()
+    replays = list((tmp_path / "runs" / "your-model.replays").iterdir())
+    assert [p.name for p in replays] == ["sgd-momentum"]
