@@ -4,7 +4,7 @@ VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test test-fast test-browser browser-deps bench clean
+.PHONY: demo test test-fast test-browser browser-deps bench docs clean
 
 $(STAMP): pyproject.toml constraints.txt
 	$(PYTHON) -m venv $(VENV)
@@ -35,6 +35,13 @@ test-browser: $(STAMP) browser-deps
 
 bench: $(STAMP)
 	$(PY) benchmarks/record_overhead.py
+	$(PY) benchmarks/explorer_latency.py
+	$(PY) benchmarks/replay_speed.py
+	$(PY) benchmarks/analysis_cost.py
+
+# The README's pictures, rendered by the views themselves from the demo scenario.
+docs: $(STAMP)
+	$(PY) docs/render_pictures.py
 
 clean:
 	rm -rf $(VENV) demo-out .pytest_cache

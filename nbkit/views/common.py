@@ -226,6 +226,29 @@ def figure_png(figure) -> np.ndarray:
     return np.asarray(Image.open(buffer).convert("RGBA"))
 
 
+def _footer_font():
+    """Matplotlib's own DejaVu Sans (it covers ε, √, ×, …), at the size of the figures' small labels."""
+    from pathlib import Path
+
+    import matplotlib
+    from PIL import ImageFont
+
+    return ImageFont.truetype(str(Path(matplotlib.get_data_path()) / "fonts" / "ttf" / "DejaVuSans.ttf"), 12)
+
+
+def _wrap(line: str, font, width: int) -> list[str]:
+    """Break a footer line at spaces so that each piece fits `width` pixels."""
+    pieces, current = [], ""
+    for word in line.split(" "):
+        candidate = f"{current} {word}" if current else word
+        if current and font.getlength(candidate) > width:
+            pieces.append(current)
+            current = "    " + word
+        else:
+            current = candidate
+    return pieces + [current]
+
+
 def compose_png(rows: list[list[np.ndarray]], footer: str = "") -> bytes:
     """Stack rows of RGBA images (each row side by side) on white, with a text footer; PNG bytes."""
     from PIL import Image, ImageDraw
@@ -240,9 +263,11 @@ def compose_png(rows: list[list[np.ndarray]], footer: str = "") -> bytes:
             canvas.paste(Image.fromarray(img), (x, 0))
             x += img.shape[1]
         row_images.append(canvas)
-    lines = footer.splitlines()
-    text_height = 14 * len(lines) + (10 if lines else 0)
     width = max(r.width for r in row_images)
+    font = _footer_font()
+    lines = [piece for line in footer.splitlines() for piece in _wrap(line, font, width - 16)]
+    line_height = 16
+    text_height = line_height * len(lines) + (10 if lines else 0)
     out = Image.new("RGBA", (width, sum(r.height for r in row_images) + text_height), "white")
     y = 0
     for r in row_images:
@@ -250,7 +275,7 @@ def compose_png(rows: list[list[np.ndarray]], footer: str = "") -> bytes:
         y += r.height
     draw = ImageDraw.Draw(out)
     for k, line in enumerate(lines):
-        draw.text((8, y + 5 + 14 * k), line, fill="black")
+        draw.text((8, y + 5 + line_height * k), line, fill="black", font=font)
     buffer = io.BytesIO()
     out.convert("RGB").save(buffer, format="png")
     return buffer.getvalue()

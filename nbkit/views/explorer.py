@@ -453,9 +453,7 @@ class Explorer(widgets.VBox):
             lines += [label for label, _ in self._finding_options()[:8]] or [self.findings_note.value
                                                                                 .replace("<small>", "")
                                                                                 .replace("</small>", "")]
-            # PIL's built-in font covers Latin-1 only: spell out the few other characters we use.
-            text = "\n".join(lines).replace("–", "-").replace("·", "|").replace("…", "...").replace("×", "x")
-            return compose_png(images, text.encode("latin-1", "replace").decode("latin-1"))
+            return compose_png(images, "\n".join(lines))
 
     def to_png(self, path):
         """Render the whole view as it is now to a PNG file at `path`."""
