@@ -45,7 +45,7 @@ def whole_tensor_statistics(grads, minus_updates, previous_grads, previous_norms
     grads: the tensors' gradients; minus_updates: θ_before − θ_after = −Δθ; previous_grads: the
     gradients at the previous recorded step (or None); previous_norms: their norms (T,);
     weight_norm: ‖θ‖ before the step (T,). Returns a dict of (T,) float64 tensors. The plain
-    reference is nbkit.measure.reference.whole_tensor_reference.
+    check is tests/test_step_stats.py, which recomputes every series from its NumPy definition.
     """
     T = len(grads)
     empty = torch.zeros(0, dtype=torch.float64)
