@@ -281,6 +281,25 @@ def compose_png(rows: list[list[np.ndarray]], footer: str = "") -> bytes:
     return buffer.getvalue()
 
 
+class StaticPicture:
+    """Mixin for views with `png_bytes()`: `.to_png(path)` and a PNG in the notebook's display data,
+    so exported notebooks and reports show the view without a kernel."""
+
+    def to_png(self, path):
+        """Render the whole view as it is now to a PNG file at `path`."""
+        with open(path, "wb") as handle:
+            handle.write(self.png_bytes())
+        return path
+
+    def _repr_mimebundle_(self, **kwargs):
+        bundle = super()._repr_mimebundle_(**kwargs) or {}
+        try:
+            bundle["image/png"] = base64.b64encode(self.png_bytes()).decode("ascii")
+        except Exception:                            # a static image is a fallback; never break display
+            pass
+        return bundle
+
+
 def safe_call(fn, *args, on_error=None):
     """Call a user's (or a view part's) callback; an error is reported, never raised into the view."""
     try:

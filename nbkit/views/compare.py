@@ -9,14 +9,13 @@ the tensor, quantity or pair changes.
 """
 from __future__ import annotations
 
-import base64
 import html
 
 import ipywidgets as widgets
 import numpy as np
 import traitlets
 
-from nbkit.views.common import (GAIN_CLASS_COLOURS, SIGNED_MAP, Blitter, compose_png, figure_png, label_of,
+from nbkit.views.common import (StaticPicture, GAIN_CLASS_COLOURS, SIGNED_MAP, Blitter, compose_png, figure_png, label_of,
                                 make_canvas, safe_call)
 from nbkit.views.landscape import RUN_COLOURS, LandscapePanel, run_names
 
@@ -41,7 +40,7 @@ def difference_map(a, b, quantity: str):
         return common, va - vb, tensors, "difference"
 
 
-class Comparison(widgets.VBox):
+class Comparison(StaticPicture, widgets.VBox):
     """The comparison widget. Set `step`, `tensor` or `quantity` from code; the view follows."""
 
     step = traitlets.Int(0, help="the cursor: an absolute optimizer step number").tag(sync=True)
@@ -312,11 +311,6 @@ class Comparison(widgets.VBox):
         footer = f"comparison of {', '.join(self.names)}: step {self.step}, tensor {self.tensor}, {self.quantity}"
         return compose_png(rows, footer)
 
-    def to_png(self, path):
-        """Render the whole view as it is now to a PNG file at `path`."""
-        with open(path, "wb") as handle:
-            handle.write(self.png_bytes())
-        return path
 
     def close(self):
         for canvas in (self.timeline_canvas, self.detail_canvas, getattr(self, "landscape_canvas", None)):
@@ -324,10 +318,3 @@ class Comparison(widgets.VBox):
                 canvas.close()
         super().close()
 
-    def _repr_mimebundle_(self, **kwargs):
-        bundle = super()._repr_mimebundle_(**kwargs) or {}
-        try:
-            bundle["image/png"] = base64.b64encode(self.png_bytes()).decode("ascii")
-        except Exception:                            # a static image is a fallback; never break display
-            pass
-        return bundle

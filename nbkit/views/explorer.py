@@ -9,7 +9,6 @@ fully redrawn only when the tensor, quantity or recording changes.
 """
 from __future__ import annotations
 
-import base64
 import html
 import os
 import threading
@@ -19,7 +18,7 @@ import ipywidgets as widgets
 import numpy as np
 import traitlets
 
-from nbkit.views.common import compose_png, figure_png, safe_call
+from nbkit.views.common import StaticPicture, compose_png, figure_png, safe_call
 from nbkit.views.coordinates import CoordinateView
 from nbkit.views.data import RunData
 from nbkit.views.layer_map import LayerMap
@@ -50,7 +49,7 @@ def _open(source):
                     f"{type(source).__name__}. Open a recording with nbkit.load(path) or pass its folder.")
 
 
-class Explorer(widgets.VBox):
+class Explorer(StaticPicture, widgets.VBox):
     """The explorer widget. Set `step` or `tensor` from code; the view follows."""
 
     step = traitlets.Int(0, help="the cursor: an absolute optimizer step number").tag(sync=True)
@@ -339,14 +338,9 @@ class Explorer(widgets.VBox):
                 part.blitter.full()
 
     def _redraw_all(self, step):
+        self._prepare(step)
         self._moving = True
         try:
-            if self.data.rows and self.layer_map.quantity != self.quantity:
-                self.layer_map.set_quantity(self.quantity)
-            if self.data.rows and self.coordinates.tensor != self.tensor and self.tensor:
-                self.coordinates.set_tensor(self.tensor)
-                self.layer_map.set_tensor(self.tensor)
-            self._place(step)
             for part in (self.timeline, self.layer_map, self.coordinates):
                 part.blitter.full()
         finally:
@@ -455,20 +449,7 @@ class Explorer(widgets.VBox):
                                                                                 .replace("</small>", "")]
             return compose_png(images, "\n".join(lines))
 
-    def to_png(self, path):
-        """Render the whole view as it is now to a PNG file at `path`."""
-        data = self.png_bytes()
-        with open(path, "wb") as handle:
-            handle.write(data)
-        return path
 
-    def _repr_mimebundle_(self, **kwargs):
-        bundle = super()._repr_mimebundle_(**kwargs) or {}
-        try:
-            bundle["image/png"] = base64.b64encode(self.png_bytes()).decode("ascii")
-        except Exception:                            # a static image is a fallback; never break display
-            pass
-        return bundle
 
 
 def explore(run, *, quantity: str = DEFAULT_QUANTITY) -> Explorer:

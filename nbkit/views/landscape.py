@@ -6,13 +6,12 @@ keyframe nearest the cursor `step`. The comparison embeds the same panel.
 """
 from __future__ import annotations
 
-import base64
 
 import ipywidgets as widgets
 import numpy as np
 import traitlets
 
-from nbkit.views.common import MAGNITUDE_MAP, OKABE_ITO, compose_png, figure_png, make_canvas
+from nbkit.views.common import StaticPicture, MAGNITUDE_MAP, OKABE_ITO, compose_png, figure_png, make_canvas
 
 # Okabe & Ito (2008) colours, in the order runs take them (colour-blind safe).
 RUN_COLOURS = [OKABE_ITO[c] for c in ("blue", "orange", "bluish green", "vermillion", "reddish purple",
@@ -81,7 +80,7 @@ class LandscapePanel:
             marker.set_data([point[0]], [point[1]])
 
 
-class LandscapeView(widgets.VBox):
+class LandscapeView(StaticPicture, widgets.VBox):
     """The landscape slice as its own view; `step` places each run's marker at its keyframe at or
     before that step."""
 
@@ -112,16 +111,4 @@ class LandscapeView(widgets.VBox):
     def png_bytes(self) -> bytes:
         return compose_png([[figure_png(self.figure)]], f"loss landscape slice, cursor at step {self.step}")
 
-    def to_png(self, path):
-        """Render the view as it is now to a PNG file at `path`."""
-        with open(path, "wb") as handle:
-            handle.write(self.png_bytes())
-        return path
 
-    def _repr_mimebundle_(self, **kwargs):
-        bundle = super()._repr_mimebundle_(**kwargs) or {}
-        try:
-            bundle["image/png"] = base64.b64encode(self.png_bytes()).decode("ascii")
-        except Exception:                            # a static image is a fallback; never break display
-            pass
-        return bundle
