@@ -313,7 +313,8 @@ class Comparison(StaticPicture, widgets.VBox):
 
 
     def close(self):
-        for canvas in (self.timeline_canvas, self.detail_canvas, getattr(self, "landscape_canvas", None)):
+        # getattr: close() also runs from __del__ of a view whose __init__ raised (bad input)
+        for canvas in (getattr(self, name, None) for name in ("timeline_canvas", "detail_canvas", "landscape_canvas")):
             if canvas is not None:
                 canvas.close()
         super().close()
