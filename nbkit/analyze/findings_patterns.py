@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import math
 import warnings
+from dataclasses import replace
 
 import numpy as np
 
@@ -219,6 +220,8 @@ def _eps_dominated(data, t):
                          "Check the units and normalisation of the features feeding this layer.",
                          source="common practice: normalise inputs to unit scale (LeCun et al. 1998, "
                                 "Efficient BackProp; from memory)")
+    inputs = [replace(f, suggestion=f.suggestion.replace("about input_scale", f"about {f.evidence['input_scale']:.1g}"))
+              for f in inputs]
     return plain + inputs
 
 
