@@ -1,5 +1,4 @@
 """Shared fixtures: tiny models and recordings made in a temporary folder."""
-import warnings
 
 import pytest
 import torch

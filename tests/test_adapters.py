@@ -13,7 +13,6 @@ itself, outside the recorder.
 The model's tensors have at most 64 coordinates, so every coordinate is a probe and a sampled
 share is a share over the whole tensor.
 """
-import math
 import warnings
 
 import numpy as np

@@ -3,7 +3,6 @@
 The oracle is the original recording itself (loss, probe values, keyframe parameters): a replay on a
 CPU with the same thread count must reproduce it bit for bit, dropout included.
 """
-import warnings
 
 import numpy as np
 import pytest

@@ -28,8 +28,6 @@ def spike_start(findings, run) -> int:
 
 
 def run_demo(out: Path, steps: int | None = None) -> Path:
-    import torch
-
     import nbkit
     from nbkit.demo import scenario
     from nbkit.views.report import write_report

@@ -29,7 +29,7 @@ from nbkit.record import capture
 from nbkit.record.adapters import adapter_for, step_count
 from nbkit.replay.fingerprint import combine, fingerprint
 from nbkit.store import keyframes as kf
-from nbkit.store.files import FINGERPRINT_WIDTH, META_FILE, is_recording
+from nbkit.store.files import is_recording
 from nbkit.store.writer import RecordingWriter, estimate_recording_bytes, plan_resume
 
 SAMPLE_SIZE = 4096      # sampled coordinates per tensor for shares and histograms (all when smaller)
@@ -504,7 +504,7 @@ class Recorder:
         """Post-step: the per-tensor quantities, histograms and probes of every block into `row`."""
         row["heavy"] = True
         q_index = self._q_index
-        summary, histograms = row["q"], row["hist"]
+        summary = row["q"]
         missing = q_index["grad_missing"]
         for block in self._blocks or ():
             if not block.copied:

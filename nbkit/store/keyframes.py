@@ -67,15 +67,11 @@ def _decode(value, tensors):
         if _TUPLE in value:
             return tuple(_decode(v, tensors) for v in value[_TUPLE])
         if _ITEMS in value:
-            return {_key(k): _decode(v, tensors) for k, v in value[_ITEMS]}
+            return {k: _decode(v, tensors) for k, v in value[_ITEMS]}
         return {k: _decode(v, tensors) for k, v in value.items()}
     if isinstance(value, list):
         return [_decode(v, tensors) for v in value]
     return value
-
-
-def _key(key):
-    return key
 
 
 def keyframe_paths(root: Path, step: int) -> tuple[Path, Path]:

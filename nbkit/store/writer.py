@@ -9,7 +9,6 @@ unless the user asked for strict mode.
 from __future__ import annotations
 
 import queue
-import shutil
 import threading
 import time
 from pathlib import Path
@@ -369,10 +368,6 @@ class _quiet_nan_warnings:
 
     def __exit__(self, *exc):
         self._ctx.__exit__(*exc)
-
-
-def remove_recording(path: Path) -> None:
-    shutil.rmtree(path)
 
 
 # --- resuming ---------------------------------------------------------------------------------------
