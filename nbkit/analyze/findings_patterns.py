@@ -175,36 +175,36 @@ def _update_ratio(data, t):
     return high + low
 
 
-def _input_scale(data) -> np.ndarray:
+def _layer_biases(data) -> dict[int, int]:
+    """Weight tensor index -> the index of its own layer's bias ("x.weight" -> "x.bias")."""
+    index = {name: k for k, name in enumerate(data.tensors)}
+    pairs = {k: index.get(data.tensors[k][:-len("weight")] + "bias") for k in _weights(data)
+             if data.tensors[k].endswith("weight")}
+    return {k: bias for k, bias in pairs.items() if bias is not None}
+
+
+def _input_scale(data, biases) -> np.ndarray:
     """(heavy rows, tensors): a weight's gradient RMS over its own layer's bias gradient RMS (NaN where
     there is no bias). For a linear map the weight gradient is δ·xᵀ and the bias gradient δ, so the
     ratio estimates the scale of the layer's inputs: far below 1 means inputs in the wrong unit."""
     rms = data.series("grad_rms")
     out = np.full(rms.shape, np.nan)
-    index = {name: k for k, name in enumerate(data.tensors)}
-    for k in _weights(data):
-        name = data.tensors[k]
-        bias = index.get(name[:-len("weight")] + "bias") if name.endswith("weight") else None
-        if bias is not None:
-            with np.errstate(all="ignore"):
-                out[:, k] = rms[:, k] / rms[:, bias]
+    with np.errstate(all="ignore"):
+        for k, bias in biases.items():
+            out[:, k] = rms[:, k] / rms[:, bias]
     return out
 
 
 def _eps_dominated(data, t):
     share = data.series("eps_share")
     relevant = _relevant(data, t)
-    scale = _input_scale(data)
-    with np.errstate(invalid="ignore"):
-        tiny_inputs = scale < t.tiny_input
+    biases = _layer_biases(data)
+    scale = _input_scale(data, biases)
     # a weight whose inputs are tiny matters although its own gradient is negligible: its bias must matter
-    bias_relevant = np.zeros_like(relevant)
-    index = {name: k for k, name in enumerate(data.tensors)}
-    for k, name in enumerate(data.tensors):
-        bias = index.get(name[:-len("weight")] + "bias") if name.endswith("weight") else None
-        if bias is not None:
-            bias_relevant[:, k] = relevant[:, bias]
-    tiny_inputs &= bias_relevant
+    tiny_inputs = np.zeros_like(relevant)
+    with np.errstate(invalid="ignore"):
+        for k, bias in biases.items():
+            tiny_inputs[:, k] = (scale[:, k] < t.tiny_input) & relevant[:, bias]
     plain = _per_tensor(data, t, "eps-dominated", "warning",
                         lambda k: (share[:, k] > t.eps_share) & relevant[:, k],
                         lambda k, a, b: {"median_eps_share": _median(share[a:b + 1, k])},
