@@ -253,7 +253,8 @@ def test_live_view_follows_a_running_recorder_and_keeps_a_moved_cursor(tmp_path,
             time.sleep(0.02)
             seen.append(v.data.rows)
         assert len(set(seen)) >= 3 and seen[-1] > start_rows              # grew, several times, during the loop
-        assert v.step == int(v.data.steps[-1])                             # and the cursor followed the end
+        with v._lock:                                                      # the poller may be mid-refresh
+            assert v.step == int(v.data.steps[-1])                         # and the cursor followed the end
         v.step = 2
         for _ in range(20):
             _train(model, opt, rec, x, y, 1)

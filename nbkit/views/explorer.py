@@ -350,7 +350,9 @@ class Explorer(StaticPicture, widgets.VBox):
     def refresh(self):
         """Show steps written since the view opened; the cursor stays unless it was at the end."""
         with self._lock:
-            old_rows = self.data.rows
+            if getattr(self, "_stopped", False):
+                return False                         # a closed view stays as it was
+            old_rows, step_before = self.data.rows, self.step
             at_end = old_rows == 0 or self.step >= int(self.data.steps[-1])
             self.run.refresh()
             self.data.reload()
@@ -363,7 +365,9 @@ class Explorer(StaticPicture, widgets.VBox):
             self.slider.max = self.play.max = last
             if old_rows == 0:
                 self.slider.min = self.play.min = int(self.data.steps[0])
-            target = last if at_end else self.step
+            # A cursor moved from another thread while this ran (the trait is set before its
+            # observers wait for the lock) is the user's choice: it wins over following the end.
+            target = last if at_end and self.step == step_before else self.step
             self._prepare_busy_frontends()
             self._redraw_all(target)
             if self.step != target:
@@ -415,6 +419,8 @@ class Explorer(StaticPicture, widgets.VBox):
         """A recording another process writes (or the tail of a live one) is picked up here."""
         while not getattr(self, "_stopped", False):
             time.sleep(POLL_SECONDS)
+            if getattr(self, "_stopped", False):
+                return                               # closed while this slept
             try:
                 from nbkit.store.files import COMMITTED_FILE, read_json
 
@@ -427,7 +433,8 @@ class Explorer(StaticPicture, widgets.VBox):
                 continue                             # the file is being replaced; try again
 
     def close(self):
-        self._stopped = True
+        with getattr(self, "_lock", threading.RLock()):  # waits for a refresh in flight
+            self._stopped = True
         if getattr(self, "_findings_timer", None) is not None:
             self._findings_timer.cancel()
         if getattr(self, "_live_handle", None) is not None:
