@@ -28,7 +28,7 @@ def _norms(tensors):
         norms = torch._foreach_norm(tensors, 2, dtype=dtypes.pop())
     else:
         norms = [torch.linalg.vector_norm(t, dtype=_accumulation_dtype(t)) for t in tensors]
-    return torch.stack([n.double() for n in norms])
+    return torch.stack(norms).double()
 
 
 def _dot(a, b):

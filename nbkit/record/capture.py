@@ -5,13 +5,16 @@ owns flat buffers that every step reuses: `before` (θ before the step, turned i
 and two gradient buffers used in turn (this step's gradient and the previous recorded one, for
 grad_cosine and sign_flip). Per-tensor buffers are views into them, so each copy is one foreach
 call and the sampled coordinates of all tensors of a block are one gather with global indices.
-The training thread does only what must see live tensors (the copies, the sampled optimizer
-state); the statistics read the block's own buffers on a background thread (`measure_block`).
+The training thread does only what must see tensors that change before the next step (the
+copies); the statistics read the block's own buffers and the optimizer state, which only the next
+optimizer.step() changes, on a background thread (`measure_block`).
 """
 from __future__ import annotations
 
 import math
+import threading
 import time
+from concurrent.futures import Future
 
 import numpy as np
 import torch
@@ -154,17 +157,18 @@ def _executor():
 
 
 @torch.no_grad()
-def measure_block(block: Block, rows: list[int], optimizer, adapter, probes: int, *, deliver,
-                  background: bool = True):
+def measure_block(block: Block, rows: list[int], optimizer, adapter, probes: int, *, deliver) -> dict:
     """Post-step: statistics of the tensors `rows` of `block` (those with a dense gradient).
 
-    The training thread does what must see the live tensors: θ_after − θ_before into the block's
-    buffer, a copy of the gradients, the sampled optimizer state, the norms that decide whether
-    anything is non-finite. The rest reads only the block's own buffers and runs on a background
-    thread (`background=False`: here), which ends by calling deliver(results) with (whole-tensor
-    dict of (R,) tensors, sampled dict of (R,) tensors, histograms (3, R, bins + 2), probe values
-    dict of (R, probes) tensors, state_nonfinite (R,) or None). Returns the Future of that work;
-    wait(block) must come before the block's buffers are reused.
+    The training thread does what must see tensors that change before the next step: θ_after −
+    θ_before into the block's buffer, a copy of the gradients (the next backward pass changes them),
+    ‖θ_before‖ and a sample of θ_before, the parameter group (a scheduler changes it). The rest runs
+    on a background thread (`background=False`: here): it reads the block's own buffers and the
+    optimizer state, which only optimizer.step() changes (every step's pre-hook waits for this
+    work). It ends by calling deliver(results) with (whole-tensor dict of (R,) tensors, sampled dict
+    of (R,) tensors, histograms (3, R, bins + 2), probe values dict of (R, probes) tensors,
+    state_nonfinite (R,) or None). Returns that work, for `Pacer.submit`; wait(block) must come
+    before the block's buffers are reused or the optimizer steps again.
     """
     wait(block)
     everything = len(rows) == len(block.tensors)
@@ -184,35 +188,110 @@ def measure_block(block: Block, rows: list[int], optimizer, adapter, probes: int
     theta_before = _gather(block.before_flat, flat_index, block.work)            # (R, S)
     torch._foreach_sub_(befores, params)                                          # befores := −Δθ
     torch._foreach_copy_(pick(current), grads)
-    states, scalars = zip(*[state_tensors(optimizer, t.param) for t in tensors])
-    after = _sample_state(block, rows, list(states))
     before = {k: v if everything else v[rows] for k, v in block.state_before.items()}
-    scalar_values = {k: torch.tensor([[s.get(k, math.nan)] for s in scalars], dtype=block.work)
-                     for k in sorted(set().union(*[s.keys() for s in scalars]))}
-    # float64: the step-dependent coefficients (RAdam's ρ_t) cancel badly in float32
-    steps = torch.tensor([[s.get("step", math.nan)] for s in scalars], dtype=torch.float64)
+    # a scheduler changes the group after the step: copy it now
     group = {k: v for k, v in optimizer.param_groups[block.group].items() if k != "params"}
     has_previous = [block.has_previous[r] for r in rows]
     previous_norms = torch.tensor([block.previous_norms[r] for r in rows], dtype=torch.float64)
     job = dict(block=block, rows=rows, everything=everything, current=pick(current),
                previous=[p if h else None for p, h in zip(pick(previous), has_previous)],
                minus_update=befores, flat_index=flat_index, theta_before=theta_before, weight_norm=weight_norm,
-               weight_nonfinite=weight_nonfinite, previous_norms=previous_norms, after=after, before=before,
-               scalars=scalar_values, steps=steps, group=group, adapter=adapter, probes=probes,
+               weight_nonfinite=weight_nonfinite, previous_norms=previous_norms, before=before,
+               optimizer=optimizer, params=[t.param for t in tensors], group=group, adapter=adapter, probes=probes,
                current_flat=block.grad_flats[1 - block.turn], has_previous=has_previous, deliver=deliver)
     for r in rows:
         block.has_previous[r] = True
-    if background:
-        block.pending = _executor().submit(_measure, job)
-    else:
-        from concurrent.futures import Future
+    return job
 
-        block.pending = Future()
+
+class StatisticsTask:
+    """The statistics of one step's blocks (`measure_block` jobs), run as one task on the
+    statistics thread. It is put on that thread only when started, so a task held back by its
+    Pacer never occupies the thread that other recorders share; waiting for it starts it."""
+
+    def __init__(self, jobs: list[dict], pacer: "Pacer"):
+        self.jobs, self.pacer, self.future = jobs, pacer, None
+        self._lock = threading.Lock()
+        for job in jobs:
+            job["block"].pending = self
+
+    def start(self) -> None:
+        with self._lock:
+            if self.future is None:
+                self.future = _executor().submit(_measure_all, self.jobs, self.pacer)
+
+    def run_here(self) -> None:
+        self.future = Future()
         try:
-            block.pending.set_result(_measure(job))
+            self.future.set_result(_measure_all(self.jobs, self.pacer))
         except Exception as exc:
-            block.pending.set_exception(exc)
-    return block.pending
+            self.future.set_exception(exc)
+
+    def done(self) -> bool:
+        return self.future is not None and self.future.done()
+
+    def result(self):
+        self.start()
+        return self.future.result()
+
+    def exception(self):
+        self.start()
+        return self.future.exception()
+
+
+class Pacer:
+    """When a recorder's statistics run: at once, or held until the next forward pass ends.
+
+    A forward pass through many small modules is mostly Python; statistics computed at the same
+    time compete with it for the GIL and slow it. The backward pass runs in torch's C++ engine
+    without the GIL. So when the statistics have taken well under the time from the end of a
+    forward pass to the next optimizer step (HOLD_BELOW, both measured as moving averages), they
+    wait for the forward pass to end. Otherwise (a model whose backward pass is short next to its
+    statistics) they start at once, so the next step's pre-hook does not wait for them.
+    """
+
+    HOLD_BELOW = 0.6
+    SMOOTHING = 0.2             # weight of the newest measurement in the moving averages
+
+    def __init__(self):
+        self.held: StatisticsTask | None = None
+        self.statistics_seconds: float | None = None
+        self.backward_seconds: float | None = None       # forward's end to the next optimizer step
+        self._forward_end: float | None = None
+
+    def submit(self, jobs: list[dict], background: bool = True) -> StatisticsTask:
+        task = StatisticsTask(jobs, self)
+        if not background:
+            task.run_here()
+        elif (self.statistics_seconds is not None and self.backward_seconds is not None
+              and self.statistics_seconds < self.HOLD_BELOW * self.backward_seconds):
+            self.held = task
+        else:
+            task.start()
+        return task
+
+    def forward_ended(self) -> None:
+        self._forward_end = time.perf_counter()
+        if self.held is not None:
+            task, self.held = self.held, None
+            task.start()
+
+    def step_started(self) -> None:
+        if self._forward_end is not None:
+            self.backward_seconds = self._average(self.backward_seconds, time.perf_counter() - self._forward_end)
+            self._forward_end = None
+
+    def statistics_took(self, seconds: float) -> None:
+        self.statistics_seconds = self._average(self.statistics_seconds, seconds)
+
+    def _average(self, old: float | None, new: float) -> float:
+        return new if old is None else (1 - self.SMOOTHING) * old + self.SMOOTHING * new
+
+
+def wait_all(blocks: list[Block]) -> None:
+    """Before an optimizer step that is not measured: the last statistics must have read the state."""
+    for block in blocks:
+        wait(block)
 
 
 def wait(block: Block) -> None:
@@ -223,17 +302,40 @@ def wait(block: Block) -> None:
 
 
 @torch.no_grad()
-def _measure(job: dict):
-    """The statistics of one block at one step, from the block's own buffers only."""
-    started = time.thread_time()
+def _measure_all(jobs: list[dict], pacer: Pacer | None = None):
+    """The statistics of one step, block by block; the first error is raised after every block ran."""
+    started, started_wall = time.thread_time(), time.perf_counter()
+    error = None
     try:
-        job["deliver"](_measure_timed(job))
+        for job in jobs:
+            try:
+                job["deliver"](_measure_timed(job))
+            except Exception as exc:             # noqa: BLE001 - raised below, after the other blocks
+                error = error or exc
     finally:
         BACKGROUND_CPU[0] += time.thread_time() - started
+        if pacer is not None:
+            pacer.statistics_took(time.perf_counter() - started_wall)
+    if error is not None:
+        raise error
+
+
+def _optimizer_state(job: dict):
+    """The sampled optimizer state after the step, and its scalars, read on the statistics thread:
+    only optimizer.step() changes the state, and the next step's pre-hook waits for this job."""
+    block, rows = job["block"], job["rows"]
+    states, scalars = zip(*[state_tensors(job["optimizer"], p) for p in job["params"]])
+    after = _sample_state(block, rows, list(states))
+    scalar_values = {k: torch.tensor([[s.get(k, math.nan)] for s in scalars], dtype=block.work)
+                     for k in sorted(set().union(*[s.keys() for s in scalars]))}
+    # float64: the step-dependent coefficients (RAdam's ρ_t) cancel badly in float32
+    steps = torch.tensor([[s.get("step", math.nan)] for s in scalars], dtype=torch.float64)
+    return after, scalar_values, steps
 
 
 def _measure_timed(job: dict):
     block, rows, everything = job["block"], job["rows"], job["everything"]
+    after, scalar_values, steps = _optimizer_state(job)
     valid = block.valid if everything else block.valid[rows]
     pad = block.pad if everything else block.pad[rows]
     whole = whole_tensor_statistics(job["current"], job["minus_update"], job["previous"], job["previous_norms"],
@@ -248,9 +350,8 @@ def _measure_timed(job: dict):
     group = job["group"]
     sampled, hist, probe_values = sampled_statistics(
         grad=grad, theta_before=job["theta_before"], update=update, valid=valid, before=job["before"],
-        after=job["after"], scalars=job["scalars"], step=job["steps"], group=group, lr=float(group["lr"]),
+        after=after, scalars=scalar_values, step=steps, group=group, lr=float(group["lr"]),
         adapter=job["adapter"], previous_grad=previous_sample, probes=job["probes"], finite=finite, pad=pad)
-    after = job["after"]
     state_nonfinite = None
     if after:
         state_nonfinite = sum((~torch.isfinite(v) & valid).sum(dim=1) for v in after.values())

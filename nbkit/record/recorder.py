@@ -138,6 +138,7 @@ class Recorder:
         self._blocks = None                 # nbkit.record.capture.Block list, made at the first step
         self._waiting_rows = collections.deque()   # rows whose statistics are still being computed
         self.background = True              # statistics on a background thread (False: in the hook)
+        self._pacer = capture.Pacer()       # when they run there
         self._q_index = {q: i for i, q in enumerate(QUANTITIES)}
         self._tensors, orphans, frozen = self._table(model, optimizer)
         self._groups = [[t for t in self._tensors if t.group == g] for g in range(len(optimizer.param_groups))]
@@ -167,6 +168,7 @@ class Recorder:
             optimizer.register_step_pre_hook(self._pre_step),
             optimizer.register_step_post_hook(self._post_step),
             model.register_forward_pre_hook(self._before_forward, with_kwargs=True),
+            model.register_forward_hook(lambda module, args, output: self._pacer.forward_ended()),
         ]
         if criterion is not None:
             self._handles.append(criterion.register_forward_hook(self._after_criterion))
@@ -389,9 +391,12 @@ class Recorder:
             return None                     # a subclass calling super().step(): record once
         try:
             self._check_writer()
+            self._pacer.step_started()
             self._finalize_row()
             if self._heavy(self.step):
                 self._copy_before()
+            elif self._blocks:
+                capture.wait_all(self._blocks)   # the statistics thread reads the optimizer state
             # args holds the optimizer itself first, then step()'s own arguments
             closure = kwargs.get("closure", args[1] if len(args) > 1 else None)
             if closure is not None:
@@ -506,6 +511,7 @@ class Recorder:
         q_index = self._q_index
         summary = row["q"]
         missing = q_index["grad_missing"]
+        jobs = []
         for block in self._blocks or ():
             if not block.copied:
                 continue
@@ -528,9 +534,10 @@ class Recorder:
             ks = [block.positions[r] for r in rows]
             deliver = functools.partial(capture.deliver, row, ks, [block.tensors[r].probes for r in rows],
                                         self._q_index, len(self._tensors), self.probes)
-            job = capture.measure_block(block, rows, self.optimizer, self.adapter, self.probes, deliver=deliver,
-                                        background=self.background)
-            row.setdefault("_jobs", []).append(job)
+            jobs.append(capture.measure_block(block, rows, self.optimizer, self.adapter, self.probes,
+                                              deliver=deliver))
+        if jobs:
+            row["_jobs"] = [self._pacer.submit(jobs, background=self.background)]
 
     # --- keyframes ------------------------------------------------------------------------------
     def _snapshot(self, step: int):
