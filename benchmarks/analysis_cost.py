@@ -115,6 +115,9 @@ def measure(model, batch, rounds: int) -> dict:
     base, base_median = min(times["fwd_bwd"]), statistics.median(times["fwd_bwd"])
     ratios = {k: min(v) / base for k, v in times.items() if k != "fwd_bwd"}
     ratios["hvp_median"] = statistics.median(times["hvp"]) / base_median
+    # each HVP is timed right after a forward+backward of the same round: the median of these paired
+    # ratios is the steadiest estimate (a busy neighbour slows both of a pair alike)
+    ratios["hvp_paired"] = statistics.median(h / f for h, f in zip(times["hvp"], times["fwd_bwd"]))
     ratios["hvp_vs_math"] = min(times["hvp"]) / min(times["fwd_bwd_math"])
     ratios["params"] = n
     ratios["noise_method"] = method
@@ -152,18 +155,20 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
     if args.threads:
         torch.set_num_threads(args.threads)
-    rounds = args.rounds or (3 if args.quick else 6)
+    rounds = args.rounds or (6 if args.quick else 15)
     print(f"torch {torch.__version__}, {torch.get_num_threads()} threads; ratios to one forward+backward "
-          f"(fastest of {2 * rounds} interleaved repeats; hvp_med: ratio of medians)")
-    header = f"{'model':42s} {'params':>9s} {'hvp':>6s} {'hvp_med':>7s} {'hvp/math':>8s} {'hvp_reuse':>9s} " \
-             f"{'sharpness':>9s} {'HVPs':>5s} {'noise':>6s}  noise method"
+          f"(fastest of {rounds} interleaved repeats; hvp_med: ratio of medians; hvp_pair: median of the "
+          "per-round ratios, which the budget is judged on)")
+    header = f"{'model':42s} {'params':>9s} {'hvp':>6s} {'hvp_med':>7s} {'hvp_pair':>8s} {'hvp/math':>8s} " \
+             f"{'hvp_reuse':>9s} {'sharpness':>9s} {'HVPs':>5s} {'noise':>6s}  noise method"
     print(header)
     over = []
     for name, (model, batch) in models(args.quick).items():
         r = measure(model, batch, rounds)
-        print(f"{name:42s} {r['params']:9,d} {r['hvp']:6.2f} {r['hvp_median']:7.2f} {r['hvp_vs_math']:8.2f} "
-              f"{r['hvp_reuse']:9.2f} {r['sharpness']:9.1f} {r['lanczos_hvps']:5d} {r['noise']:6.2f}  {r['noise_method']}")
-        if r["hvp"] > HVP_BUDGET:
+        print(f"{name:42s} {r['params']:9,d} {r['hvp']:6.2f} {r['hvp_median']:7.2f} {r['hvp_paired']:8.2f} "
+              f"{r['hvp_vs_math']:8.2f} {r['hvp_reuse']:9.2f} {r['sharpness']:9.1f} {r['lanczos_hvps']:5d} "
+              f"{r['noise']:6.2f}  {r['noise_method']}")
+        if r["hvp_paired"] > HVP_BUDGET:
             over.append(name)
     print(f"budget: one Hessian-vector product <= {HVP_BUDGET} x forward+backward: "
           + ("met" if not over else "over on " + ", ".join(over)))

@@ -78,28 +78,34 @@ def loss_of(step_fn, model, batch) -> torch.Tensor:
 
 
 def hessian_vector_product(loss: torch.Tensor, params: list[torch.Tensor]):
-    """A function v -> H·v (flat float64 numpy, length Σ numel) for the Hessian of `loss` in `params`."""
+    """A function v -> H·v (flat float64 numpy, length Σ numel) for the Hessian of `loss` in `params`.
+
+    H·v is the vector-Jacobian product of g = ∇L with v as its output gradient (H is symmetric;
+    Pearlmutter 1994), so v goes straight into the double backward as grad_outputs: no g·v graph.
+    """
     grads = torch.autograd.grad(loss, params, create_graph=True, allow_unused=True)
-    live = [(p, g) for p, g in zip(params, grads) if g is not None and g.requires_grad]
-    sizes = [p.numel() for p in params]
-    offsets = np.cumsum([0] + sizes)
-    position = {id(p): k for k, p in enumerate(params)}
+    live = [(k, p, g) for k, (p, g) in enumerate(zip(params, grads)) if g is not None and g.requires_grad]
+    offsets = np.cumsum([0] + [p.numel() for p in params])
 
     def product(vector: np.ndarray) -> np.ndarray:
-        out = np.zeros(offsets[-1], dtype=np.float64)
         if not live:
-            return out
-        dot = sum((g * torch.from_numpy(np.ascontiguousarray(vector[offsets[position[id(p)]]:
-                                                                    offsets[position[id(p)] + 1]]))
-                   .to(g.dtype).view_as(g)).sum() for p, g in live)
-        hv = torch.autograd.grad(dot, [p for p, _ in live], retain_graph=True, allow_unused=True)
-        for (p, _), h in zip(live, hv):
-            if h is not None:
-                k = position[id(p)]
-                out[offsets[k]:offsets[k + 1]] = h.detach().double().reshape(-1).numpy()
+            return np.zeros(offsets[-1], dtype=np.float64)
+        flat = torch.from_numpy(np.ascontiguousarray(vector, dtype=np.float64))
+        as_dtype = {dtype: flat.to(dtype) for dtype in {g.dtype for _, _, g in live}}   # one cast per dtype
+        directions = [as_dtype[g.dtype][offsets[k]:offsets[k + 1]].view_as(g) for k, _, g in live]
+        hv = torch.autograd.grad([g for _, _, g in live], [p for _, p, _ in live], grad_outputs=directions,
+                                 retain_graph=True, allow_unused=True)
+        out = np.zeros(offsets[-1], dtype=np.float64)
+        target = torch.from_numpy(out)
+        for (k, _, _), h in zip(live, hv):
+            if h is not None:                    # one pass: copy_ converts to float64 as it writes
+                target[offsets[k]:offsets[k + 1]].copy_(h.reshape(-1))
         return out
 
     return product
+
+
+LANCZOS_BASIS = 8
 
 
 def top_eigenvalue(matvec, n: int, *, tol: float = 1e-6, seed: int = START_SEED) -> float:
@@ -112,10 +118,18 @@ def top_eigenvalue(matvec, n: int, *, tol: float = 1e-6, seed: int = START_SEED)
     if n < 3:
         dense = np.stack([matvec(e) for e in np.eye(n)], axis=1)
         return float(np.linalg.eigvalsh((dense + dense.T) / 2)[-1])
+    from threadpoolctl import threadpool_limits
+
     start = np.random.default_rng(seed).standard_normal(n)
     operator = LinearOperator((n, n), matvec=matvec, dtype=np.float64)
+    # ARPACK keeps LANCZOS_BASIS vectors of length n (scipy's default, 20, is 160 bytes per parameter)
+    # and calls BLAS for small level-2 products, between which OpenBLAS's threads spin on the cores
+    # the Hessian-vector products need: one BLAS thread. Measured on the 1.33M-parameter MLP of
+    # benchmarks/analysis_cost.py (2 cores): the same products and eigenvalue in half the time.
     try:
-        values = eigsh(operator, k=1, which="LA", tol=tol, v0=start, return_eigenvectors=False)
+        with threadpool_limits(limits=1, user_api="blas"):
+            values = eigsh(operator, k=1, which="LA", tol=tol, v0=start, ncv=min(n, LANCZOS_BASIS),
+                           return_eigenvectors=False)
     except ArpackNoConvergence as exc:
         raise AnalysisError(f"Lanczos did not reach tol={tol} (ARPACK: {exc}); pass a larger tol") from exc
     return float(values[-1])
