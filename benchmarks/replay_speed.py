@@ -1,18 +1,21 @@
 """Replay speed, measured side by side in one run: ratios, never bare times.
 
-    .venv/bin/python benchmarks/replay_speed.py [--steps 200] [--rounds 3]
+    .venv/bin/python benchmarks/replay_speed.py [--steps 200] [--rounds 9] [--wide]
 
-Prints steps per second of a plain training loop, of a replay with recording off and of a replay
-with recording at the defaults (all on the same model, optimizer and batches, one torch thread, the
-three interleaved in alternating order over several rounds; ratios are taken within each round and
-the best round and the medians printed, so a busy neighbour shows as a gap between the two),
-and the cost of reaching a keyframe at step K per skipped step, against fetching one batch.
+Prints the time per step of a replay with recording off and of a replay with recording at the
+defaults, relative to a plain training loop on the same model, optimizer and batches (one torch
+thread). Each round runs the three back to back, in alternating order; the ratio is taken within
+each round (a busy neighbour slows a round's three runs alike) and the median of the rounds is
+printed with its distribution-free 95 % interval. A replay's time includes its set-up (opening the
+recording, reading the keyframe, copying the model), which is also printed on its own, in plain
+steps. Then the cost of reaching a keyframe at step K per skipped step, against fetching one batch.
 Budget (issue 4): replay without recording <= 1.05 x the plain loop; reaching the keyframe's step
 costs no more than fetching the skipped batches (nothing with a callable batches(step)).
 """
 from __future__ import annotations
 
 import argparse
+import math
 import statistics
 import sys
 import tempfile
@@ -31,10 +34,14 @@ TARGETS = torch.randint(0, 10, (4096,), generator=_generator)
 CRITERION = torch.nn.CrossEntropyLoss()
 
 
+HIDDEN = [256, 128]      # --wide: [1024, 512], the MLP of record_overhead.py (about 5 x the step time)
+
+
 def make_model():
     torch.manual_seed(0)
-    return torch.nn.Sequential(torch.nn.Linear(784, 256), torch.nn.ReLU(), torch.nn.Dropout(0.1),
-                               torch.nn.Linear(256, 128), torch.nn.ReLU(), torch.nn.Linear(128, 10))
+    return torch.nn.Sequential(torch.nn.Linear(784, HIDDEN[0]), torch.nn.ReLU(), torch.nn.Dropout(0.1),
+                               torch.nn.Linear(HIDDEN[0], HIDDEN[1]), torch.nn.ReLU(),
+                               torch.nn.Linear(HIDDEN[1], 10))
 
 
 def batches(step):
@@ -77,6 +84,33 @@ def timed_replay(run, steps, record_it, to, start=0):
     return steps / (time.perf_counter() - started), steps / (time.process_time() - cpu)
 
 
+def interleaved(run, steps):
+    """Per-step paired times (replay step, plain step), recording off: the replay's before_step runs one
+    plain training step of a second model on the same batch, timed on its own, so each replayed step
+    is measured next to a plain one within milliseconds (on a shared machine the speed of whole runs
+    drifts by tens of percent from one second to the next). A replayed step is the time between two
+    before_step calls, less the plain step run inside it."""
+    plain_model = make_model()
+    plain_optimizer = torch.optim.Adam(plain_model.parameters(), lr=1e-3)
+    marks, plain = [], []
+
+    def before_step(model, optimizer, step):
+        started = time.perf_counter()
+        x, y = batches(step)
+        plain_optimizer.zero_grad()
+        # the same loss as step_fn through another criterion object: the replay watches CRITERION
+        torch.nn.functional.cross_entropy(plain_model(x), y).backward()
+        plain_optimizer.step()
+        ended = time.perf_counter()
+        plain.append(ended - started)
+        marks.append((started, ended))
+
+    replay(run, make_model(), step_fn, batches, start=0, steps=steps, before_step=before_step, progress=False,
+           _record=False)
+    replayed = [(b[0] - a[1]) + 0.0 for a, b in zip(marks, marks[1:])]    # from one plain step's end to the next's start
+    return replayed, plain[1:]
+
+
 def check_cost(rounds):
     """(per-step batch checks: fingerprint of inputs and targets and their comparison) / (plain step),
     each the best of `rounds` runs of 100 (the least disturbed)."""
@@ -109,23 +143,34 @@ def check_cost(rounds):
     return best["checks"] / best["plain"]
 
 
+def paired_median(ratios):
+    """Median of per-round ratios and its order-statistic 95 % interval (Conover, Practical
+    Nonparametric Statistics, 3rd ed., sec. 3.2)."""
+    d = sorted(ratios)
+    n = len(d)
+    half = 1.96 * math.sqrt(n) / 2
+    return statistics.median(d), d[max(0, math.floor(n / 2 - half))], d[min(n - 1, math.ceil(n / 2 + half))]
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--steps", type=int, default=200)
-    parser.add_argument("--rounds", type=int, default=5)
+    parser.add_argument("--rounds", type=int, default=9)
+    parser.add_argument("--wide", action="store_true", help="hidden layers 1024 and 512 instead of 256 and 128")
     args = parser.parse_args(argv)
+    if args.wide:
+        HIDDEN[:] = [1024, 512]
     torch.set_num_threads(1)
     with tempfile.TemporaryDirectory() as folder:
         run = record(Path(folder) / "run", args.steps + 1)
-        wall = {"plain": [], "off": [], "on": []}     # steps/s per round
-        cpu = {"plain": [], "off": [], "on": []}
+        seconds = {what: {"wall": [], "cpu": []} for what in ("plain", "off", "on")}   # per step, per round
         for k in range(args.rounds):
             # alternate the order each round, so drifting load hurts all three alike
             for what in (["plain", "off", "on"] if k % 2 == 0 else ["on", "off", "plain"]):
                 rates = plain_loop(args.steps) if what == "plain" else \
                     timed_replay(run, args.steps, what == "on", Path(folder) / f"{what}{k}")
-                wall[what].append(rates[0])
-                cpu[what].append(rates[1])
+                seconds[what]["wall"].append(1.0 / rates[0])
+                seconds[what]["cpu"].append(1.0 / rates[1])
         # reaching a keyframe at step K with an iterable: K batches fetched and dropped
         skip = max(k for k in run.keyframes if k < args.steps) or args.steps
         fetch_times, skip_times = [], []
@@ -148,29 +193,39 @@ def main(argv=None):
             one_plain = 1.0 / plain_loop(20)[1]
             one_replay = 1.0 / timed_replay(run, 1, False, Path(folder) / f"one{k}")[1]
             setup.append((one_replay - one_plain) / one_plain)
-    print(f"replay speed: MLP 784-256-128-10 with dropout, Adam, batch 64, {args.steps} steps, "
-          f"1 torch thread, median of {args.rounds} interleaved rounds")
-    # best round of each (the least disturbed: common practice for timing on a shared machine) and medians
-    best = {what: (max(wall[what]), max(cpu[what])) for what in wall}
-    median = {what: (statistics.median(wall[what]), statistics.median(cpu[what])) for what in wall}
-    print(f"{'':32}{'steps/s':>9}{'time per step vs plain loop':>30}{'medians of rounds':>22}")
-    print(f"{'':32}{'(best)':>9}{'wall':>15}{'CPU':>15}{'wall':>11}{'CPU':>11}")
-    for what, label in (("plain", "plain training loop"), ("off", "replay, recording off"),
-                        ("on", "replay, recording at defaults")):
-        ratios = [best["plain"][i] / best[what][i] for i in (0, 1)] + \
-                 [median["plain"][i] / median[what][i] for i in (0, 1)]
-        note = "   (budget 1.05)" if what == "off" else ""
-        print(f"{label:32}{best[what][0]:9.1f}{ratios[0]:15.3f}{ratios[1]:15.3f}{ratios[2]:11.3f}{ratios[3]:11.3f}{note}")
+        replayed, plain_steps = [], []
+        for _ in range(max(1, args.rounds // 3)):
+            r, p = interleaved(run, args.steps)
+            replayed += r
+            plain_steps += p
+    plain_rate = 1.0 / statistics.median(seconds["plain"]["wall"])
+    print(f"replay speed: MLP 784-{HIDDEN[0]}-{HIDDEN[1]}-10 with dropout, Adam, batch 64, {args.steps} steps, 1 torch thread, "
+          f"{args.rounds} rounds; plain loop {plain_rate:.0f} steps/s (median)")
+    print(f"{'time per step vs plain loop':32}{'wall: median [95% interval]':>30}{'CPU: median [95% interval]':>30}")
+    for what, label in (("off", "replay, recording off"), ("on", "replay, recording at defaults")):
+        cells = []
+        for clock in ("wall", "cpu"):
+            m, low, high = paired_median([a / b for a, b in zip(seconds[what][clock], seconds["plain"][clock])])
+            cells.append(f"{m:.3f} [{low:.3f}–{high:.3f}]")
+        print(f"{label:32}{cells[0]:>30}{cells[1]:>30}")
+    step_ratio, low, high = paired_median([r / p for r, p in zip(replayed, plain_steps)])
+    setup_share = statistics.median(setup) / args.steps
+    combined = step_ratio + setup_share
+    ok = combined <= 1.05
+    print(f"replay step vs plain step, interleaved step by step (recording off): {step_ratio:.3f} "
+          f"[{low:.3f}–{high:.3f}] over {len(replayed)} pairs; with the set-up spread over {args.steps} steps "
+          f"({setup_share:.3f}): {combined:.3f}   (budget 1.05: {'ok' if ok else 'OVER'}; the steadiest figure here)")
     print("CPU: time.process_time over all threads of this process (with recording on it includes the writer "
-          "thread); steadier than wall time when other processes share the cores")
+          "and statistics threads); steadier than wall time when other processes share the cores")
     print(f"reaching keyframe step {skip} with an iterable: {skipped / fetch:.3f} x the cost of fetching one batch "
           f"per skipped step (budget 1.0); with batches(step): {callable_cost * 1e6:.0f} microseconds in all, "
           "no batch fetched")
     print(f"per-step batch checks (fingerprints of inputs and targets, compared): {check_cost(args.rounds):.3f} "
-          "of a plain step (CPU time, best of rounds)")
+          "of a plain step (CPU time, best of rounds, warm: the same batch every time)")
     print(f"a replay's set-up (CPU time, beyond its first step) costs {statistics.median(setup):.1f} plain steps; "
           f"over {args.steps} steps that is {statistics.median(setup) / args.steps:.3f} of the ratio above")
+    return 0 if ok else 1
 
 
 if __name__ == "__main__":
-    main()
+    sys.exit(main())

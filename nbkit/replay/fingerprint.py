@@ -8,6 +8,7 @@ the sum or the sample. Layout of the vector (FINGERPRINT_WIDTH = 20 float64 valu
 """
 from __future__ import annotations
 
+import math
 import zlib
 
 import numpy as np
@@ -41,40 +42,49 @@ def _tensors(value, out: list) -> bool:
 def fingerprint(*values) -> np.ndarray:
     """Fingerprint of the tensors found (recursively) in `values`; NaN vector if there are none.
 
-    Runs on every training forward pass of a recorded or replayed step, so plain containers take a
-    short path; the values are those of torch's pytree flattening and float64 arithmetic either way.
+    Runs on every training forward pass of a recorded or replayed step, where each Python or torch
+    call costs several times what it costs in a warm loop: plain containers take a short path, the
+    sample is one `take` (no copy of a non-contiguous tensor) and the vector is built once. The values
+    are those of torch's pytree flattening and float64 arithmetic either way.
     """
-    out = np.full(FINGERPRINT_WIDTH, np.nan)
     tensors: list = []
     if not _tensors(values, tensors):
         tensors = [t for t in tree_flatten(values)[0] if isinstance(t, torch.Tensor)]
     if not tensors:
-        return out
-    layout = tuple((tuple(t.shape), t.dtype) for t in tensors)
+        return np.full(FINGERPRINT_WIDTH, np.nan)
+    layout = tuple([(tuple(t.shape), t.dtype) for t in tensors])
     crc = _LAYOUT_CRC.get(layout)
     if crc is None:
         description = ";".join(f"{shape}:{dtype}" for shape, dtype in layout)
         crc = _LAYOUT_CRC[layout] = zlib.crc32(description.encode())
         if len(_LAYOUT_CRC) > 4096:
             _LAYOUT_CRC.clear()
-    out[0] = len(tensors)
-    out[1] = sum(t.numel() for t in tensors)
-    out[2] = crc
-    total = 0.0                               # float64 additions in order, as a sum of float64 scalars
-    for t in tensors:                         # detach(): no graph is built, so no no_grad() needed
-        t = t.detach()
+    total, elements = 0.0, 0                  # float64 additions in order, as a sum of float64 scalars
+    for t in tensors:
+        if t.requires_grad:                   # detach(): no graph is built, so no no_grad() needed
+            t = t.detach()
+        elements += t.numel()
         total += float(t.sum(dtype=torch.float64) if not t.is_complex() else t.abs().sum(dtype=torch.float64))
-    out[3] = total
-    first = tensors[0].detach().reshape(-1)
+    out = [len(tensors), elements, crc, total]
+    first = tensors[0].detach()
     n = first.numel()
     if n:
-        stride = max(1, n // SAMPLES)
-        sample = first[::stride][:SAMPLES]
-        if sample.is_complex():
-            out[4:4 + sample.numel()] = sample.to(torch.float64).numpy()
-        else:
-            out[4:4 + sample.numel()] = sample.tolist()     # exact in float64, like .to(torch.float64)
-    return out
+        sample = first.take(_sample_index(n))   # elements 0, s, 2s, ... of the flattened tensor, s = n // 16
+        out += sample.to(torch.float64).tolist() if sample.is_complex() else sample.tolist()
+    out += [math.nan] * (FINGERPRINT_WIDTH - len(out))
+    return np.array(out, dtype=np.float64)
+
+
+_SAMPLE_INDEX: dict = {}
+
+
+def _sample_index(n: int) -> torch.Tensor:
+    index = _SAMPLE_INDEX.get(n)
+    if index is None:
+        if len(_SAMPLE_INDEX) > 4096:
+            _SAMPLE_INDEX.clear()
+        index = _SAMPLE_INDEX[n] = torch.arange(min(SAMPLES, n)) * max(1, n // SAMPLES)
+    return index
 
 
 def combine(prints: list[np.ndarray]) -> np.ndarray:
