@@ -54,6 +54,7 @@ class Recording:
                                      f"(expected {kind.__name__}); it was tampered with or truncated")
         _check_entries(meta, meta_path)
         self.meta = meta
+        self._steps = None
         committed_path = self.path / COMMITTED_FILE
         try:
             committed = read_json(committed_path)
@@ -117,9 +118,15 @@ class Recording:
 
     @property
     def steps(self) -> np.ndarray:
+        """The optimizer step of each row (read-only; read once per committed row count)."""
         if self._rows == 0:
             return np.zeros(0, dtype=np.int64)
-        return self._rows_of("step")
+        cached = getattr(self, "_steps", None)
+        if cached is None or len(cached) != self._rows:
+            cached = self._rows_of("step")
+            cached.flags.writeable = False
+            self._steps = cached
+        return cached
 
     @property
     def tensors(self) -> list[str]:
