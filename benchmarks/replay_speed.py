@@ -15,7 +15,6 @@ costs no more than fetching the skipped batches (nothing with a callable batches
 from __future__ import annotations
 
 import argparse
-import math
 import statistics
 import sys
 import tempfile
@@ -27,6 +26,7 @@ import torch
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 import nbkit  # noqa: E402
 from nbkit.replay.replay import _fetcher, replay  # noqa: E402
+from paired import median_interval  # noqa: E402
 
 _generator = torch.Generator().manual_seed(0)
 INPUTS = torch.randn(4096, 784, generator=_generator)
@@ -107,7 +107,7 @@ def interleaved(run, steps):
 
     replay(run, make_model(), step_fn, batches, start=0, steps=steps, before_step=before_step, progress=False,
            _record=False)
-    replayed = [(b[0] - a[1]) + 0.0 for a, b in zip(marks, marks[1:])]    # from one plain step's end to the next's start
+    replayed = [b[0] - a[1] for a, b in zip(marks, marks[1:])]    # one plain step's end to the next's start
     return replayed, plain[1:]
 
 
@@ -141,15 +141,6 @@ def check_cost(rounds):
             times.append(time.process_time() - started)
         best[f.__name__] = min(times)
     return best["checks"] / best["plain"]
-
-
-def paired_median(ratios):
-    """Median of per-round ratios and its order-statistic 95 % interval (Conover, Practical
-    Nonparametric Statistics, 3rd ed., sec. 3.2)."""
-    d = sorted(ratios)
-    n = len(d)
-    half = 1.96 * math.sqrt(n) / 2
-    return statistics.median(d), d[max(0, math.floor(n / 2 - half))], d[min(n - 1, math.ceil(n / 2 + half))]
 
 
 def main(argv=None):
@@ -205,10 +196,10 @@ def main(argv=None):
     for what, label in (("off", "replay, recording off"), ("on", "replay, recording at defaults")):
         cells = []
         for clock in ("wall", "cpu"):
-            m, low, high = paired_median([a / b for a, b in zip(seconds[what][clock], seconds["plain"][clock])])
+            m, low, high = median_interval([a / b for a, b in zip(seconds[what][clock], seconds["plain"][clock])])
             cells.append(f"{m:.3f} [{low:.3f}–{high:.3f}]")
         print(f"{label:32}{cells[0]:>30}{cells[1]:>30}")
-    step_ratio, low, high = paired_median([r / p for r, p in zip(replayed, plain_steps)])
+    step_ratio, low, high = median_interval([r / p for r, p in zip(replayed, plain_steps)])
     setup_share = statistics.median(setup) / args.steps
     combined = step_ratio + setup_share
     ok = combined <= 1.05

@@ -142,7 +142,7 @@ def _gather(flat: torch.Tensor, index: torch.Tensor, dtype) -> torch.Tensor:
 
 
 _worker = None
-BACKGROUND_CPU = [0.0]      # CPU seconds spent in _measure so far (all recorders; for benchmarks)
+BACKGROUND_CPU = [0.0]      # CPU seconds spent in _measure_all so far (all recorders; for benchmarks)
 
 
 def _executor():
@@ -163,7 +163,7 @@ def measure_block(block: Block, rows: list[int], optimizer, adapter, probes: int
     The training thread does what must see tensors that change before the next step: θ_after −
     θ_before into the block's buffer, a copy of the gradients (the next backward pass changes them),
     ‖θ_before‖ and a sample of θ_before, the parameter group (a scheduler changes it). The rest runs
-    on a background thread (`background=False`: here): it reads the block's own buffers and the
+    on the statistics thread (or in the hook: `Pacer.submit(..., background=False)`): it reads the block's own buffers and the
     optimizer state, which only optimizer.step() changes (every step's pre-hook waits for this
     work). It ends by calling deliver(results) with (whole-tensor dict of (R,) tensors, sampled dict
     of (R,) tensors, histograms (3, R, bins + 2), probe values dict of (R, probes) tensors,

@@ -8,6 +8,7 @@ the sum or the sample. Layout of the vector (FINGERPRINT_WIDTH = 20 float64 valu
 """
 from __future__ import annotations
 
+import functools
 import math
 import zlib
 
@@ -18,7 +19,6 @@ from torch.utils._pytree import tree_flatten
 from nbkit.store.files import FINGERPRINT_WIDTH
 
 SAMPLES = FINGERPRINT_WIDTH - 4
-_LAYOUT_CRC: dict = {}     # (shapes, dtypes) -> CRC32 of their description, computed once per layout
 
 
 def _tensors(value, out: list) -> bool:
@@ -52,13 +52,7 @@ def fingerprint(*values) -> np.ndarray:
         tensors = [t for t in tree_flatten(values)[0] if isinstance(t, torch.Tensor)]
     if not tensors:
         return np.full(FINGERPRINT_WIDTH, np.nan)
-    layout = tuple([(tuple(t.shape), t.dtype) for t in tensors])
-    crc = _LAYOUT_CRC.get(layout)
-    if crc is None:
-        description = ";".join(f"{shape}:{dtype}" for shape, dtype in layout)
-        crc = _LAYOUT_CRC[layout] = zlib.crc32(description.encode())
-        if len(_LAYOUT_CRC) > 4096:
-            _LAYOUT_CRC.clear()
+    crc = _layout_crc(tuple([(tuple(t.shape), t.dtype) for t in tensors]))
     total, elements = 0.0, 0                  # float64 additions in order, as a sum of float64 scalars
     for t in tensors:
         if t.requires_grad:                   # detach(): no graph is built, so no no_grad() needed
@@ -75,16 +69,16 @@ def fingerprint(*values) -> np.ndarray:
     return np.array(out, dtype=np.float64)
 
 
-_SAMPLE_INDEX: dict = {}
+@functools.lru_cache(maxsize=4096)
+def _layout_crc(layout: tuple) -> int:
+    """CRC32 of the shapes and dtypes, computed once per layout."""
+    return zlib.crc32(";".join(f"{shape}:{dtype}" for shape, dtype in layout).encode())
 
 
+@functools.lru_cache(maxsize=4096)
 def _sample_index(n: int) -> torch.Tensor:
-    index = _SAMPLE_INDEX.get(n)
-    if index is None:
-        if len(_SAMPLE_INDEX) > 4096:
-            _SAMPLE_INDEX.clear()
-        index = _SAMPLE_INDEX[n] = torch.arange(min(SAMPLES, n)) * max(1, n // SAMPLES)
-    return index
+    """Flat indices 0, s, 2s, ... (s = n // 16) of the sampled elements of an n-element tensor."""
+    return torch.arange(min(SAMPLES, n)) * max(1, n // SAMPLES)
 
 
 def combine(prints: list[np.ndarray]) -> np.ndarray:

@@ -110,8 +110,7 @@ def make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before
     """Validate the arguments of replay() up front and say what to fix."""
     if len(run) == 0:
         raise ReplayError(f"The recording {str(run.path)!r} holds no steps yet; record some steps first")
-    recorded_steps = run.steps                          # read once: each read goes to the store
-    first, last = int(recorded_steps[0]), int(recorded_steps[-1])
+    first, last = int(run.steps[0]), int(run.steps[-1])
     start = first if start is None else start
     if not isinstance(start, (int, np.integer)) or isinstance(start, bool) or not first <= start <= last:
         raise ReplayError(f"Invalid start: {start!r}; expected a recorded step between {first} and {last}")
@@ -264,10 +263,9 @@ class _Recorded:
     """The parent's per-step data the loop needs: fingerprints and learning rates by step."""
 
     def __init__(self, run, first, end):
-        all_steps = run.steps                           # read once: each read goes to the store
-        rows = slice(int(np.searchsorted(all_steps, first)), int(np.searchsorted(all_steps, end - 1, side="right")))
+        rows = run.rows_for_steps(first, end - 1)
         self.first_row = rows.start
-        steps = all_steps[rows]
+        steps = run.steps[rows]
         if len(steps) != end - first or (len(steps) and (steps[0] != first or steps[-1] != end - 1)):
             raise ReplayError(f"The recording lacks rows between steps {first} and {end - 1}; it cannot be replayed "
                               "over that range")

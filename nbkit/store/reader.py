@@ -54,7 +54,6 @@ class Recording:
                                      f"(expected {kind.__name__}); it was tampered with or truncated")
         _check_entries(meta, meta_path)
         self.meta = meta
-        self._steps = None
         committed_path = self.path / COMMITTED_FILE
         try:
             committed = read_json(committed_path)
@@ -118,15 +117,14 @@ class Recording:
 
     @property
     def steps(self) -> np.ndarray:
-        """The optimizer step of each row (read-only; read once per committed row count)."""
+        """The optimizer step of each row (read-only; read once per refresh)."""
         if self._rows == 0:
             return np.zeros(0, dtype=np.int64)
-        cached = getattr(self, "_steps", None)
-        if cached is None or len(cached) != self._rows:
-            cached = self._rows_of("step")
-            cached.flags.writeable = False
-            self._steps = cached
-        return cached
+        steps = self._cache.get("step")
+        if steps is None:
+            steps = self._cache["step"] = self._rows_of("step")
+            steps.flags.writeable = False
+        return steps
 
     @property
     def tensors(self) -> list[str]:
