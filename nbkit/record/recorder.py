@@ -22,6 +22,7 @@ from pathlib import Path
 
 import numpy as np
 import torch
+from torch.utils.hooks import RemovableHandle
 
 from nbkit.errors import RecorderError, RecorderWarning
 from nbkit.measure.quantities import HISTOGRAM_BINS, HISTOGRAM_LOW, QUANTITIES
@@ -131,6 +132,7 @@ class Recorder:
         self._last_inputs = None      # (args, kwargs) of the last training-mode forward
         self._last_targets = None     # criterion inputs after the prediction
         self._paused = False          # True while the analysis runs its extra passes: hooks ignore them
+        self._step_hooks = collections.OrderedDict()   # add_step_hook: handle id -> hook(row) (weakref-able)
         from nbkit.analyze.during_recording import analysis_for
 
         self._analysis = analysis_for(self, curvature_every, noise_every)   # None when both are 0
@@ -430,6 +432,8 @@ class Recorder:
                 self._heavy_row(row)
             if self._analysis is not None:
                 self._analysis.after_step(self, row)     # may fill row["q"] sharpness / noise_scale
+            for hook in list(self._step_hooks.values()):
+                hook(row)
             self._open_row = row
             self._forward_since_step = False
             if (self.step + 1) % self.keyframe_every == 0:
@@ -560,13 +564,26 @@ class Recorder:
         self._writer.put_keyframe(snapshot)
 
     # --- closing --------------------------------------------------------------------------------
-    def flush(self):
-        """Write everything recorded so far to disk (blocks until the writer has done so)."""
+    def flush(self, wait: bool = True) -> None:
+        """Hand every finished row to the writer and ask it to commit them now.
+
+        wait=True: return once they are on disk (committed); False: return at once (the rows reach
+        the disk within milliseconds; a live view refreshes from what is committed).
+        """
         if self._closed:
             return
         self._finalize_row(force=True)
-        self._writer.flush()
+        self._writer.flush(timeout=60.0 if wait else 0)
         self._check_writer()
+
+    def add_step_hook(self, hook) -> RemovableHandle:
+        """Call hook(row) after each recorded step, on the training thread; returns a handle whose
+        remove() unregisters it (safe to call twice). `row` is the step's Row (nbkit.record.rows);
+        its per-tensor statistics may still be computing. An exception in a hook is reported like
+        any recorder error (RecorderWarning; recording stops) and never reaches the training loop."""
+        handle = RemovableHandle(self._step_hooks)
+        self._step_hooks[handle.id] = hook
+        return handle
 
     def close(self):
         """Stop recording, write the final keyframe and flush. Safe to call twice."""
