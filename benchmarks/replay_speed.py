@@ -114,7 +114,7 @@ def interleaved(run, steps):
 def check_cost(rounds):
     """(per-step batch checks: fingerprint of inputs and targets and their comparison) / (plain step),
     each the best of `rounds` runs of 100 (the least disturbed)."""
-    from nbkit.replay.fingerprint import fingerprint, matches
+    from nbkit.measure.fingerprint import fingerprint, matches
 
     model = make_model()
     optimizer = torch.optim.Adam(model.parameters(), lr=1e-3)

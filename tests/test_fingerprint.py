@@ -1,7 +1,7 @@
 """The batch fingerprint keeps its recorded layout: recordings made before a change must still replay.
 
 `first_layout` is the fingerprint as it was first written (the layout in the module docstring of
-nbkit.replay.fingerprint), kept here as the reference of the stored format."""
+nbkit.measure.fingerprint), kept here as the reference of the stored format."""
 import collections
 import warnings
 import zlib
@@ -11,8 +11,8 @@ import pytest
 import torch
 from torch.utils._pytree import tree_flatten
 
-from nbkit.replay.fingerprint import fingerprint, matches
-from nbkit.store.files import FINGERPRINT_WIDTH
+from nbkit.measure.fingerprint import fingerprint, matches
+from nbkit.measure.fingerprint import FINGERPRINT_WIDTH
 
 
 def first_layout(*values):

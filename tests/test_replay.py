@@ -207,7 +207,7 @@ def test_the_command_line_replays_with_a_setup_function(recorded, tmp_path, caps
 
 
 def test_fingerprints_match_more_or_fewer_passes_over_one_batch():
-    from nbkit.replay.fingerprint import combine, fingerprint, matches
+    from nbkit.measure.fingerprint import combine, fingerprint, matches
 
     one = fingerprint(torch.arange(6.0))
     other = fingerprint(torch.arange(6.0) + 1)
@@ -221,7 +221,7 @@ def test_the_fingerprints_short_path_flattens_like_torch_pytree():
     """Oracle: torch.utils._pytree.tree_flatten, which the fingerprint used before its short path."""
     from torch.utils._pytree import tree_flatten
 
-    from nbkit.replay.fingerprint import _tensors
+    from nbkit.measure.fingerprint import _tensors
 
     a, b, c = torch.randn(3), torch.arange(4), torch.ones(2, 2)
     for value in [((a,), {}), ((a, [b, {"z": c, "y": a}]), {"k": b}), ({"b": a, "a": [c, 3, None]},)]:

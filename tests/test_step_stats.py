@@ -15,7 +15,7 @@ from torch import nn
 
 import nbkit
 from nbkit.measure.step_stats import reference_sampled_statistics, sampled_statistics
-from nbkit.record.adapters import ADAPTERS
+from nbkit.measure.update_rules import ADAPTERS
 
 
 def _inputs(seed, T=5, S=300, nonfinite=False):

@@ -24,12 +24,6 @@ HISTOGRAM_LOW = {"grad": -48, "update": -48, "gain": -32}
 ZERO_COLUMN, NONFINITE_COLUMN = HISTOGRAM_BINS, HISTOGRAM_BINS + 1   # extra columns after the bins
 
 
-def histogram_edges(quantity: str) -> torch.Tensor:
-    """Bin edges in log2 units: bin k holds log2|x| in [low + k, low + k + 1)."""
-    low = HISTOGRAM_LOW[quantity]
-    return torch.arange(low, low + HISTOGRAM_BINS + 1, dtype=torch.float64)
-
-
 def log2_histograms(values: torch.Tensor, valid: torch.Tensor, low: int) -> torch.Tensor:
     """Counts per row of floor(log2 |x|), read from the float32 exponent bits.
 

@@ -10,7 +10,7 @@ import torch
 
 from nbkit.measure.quantities import (HISTOGRAM_BINS, HISTOGRAM_LOW, NONFINITE_COLUMN, ZERO_COLUMN, cosine,
                                       gain_classes, log2_histograms, masked_median, masked_share, sign_flip_share)
-from nbkit.record.adapters import Adapter, StepContext
+from nbkit.measure.update_rules import Adapter, StepContext
 
 NAN = float("nan")
 

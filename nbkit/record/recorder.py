@@ -27,8 +27,8 @@ from torch.utils.hooks import RemovableHandle
 from nbkit.errors import RecorderError, RecorderWarning
 from nbkit.measure.quantities import HISTOGRAM_BINS, HISTOGRAM_LOW, QUANTITIES
 from nbkit.record import capture
-from nbkit.record.adapters import adapter_for, step_count
-from nbkit.replay.fingerprint import combine, fingerprint
+from nbkit.measure.update_rules import adapter_for, step_count
+from nbkit.measure.fingerprint import combine, fingerprint
 from nbkit.store import keyframes as kf
 from nbkit.store.files import is_recording
 from nbkit.store.writer import RecordingWriter, estimate_recording_bytes, plan_resume

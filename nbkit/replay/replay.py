@@ -20,7 +20,7 @@ import torch
 
 from nbkit.errors import ReplayError
 from nbkit.replay import restore
-from nbkit.replay.fingerprint import combine, describe_difference, fingerprint, matches
+from nbkit.measure.fingerprint import combine, describe_difference, fingerprint, matches
 from nbkit.store.files import is_recording, read_json, META_FILE
 
 RECORDED = "recorded"    # the key of the recorded optimizer's replay

@@ -13,7 +13,6 @@ KEYFRAME_DIR = "keyframes"
 STEP_CHUNK = 1024                   # rows per chunk for summaries, loss, learning rates
 DETAIL_CHUNK = 256                  # rows per chunk for histograms and probes (bigger rows)
 OVERVIEW_BLOCK = 256                # steps per row of the min/max overview
-FINGERPRINT_WIDTH = 20              # see nbkit.replay.fingerprint
 
 
 def write_json_atomic(path: Path, data: dict) -> None:

@@ -11,7 +11,8 @@ from pathlib import Path
 import numpy as np
 
 from nbkit.measure.quantities import HISTOGRAM_BINS, HISTOGRAM_LOW, QUANTITIES
-from nbkit.store.files import FINGERPRINT_WIDTH, STEP_CHUNK
+from nbkit.measure.fingerprint import FINGERPRINT_WIDTH
+from nbkit.store.files import STEP_CHUNK
 from nbkit.store.writer import RecordingWriter
 
 PROBE_FIELDS = ("grad", "update", "first_moment", "second_moment", "momentum_factor", "scale_factor", "residual")

@@ -16,7 +16,8 @@ from pathlib import Path
 import numpy as np
 
 from nbkit.store import keyframes as kf
-from nbkit.store.files import (COMMITTED_FILE, DETAIL_CHUNK, FINGERPRINT_WIDTH, FORMAT_VERSION, META_FILE,
+from nbkit.measure.fingerprint import FINGERPRINT_WIDTH
+from nbkit.store.files import (COMMITTED_FILE, DETAIL_CHUNK, FORMAT_VERSION, META_FILE,
                                OVERVIEW_BLOCK, STEP_CHUNK, write_json_atomic)
 
 KEYFRAME_BUDGET_BYTES = 1 << 30   # above this estimated total, older keyframes are thinned

@@ -1,4 +1,5 @@
-"""Optimizer adapters: which state tensor is which moment, and how each update splits into factors.
+"""Update rules of the torch.optim optimizers: which state tensor is which moment, and how each update
+splits into factors.
 
 For every coordinate, gain = Δθ / (-lr·g) = momentum factor × scale factor × residual (DESIGN.md §2).
 Each adapter below follows the update rule of the named torch.optim page (PyTorch 2.13 documentation,
@@ -62,7 +63,6 @@ class Adapter:
     factors: object = None          # callable(StepContext) -> Factors | None
     gain_applicable: bool = True    # False where post-step gradients do not belong to the update
     notes: str = ""
-    renamed: dict = field(default_factory=dict)
     before_keys: tuple = ()         # state keys the factors need from before the step (sampled pre-step)
 
     def probe_field(self, state_key: str) -> str:

@@ -9,7 +9,9 @@ import json
 import sys
 from dataclasses import fields
 
+import nbkit
 from nbkit.analyze.findings import Thresholds
+from nbkit.errors import NbkitError
 
 
 def add_arguments(parser) -> None:
@@ -52,8 +54,6 @@ def _table(run_path, findings) -> str:
 
 
 def run(args) -> int:
-    import nbkit
-    from nbkit.errors import NbkitError
 
     try:
         thresholds = _parse_thresholds(args.thresholds)

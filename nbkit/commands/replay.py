@@ -9,6 +9,7 @@ from __future__ import annotations
 import importlib
 import sys
 
+import nbkit
 from nbkit.errors import NbkitError, ReplayError
 
 
@@ -62,7 +63,6 @@ def parse_optimizers(specs: list[str]) -> dict | None:
 
 
 def run(args) -> int:
-    import nbkit
 
     try:
         setup = load_object(args.setup, "--setup")

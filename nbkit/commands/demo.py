@@ -10,6 +10,11 @@ import sys
 import time
 from pathlib import Path
 
+import nbkit
+from nbkit.demo import scenario
+from nbkit.errors import NbkitError
+from nbkit.views.report import write_report
+
 
 def add_arguments(parser):
     parser.add_argument("--out", default="demo-out", help="output folder (default: demo-out)")
@@ -28,9 +33,6 @@ def spike_start(findings, run) -> int:
 
 
 def run_demo(out: Path, steps: int | None = None) -> Path:
-    import nbkit
-    from nbkit.demo import scenario
-    from nbkit.views.report import write_report
 
     out.mkdir(parents=True, exist_ok=True)
     steps = steps or scenario.STEPS
@@ -76,7 +78,6 @@ def run_demo(out: Path, steps: int | None = None) -> Path:
 
 
 def run(args) -> int:
-    from nbkit.errors import NbkitError
 
     try:
         run_demo(Path(args.out), args.steps)

@@ -1,6 +1,12 @@
 """`nbkit report RUN [RUN ...] -o report.html`: the static HTML report of any recordings."""
 from __future__ import annotations
 
+import sys
+
+from nbkit.errors import RecordingError
+from nbkit.store.reader import load
+from nbkit.views.report import write_report
+
 
 def add_arguments(parser):
     parser.add_argument("runs", nargs="+", help="recording folders; the first is the reference run")
@@ -9,11 +15,7 @@ def add_arguments(parser):
 
 
 def run(args) -> int:
-    import sys
 
-    from nbkit.errors import RecordingError
-    from nbkit.store.reader import load
-    from nbkit.views.report import write_report
 
     try:
         runs = [load(path) for path in args.runs]

@@ -16,8 +16,7 @@ import numpy as np
 import torch
 from torch.utils._pytree import tree_flatten
 
-from nbkit.store.files import FINGERPRINT_WIDTH
-
+FINGERPRINT_WIDTH = 20   # float64 values per fingerprint (layout in the module docstring)
 SAMPLES = FINGERPRINT_WIDTH - 4
 
 

@@ -1,14 +1,15 @@
 """`nbkit info RUN`: what a recording holds, in a few lines."""
 from __future__ import annotations
 
+from nbkit.errors import RecordingError
+from nbkit.store.reader import load
+
 
 def add_arguments(parser):
     parser.add_argument("run", nargs="+", help="recording folder(s)")
 
 
 def run(args) -> int:
-    from nbkit.errors import RecordingError
-    from nbkit.store.reader import load
 
     status = 0
     for path in args.run:

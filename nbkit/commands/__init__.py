@@ -1,0 +1,1 @@
+"""The command-line commands, one module each: add_arguments(parser) and run(args) -> int."""
