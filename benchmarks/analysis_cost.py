@@ -26,7 +26,7 @@ import numpy as np
 import torch
 
 from nbkit.analyze.curvature import hessian_vector_product, second_order, sharpness
-from nbkit.analyze.during_recording import RECORDING_TOL
+from nbkit.record.estimates import RECORDING_TOL
 from nbkit.analyze.noise import noise_parts
 
 HVP_BUDGET = 3.0

@@ -25,7 +25,8 @@ import torch
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 import nbkit  # noqa: E402
-from nbkit.replay.replay import _fetcher, replay  # noqa: E402
+from nbkit.replay.loop import fetcher as _fetcher
+from nbkit.replay.replay import replay  # noqa: E402
 from paired import median_interval  # noqa: E402
 
 _generator = torch.Generator().manual_seed(0)

@@ -1,46 +1,14 @@
 """nbkit: record a PyTorch training run, scrub through it, replay it with another optimizer."""
-__version__ = "0.1.0"
 
+from nbkit.version import __version__
+from nbkit.record.attach import record
 from nbkit.record.recorder import Recorder
-from nbkit.store.reader import Recording, load
+from nbkit.recording import Recording, load
 from nbkit.replay.replay import replay
 from nbkit.errors import NbkitError, RecorderError, RecorderWarning, RecordingError, RecordingWarning, ReplayError
 from nbkit.record.distributed import record_local_gradients
 from nbkit.analyze.curvature import sharpness
 from nbkit.analyze.noise import noise_scale
-
-
-def record(model, optimizer, path, *, every=1, probes=64, keyframe_every=100, criterion=None, step_fn=None,
-           curvature_every=0, noise_every=0, flush_seconds=5.0, expected_steps=None, strict=False,
-           resume=False, overwrite=False) -> Recorder:
-    """Attach a recorder to `model` and `optimizer`; every optimizer.step() becomes a recorded row.
-
-    every=1: heavy per-tensor quantities every N steps (loss, learning rates, fingerprints every step).
-    probes=64: probe coordinates per tensor kept in full every recorded step.
-    keyframe_every=100: keyframe stride (plus step 0 and the final state at close()).
-    criterion=None: an nn.Module loss; its training-mode outputs give each step's loss.
-    step_fn=None: step_fn(model, batch) -> loss, used for curvature and noise estimates.
-    curvature_every=0, noise_every=0: sharpness / gradient noise scale every N steps (0 = off).
-    flush_seconds=5.0: at most this much recorded time is lost in a crash.
-    expected_steps=None: lets record() refuse when the disk cannot hold the run.
-    strict=False: True makes recorder errors raise instead of warning once.
-    resume=False: True appends to an existing recording; steps continue (an int names the restart
-        step; an overlap or gap is stated in the metadata under "resumes").
-    Under torch.distributed only rank 0 records; other ranks get an InactiveRecorder.
-    overwrite=False: True replaces an existing recording at `path`.
-    """
-    from nbkit.record import distributed
-
-    # Under torch.distributed one rank records (gradients are already averaged); the others pay
-    # only this rank check. A DDP wrapper is unwrapped so tensor names have no "module." prefix.
-    rank, _ = distributed.rank_and_world()
-    if rank != 0:
-        return distributed.InactiveRecorder(path, probes, rank)
-    return Recorder(distributed.unwrap(model), optimizer, path, every=every, probes=probes,
-                    keyframe_every=keyframe_every, criterion=criterion, step_fn=step_fn,
-                    curvature_every=curvature_every, noise_every=noise_every, flush_seconds=flush_seconds,
-                    expected_steps=expected_steps, strict=strict, resume=resume, overwrite=overwrite,
-                    _extra_meta=distributed.distributed_meta())
 
 
 def explore(run, *, quantity="update_ratio"):

@@ -260,7 +260,7 @@ class ThreadSpy:
 def test_the_recorded_thread_count_is_set_for_the_replay_and_restored(recorded, tmp_path):
     import shutil
 
-    from nbkit.store.meta_update import update_meta
+    from nbkit.store.annotate import update_meta
 
     copy = tmp_path / "two-threads"
     shutil.copytree(recorded.path, copy)

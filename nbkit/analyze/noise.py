@@ -56,7 +56,7 @@ def two_batch_estimates(small_sq: float, big_sq: float, small: float, big: float
     return float(grad_sq), float(trace_cov)
 
 
-def _batch_size(batch) -> int:
+def batch_size(batch) -> int:
     tensors = [t for t in tree_flatten(batch)[0] if isinstance(t, torch.Tensor) and t.dim() > 0]
     if not tensors:
         raise AnalysisError("The batch holds no tensor with a batch dimension; pass the batch step_fn takes, "
@@ -145,7 +145,7 @@ def noise_parts(model, step_fn, batch, *, params=None, method="auto") -> NoisePa
     params = [p for p in model.parameters() if p.requires_grad] if params is None else list(params)
     if not params:
         raise AnalysisError("No parameter requires grad: there is no gradient to estimate the noise of")
-    size = _batch_size(batch)
+    size = batch_size(batch)
     if size < 2:
         raise AnalysisError(f"The gradient noise scale needs a batch of at least 2 examples, got {size}")
     with untouched(model), second_order():

@@ -2,7 +2,7 @@
 from __future__ import annotations
 
 from nbkit.errors import RecordingError
-from nbkit.store.reader import load
+from nbkit.recording import load
 
 
 def add_arguments(parser):

@@ -4,7 +4,7 @@ from __future__ import annotations
 import sys
 
 from nbkit.errors import RecordingError
-from nbkit.store.reader import load
+from nbkit.recording import load
 from nbkit.views.report import write_report
 
 

@@ -20,7 +20,8 @@ def _accumulation_dtype(tensor):
     return torch.promote_types(tensor.dtype, torch.float32)
 
 
-def _norms(tensors):
+def norms(tensors):
+    """(T,) float64 L2 norms, accumulated in at least float32 (float64 for float64 tensors)."""
     if not tensors:
         return torch.zeros(0, dtype=torch.float32)
     dtypes = {_accumulation_dtype(t) for t in tensors}
@@ -49,8 +50,8 @@ def whole_tensor_statistics(grads, minus_updates, previous_grads, previous_norms
     """
     T = len(grads)
     empty = torch.zeros(0, dtype=torch.float64)
-    grad_norm = _norms(grads)
-    update_norm = _norms(minus_updates)
+    grad_norm = norms(grads)
+    update_norm = norms(minus_updates)
     nan = torch.full((), NAN, dtype=torch.float32)
     grad_max, update_dot, previous_dot, dead_rows = [], [], [], []
     for g, minus_update, previous in zip(grads, minus_updates, previous_grads):

@@ -7,19 +7,23 @@ grad_cosine and sign_flip). Per-tensor buffers are views into them, so each copy
 call and the sampled coordinates of all tensors of a block are one gather with global indices.
 The training thread does only what must see tensors that change before the next step (the
 copies); the statistics read the block's own buffers and the optimizer state, which only the next
-optimizer.step() changes, on a background thread (`measure_block`).
+optimizer.step() changes, on a background thread (`block_statistics`; when: nbkit.record.pacing).
 """
 from __future__ import annotations
 
 import math
-import threading
-import time
-from concurrent.futures import Future
+from dataclasses import dataclass
+from typing import Callable
 
 import numpy as np
 import torch
 
-from nbkit.measure.step_stats import _norms, sampled_statistics, whole_tensor_statistics
+from nbkit.measure.quantities import QUANTITIES
+from nbkit.measure.step_stats import norms, sampled_statistics, whole_tensor_statistics
+from nbkit.measure.update_rules import Adapter
+from nbkit.store.layout import Row
+
+QUANTITY_INDEX = {q: i for i, q in enumerate(QUANTITIES)}
 
 
 class Block:
@@ -141,153 +145,6 @@ def _gather(flat: torch.Tensor, index: torch.Tensor, dtype) -> torch.Tensor:
     return flat.index_select(0, index.reshape(-1)).view(index.shape).to(dtype)
 
 
-_worker = None
-BACKGROUND_CPU = [0.0]      # CPU seconds spent in _measure_all so far (all recorders; for benchmarks)
-
-
-def _executor():
-    """One background thread shared by all recorders: the statistics of step s run there while
-    the training thread goes on with step s + 1's forward and backward pass."""
-    global _worker
-    if _worker is None:
-        from concurrent.futures import ThreadPoolExecutor
-
-        _worker = ThreadPoolExecutor(max_workers=1, thread_name_prefix="nbkit-statistics")
-    return _worker
-
-
-@torch.no_grad()
-def measure_block(block: Block, rows: list[int], optimizer, adapter, probes: int, *, deliver) -> dict:
-    """Post-step: statistics of the tensors `rows` of `block` (those with a dense gradient).
-
-    The training thread does what must see tensors that change before the next step: θ_after −
-    θ_before into the block's buffer, a copy of the gradients (the next backward pass changes them),
-    ‖θ_before‖ and a sample of θ_before, the parameter group (a scheduler changes it). The rest runs
-    on the statistics thread (or in the hook: `Pacer.submit(..., background=False)`): it reads the block's own buffers and the
-    optimizer state, which only optimizer.step() changes (every step's pre-hook waits for this
-    work). It ends by calling deliver(results) with (whole-tensor dict of (R,) tensors, sampled dict
-    of (R,) tensors, histograms (3, R, bins + 2), probe values dict of (R, probes) tensors,
-    state_nonfinite (R,) or None). Returns that work, for `Pacer.submit`; wait(block) must come
-    before the block's buffers are reused or the optimizer steps again.
-    """
-    wait(block)
-    everything = len(rows) == len(block.tensors)
-    pick = (lambda xs: xs) if everything else (lambda xs: [xs[r] for r in rows])
-    tensors = pick(block.tensors)
-    grads = [t.param.grad for t in tensors]
-    params = [t.param.detach() for t in tensors]
-    befores = pick(block.befores)
-    current, previous = block.grads[block.turn], block.grads[1 - block.turn]
-    block.turn = 1 - block.turn                      # the next step writes the other gradient buffer
-    flat_index = block.flat_index if everything else block.flat_index[rows]
-
-    weight_norm = _norms(befores)                                                 # ‖θ before‖
-    weight_nonfinite = torch.zeros(len(rows), dtype=torch.float64)
-    if not bool(torch.isfinite(weight_norm).all()):                               # rare: count them
-        weight_nonfinite = torch.stack([(~torch.isfinite(b)).sum() for b in befores]).double()
-    theta_before = _gather(block.before_flat, flat_index, block.work)            # (R, S)
-    torch._foreach_sub_(befores, params)                                          # befores := −Δθ
-    torch._foreach_copy_(pick(current), grads)
-    before = {k: v if everything else v[rows] for k, v in block.state_before.items()}
-    # a scheduler changes the group after the step: copy it now
-    group = {k: v for k, v in optimizer.param_groups[block.group].items() if k != "params"}
-    has_previous = [block.has_previous[r] for r in rows]
-    previous_norms = torch.tensor([block.previous_norms[r] for r in rows], dtype=torch.float64)
-    job = dict(block=block, rows=rows, everything=everything, current=pick(current),
-               previous=[p if h else None for p, h in zip(pick(previous), has_previous)],
-               minus_update=befores, flat_index=flat_index, theta_before=theta_before, weight_norm=weight_norm,
-               weight_nonfinite=weight_nonfinite, previous_norms=previous_norms, before=before,
-               optimizer=optimizer, params=[t.param for t in tensors], group=group, adapter=adapter, probes=probes,
-               current_flat=block.grad_flats[1 - block.turn], has_previous=has_previous, deliver=deliver)
-    for r in rows:
-        block.has_previous[r] = True
-    return job
-
-
-class StatisticsTask:
-    """The statistics of one step's blocks (`measure_block` jobs), run as one task on the
-    statistics thread. It is put on that thread only when started, so a task held back by its
-    Pacer never occupies the thread that other recorders share; waiting for it starts it."""
-
-    def __init__(self, jobs: list[dict], pacer: "Pacer"):
-        self.jobs, self.pacer, self.future = jobs, pacer, None
-        self._lock = threading.Lock()
-        for job in jobs:
-            job["block"].pending = self
-
-    def start(self) -> None:
-        with self._lock:
-            if self.future is None:
-                self.future = _executor().submit(_measure_all, self.jobs, self.pacer)
-
-    def run_here(self) -> None:
-        self.future = Future()
-        try:
-            self.future.set_result(_measure_all(self.jobs, self.pacer))
-        except Exception as exc:
-            self.future.set_exception(exc)
-
-    def done(self) -> bool:
-        return self.future is not None and self.future.done()
-
-    def result(self):
-        self.start()
-        return self.future.result()
-
-    def exception(self):
-        self.start()
-        return self.future.exception()
-
-
-class Pacer:
-    """When a recorder's statistics run: at once, or held until the next forward pass ends.
-
-    A forward pass through many small modules is mostly Python; statistics computed at the same
-    time compete with it for the GIL and slow it. The backward pass runs in torch's C++ engine
-    without the GIL. So when the statistics have taken well under the time from the end of a
-    forward pass to the next optimizer step (HOLD_BELOW, both measured as moving averages), they
-    wait for the forward pass to end. Otherwise (a model whose backward pass is short next to its
-    statistics) they start at once, so the next step's pre-hook does not wait for them.
-    """
-
-    HOLD_BELOW = 0.6
-    SMOOTHING = 0.2             # weight of the newest measurement in the moving averages
-
-    def __init__(self):
-        self.held: StatisticsTask | None = None
-        self.statistics_seconds: float | None = None
-        self.backward_seconds: float | None = None       # forward's end to the next optimizer step
-        self._forward_end: float | None = None
-
-    def submit(self, jobs: list[dict], background: bool = True) -> StatisticsTask:
-        task = StatisticsTask(jobs, self)
-        if not background:
-            task.run_here()
-        elif (self.statistics_seconds is not None and self.backward_seconds is not None
-              and self.statistics_seconds < self.HOLD_BELOW * self.backward_seconds):
-            self.held = task
-        else:
-            task.start()
-        return task
-
-    def forward_ended(self) -> None:
-        self._forward_end = time.perf_counter()
-        if self.held is not None:
-            task, self.held = self.held, None
-            task.start()
-
-    def step_started(self) -> None:
-        if self._forward_end is not None:
-            self.backward_seconds = self._average(self.backward_seconds, time.perf_counter() - self._forward_end)
-            self._forward_end = None
-
-    def statistics_took(self, seconds: float) -> None:
-        self.statistics_seconds = self._average(self.statistics_seconds, seconds)
-
-    def _average(self, old: float | None, new: float) -> float:
-        return new if old is None else (1 - self.SMOOTHING) * old + self.SMOOTHING * new
-
-
 def wait_all(blocks: list[Block]) -> None:
     """Before an optimizer step that is not measured: the last statistics must have read the state."""
     for block in blocks:
@@ -301,30 +158,96 @@ def wait(block: Block) -> None:
         pending.exception()                          # waits; the error is reported with the row
 
 
+@dataclass
+class BlockJob:
+    """What the statistics of one block's step need, taken on the training thread (prepare_block).
+    R = the block's tensors measured at this step; S = sampled coordinates per tensor."""
+
+    block: Block
+    rows: list[int]                 # the measured tensors' positions in the block
+    everything: bool                # rows == every tensor of the block
+    current: list                   # this step's gradients (the block's copies)
+    previous: list                  # the previous recorded gradients, None where there is none
+    minus_update: list              # −Δθ per tensor (the block's buffers)
+    flat_index: torch.Tensor        # (R, S) sampled coordinates in the block's flat buffers
+    current_flat: torch.Tensor      # the flat buffer holding `current`
+    theta_before: torch.Tensor      # (R, S) sampled θ before the step
+    weight_norm: torch.Tensor       # (R,) ‖θ before‖
+    weight_nonfinite: torch.Tensor  # (R,) non-finite coordinates of θ before
+    previous_norms: torch.Tensor    # (R,) norms of the previous gradients
+    has_previous: list[bool]
+    before: dict                    # state key -> (R, S) sampled optimizer state before the step
+    optimizer: object
+    params: list                    # the parameters (their state is read after the step)
+    group: dict                     # the parameter group's settings at this step
+    adapter: Adapter
+    probes: int
+    deliver: Callable[["BlockStatistics"], None]   # called with the results on the statistics thread
+
+
+@dataclass
+class BlockStatistics:
+    """The statistics of one block's step: R tensors, in the job's row order."""
+
+    whole: dict                     # exact quantity -> (R,) tensor (nbkit.measure.step_stats)
+    sampled: dict                   # sampled quantity -> (R,) tensor
+    histograms: torch.Tensor        # (3, R, HISTOGRAM_BINS + 2) grad, update, gain
+    probes: dict                    # probe field -> (R, probes) tensor
+    state_nonfinite: torch.Tensor | None   # (R,) non-finite optimizer state values, None without state
+
+
 @torch.no_grad()
-def _measure_all(jobs: list[dict], pacer: Pacer | None = None):
-    """The statistics of one step, block by block; the first error is raised after every block ran."""
-    started, started_wall = time.thread_time(), time.perf_counter()
-    error = None
-    try:
-        for job in jobs:
-            try:
-                job["deliver"](_measure_timed(job))
-            except Exception as exc:             # noqa: BLE001 - raised below, after the other blocks
-                error = error or exc
-    finally:
-        BACKGROUND_CPU[0] += time.thread_time() - started
-        if pacer is not None:
-            pacer.statistics_took(time.perf_counter() - started_wall)
-    if error is not None:
-        raise error
+def prepare_block(block: Block, rows: list[int], optimizer, adapter: Adapter, probes: int, *,
+                  deliver) -> BlockJob:
+    """Post-step, on the training thread: what the statistics of the tensors `rows` of `block`
+    (those with a dense gradient) need from tensors that change before the next step.
+
+    That is θ_after − θ_before into the block's buffer, a copy of the gradients (the next backward
+    pass changes them), ‖θ_before‖ and a sample of θ_before, and the parameter group (a scheduler
+    changes it). `block_statistics(job)` does the rest, on the statistics thread or in the hook
+    (nbkit.record.pacing): it reads the block's own buffers and the optimizer state, which only
+    optimizer.step() changes (every step's pre-hook waits for it). wait(block) must come before the
+    block's buffers are reused or the optimizer steps again.
+    """
+    wait(block)
+    everything = len(rows) == len(block.tensors)
+    pick = (lambda xs: xs) if everything else (lambda xs: [xs[r] for r in rows])
+    tensors = pick(block.tensors)
+    grads = [t.param.grad for t in tensors]
+    params = [t.param.detach() for t in tensors]
+    befores = pick(block.befores)
+    current, previous = block.grads[block.turn], block.grads[1 - block.turn]
+    block.turn = 1 - block.turn                      # the next step writes the other gradient buffer
+    flat_index = block.flat_index if everything else block.flat_index[rows]
+
+    weight_norm = norms(befores)                                                  # ‖θ before‖
+    weight_nonfinite = torch.zeros(len(rows), dtype=torch.float64)
+    if not bool(torch.isfinite(weight_norm).all()):                               # rare: count them
+        weight_nonfinite = torch.stack([(~torch.isfinite(b)).sum() for b in befores]).double()
+    theta_before = _gather(block.before_flat, flat_index, block.work)            # (R, S)
+    torch._foreach_sub_(befores, params)                                          # befores := −Δθ
+    torch._foreach_copy_(pick(current), grads)
+    before = {k: v if everything else v[rows] for k, v in block.state_before.items()}
+    # a scheduler changes the group after the step: copy it now
+    group = {k: v for k, v in optimizer.param_groups[block.group].items() if k != "params"}
+    has_previous = [block.has_previous[r] for r in rows]
+    previous_norms = torch.tensor([block.previous_norms[r] for r in rows], dtype=torch.float64)
+    job = BlockJob(block=block, rows=rows, everything=everything, current=pick(current),
+                   previous=[p if h else None for p, h in zip(pick(previous), has_previous)],
+                   minus_update=befores, flat_index=flat_index, current_flat=block.grad_flats[1 - block.turn],
+                   theta_before=theta_before, weight_norm=weight_norm, weight_nonfinite=weight_nonfinite,
+                   previous_norms=previous_norms, has_previous=has_previous, before=before, optimizer=optimizer,
+                   params=[t.param for t in tensors], group=group, adapter=adapter, probes=probes, deliver=deliver)
+    for r in rows:
+        block.has_previous[r] = True
+    return job
 
 
-def _optimizer_state(job: dict):
+def _optimizer_state(job: BlockJob):
     """The sampled optimizer state after the step, and its scalars, read on the statistics thread:
     only optimizer.step() changes the state, and the next step's pre-hook waits for this job."""
-    block, rows = job["block"], job["rows"]
-    states, scalars = zip(*[state_tensors(job["optimizer"], p) for p in job["params"]])
+    block, rows = job.block, job.rows
+    states, scalars = zip(*[state_tensors(job.optimizer, p) for p in job.params])
     after = _sample_state(block, rows, list(states))
     scalar_values = {k: torch.tensor([[s.get(k, math.nan)] for s in scalars], dtype=block.work)
                      for k in sorted(set().union(*[s.keys() for s in scalars]))}
@@ -333,58 +256,57 @@ def _optimizer_state(job: dict):
     return after, scalar_values, steps
 
 
-def _measure_timed(job: dict):
-    block, rows, everything = job["block"], job["rows"], job["everything"]
+def block_statistics(job: BlockJob) -> BlockStatistics:
+    """The statistics of a prepared block (nbkit.measure.step_stats on the job's buffers); also
+    keeps the block's previous gradient sample and norms for the next recorded step."""
+    block, rows, everything = job.block, job.rows, job.everything
     after, scalar_values, steps = _optimizer_state(job)
     valid = block.valid if everything else block.valid[rows]
     pad = block.pad if everything else block.pad[rows]
-    whole = whole_tensor_statistics(job["current"], job["minus_update"], job["previous"], job["previous_norms"],
-                                    job["weight_norm"])
-    whole["weight_nonfinite"] = job["weight_nonfinite"]
-    update = _gather(block.before_flat, job["flat_index"], block.work).neg_()     # (R, S) Δθ
-    grad = _gather(job["current_flat"], job["flat_index"], block.work)            # (R, S)
+    whole = whole_tensor_statistics(job.current, job.minus_update, job.previous, job.previous_norms,
+                                    job.weight_norm)
+    whole["weight_nonfinite"] = job.weight_nonfinite
+    update = _gather(block.before_flat, job.flat_index, block.work).neg_()     # (R, S) Δθ
+    grad = _gather(job.current_flat, job.flat_index, block.work)               # (R, S)
     finite = bool(torch.isfinite(torch.stack([whole["grad_norm"], whole["update_norm"]])).all())
     previous_sample = None
-    if block.previous_sample is not None and all(job["has_previous"]):
+    if block.previous_sample is not None and all(job.has_previous):
         previous_sample = block.previous_sample if everything else block.previous_sample[rows]
-    group = job["group"]
-    sampled, hist, probe_values = sampled_statistics(
-        grad=grad, theta_before=job["theta_before"], update=update, valid=valid, before=job["before"],
-        after=after, scalars=scalar_values, step=steps, group=group, lr=float(group["lr"]),
-        adapter=job["adapter"], previous_grad=previous_sample, probes=job["probes"], finite=finite, pad=pad)
+    sampled, histograms, probe_values = sampled_statistics(
+        grad=grad, theta_before=job.theta_before, update=update, valid=valid, before=job.before,
+        after=after, scalars=scalar_values, step=steps, group=job.group, lr=float(job.group["lr"]),
+        adapter=job.adapter, previous_grad=previous_sample, probes=job.probes, finite=finite, pad=pad)
     state_nonfinite = None
     if after:
         state_nonfinite = sum((~torch.isfinite(v) & valid).sum(dim=1) for v in after.values())
-    norms = whole["grad_norm"].tolist()
+    grad_norms = whole["grad_norm"].tolist()
     for i, r in enumerate(rows):
-        block.previous_norms[r] = norms[i]
+        block.previous_norms[r] = grad_norms[i]
     if everything:
         block.previous_sample = grad
     else:
         if block.previous_sample is None:
             block.previous_sample = torch.full(block.local.shape, math.nan, dtype=block.work)
         block.previous_sample[rows] = grad
-    return whole, sampled, hist, probe_values, state_nonfinite
+    return BlockStatistics(whole, sampled, histograms, probe_values, state_nonfinite)
 
 
-def deliver(row: dict, ks: list, probe_counts: list, q_index: dict, n_tensors: int, n_probes: int,
-            results) -> None:
-    """Write one block's statistics into a recorder row's arrays (runs on the statistics thread).
+def deliver(row: Row, ks: list, probe_counts: list, n_probes: int, results: BlockStatistics) -> None:
+    """Write one block's statistics into a recorder row (runs on the statistics thread).
 
-    ks: the block's rows in the recording; probe_counts: probe coordinates of each tensor."""
-    whole, sampled, hist, probe_values, state_nonfinite = results
-    summary, histograms = row["q"], row["hist"]
-    for name, values in (*whole.items(), *sampled.items()):
-        i = q_index.get(name)
+    ks: the block's tensors' positions in the recording; probe_counts: probe coordinates of each."""
+    for name, values in (*results.whole.items(), *results.sampled.items()):
+        i = QUANTITY_INDEX.get(name)
         if i is not None:
-            summary[i, ks] = values.numpy()
-    if state_nonfinite is not None:
-        summary[q_index["state_nonfinite"], ks] = state_nonfinite.numpy()
-    histograms[:, ks, :] = hist.numpy()
-    for name, values in probe_values.items():
-        block_values = row["probes"].get(name)
+            row.quantities[i, ks] = values.numpy()
+    if results.state_nonfinite is not None:
+        row.quantities[QUANTITY_INDEX["state_nonfinite"], ks] = results.state_nonfinite.numpy()
+    row.histograms[:, ks, :] = results.histograms.numpy()
+    n_tensors = row.quantities.shape[1]
+    for name, values in results.probes.items():
+        block_values = row.probes.get(name)
         if block_values is None:
-            block_values = row["probes"][name] = np.full((n_tensors, n_probes), np.nan, dtype=np.float32)
+            block_values = row.probes[name] = np.full((n_tensors, n_probes), np.nan, dtype=np.float32)
         width = min(values.shape[1], n_probes)
         block_values[ks, :width] = values[:, :width].numpy()
         for r, count in enumerate(probe_counts):

@@ -14,18 +14,22 @@ default all-reduce hook, so DDP's averaged gradient is unchanged.
 """
 from __future__ import annotations
 
+import collections
+import contextlib
 import threading
 import warnings
+from pathlib import Path
 
 import torch
+import torch.distributed as dist
+from torch.nn.parallel import DistributedDataParallel
+from torch.utils.hooks import RemovableHandle
 
 from nbkit.errors import RecorderError, RecorderWarning
 
 
 def rank_and_world() -> tuple[int, int]:
     """(rank, world size); (0, 1) when torch.distributed is not in use."""
-    import torch.distributed as dist
-
     if dist.is_available() and dist.is_initialized():
         return dist.get_rank(), dist.get_world_size()
     return 0, 1
@@ -33,15 +37,11 @@ def rank_and_world() -> tuple[int, int]:
 
 def unwrap(model):
     """The module inside a DistributedDataParallel wrapper (its names have no "module." prefix)."""
-    from torch.nn.parallel import DistributedDataParallel
-
     return model.module if isinstance(model, DistributedDataParallel) else model
 
 
 def distributed_meta(recording_rank: int = 0) -> dict:
     """Rank metadata for the recording; empty outside torch.distributed."""
-    import torch.distributed as dist
-
     rank, world = rank_and_world()
     if world == 1 and not (dist.is_available() and dist.is_initialized()):
         return {}
@@ -54,17 +54,23 @@ class InactiveRecorder:
     """What nbkit.record returns on ranks that do not record: every method is a no-op."""
 
     active = False
+    tensors: list = []
 
     def __init__(self, path, probes: int, rank: int):
-        from pathlib import Path
-
         self.recording_path, self.probes, self.rank = Path(path), int(probes), rank
 
     def loss(self, value) -> None:
         pass
 
-    def flush(self) -> None:
+    def flush(self, wait: bool = True) -> None:
         pass
+
+    def add_step_hook(self, hook) -> RemovableHandle:
+        return RemovableHandle(collections.OrderedDict())          # this rank records no steps: the hook never runs
+
+    @contextlib.contextmanager
+    def pause(self):
+        yield self
 
     def close(self) -> None:
         pass
@@ -85,7 +91,7 @@ class _LocalGradients:
     """State of the communication hook on one rank."""
 
     def __init__(self, recorder, table: torch.Tensor, tensors: int, params, process_group):
-        self.recorder = recorder if getattr(recorder, "active", False) and hasattr(recorder, "_writer") else None
+        self.recorder = None if isinstance(recorder, InactiveRecorder) or not recorder.active else recorder
         self.table = table                          # (params, 1 + probes): recorder position, probe coordinates
         self.position = {id(p): i for i, p in enumerate(params)}
         self.tensors = tensors
@@ -125,11 +131,11 @@ class _LocalGradients:
                 total = self.pending.pop(step)
                 del self.done[step], self.buckets[step]
         if complete and self.recorder is not None and self.recorder.active:
-            self.recorder._writer.put_local(step, total.numpy())
+            self.recorder.put_local_gradients(step, total.numpy())
 
 
 def _hook(state: _LocalGradients, bucket):
-    import torch.distributed as dist
+    # optional: a torch built without distributed support has no comm hooks (nothing calls this there)
     from torch.distributed.algorithms.ddp_comm_hooks.default_hooks import allreduce_hook
 
     values = state.local_values(bucket)
@@ -153,25 +159,24 @@ def record_local_gradients(ddp_model, recorder, process_group=None) -> None:
     ranks x tensors x (1 + probes) float64 values per gradient bucket. Read back with
     Recording.local_gradients(tensor).
     """
-    import torch.distributed as dist
-    from torch.nn.parallel import DistributedDataParallel
-
     if not isinstance(ddp_model, DistributedDataParallel):
         raise RecorderError(f"record_local_gradients needs the DistributedDataParallel model, got "
                             f"{type(ddp_model).__name__}; pass the wrapper, not its .module")
     rank, _ = rank_and_world()
-    params = [p for p in ddp_model.module.parameters() if p.requires_grad]
+    named = [(name, p) for name, p in ddp_model.module.named_parameters() if p.requires_grad]
+    params = [p for _, p in named]
     probes = int(recorder.probes)
     table = torch.full((len(params), 1 + probes), -1, dtype=torch.int64)
     header = torch.zeros(1, dtype=torch.int64)
     source = 0
-    if hasattr(recorder, "_tensors"):               # the recording rank knows the tensor table
-        position = {id(p): i for i, p in enumerate(params)}
-        for k, t in enumerate(recorder._tensors):
-            if id(t.param) in position:
-                table[position[id(t.param)], 0] = k
-                table[position[id(t.param)], 1:1 + t.probes] = t.index[:t.probes]
-        header[0] = len(recorder._tensors)
+    if not isinstance(recorder, InactiveRecorder):  # the recording rank knows the tensor table
+        position = {name: i for i, (name, p) in enumerate(named)}
+        for k, name in enumerate(recorder.tensors):
+            if name in position:
+                coordinates = recorder.probe_coordinates(name)
+                table[position[name], 0] = k
+                table[position[name], 1:1 + len(coordinates)] = coordinates
+        header[0] = len(recorder.tensors)
         source = rank
     # every rank needs the same table so that rows line up; rank 0 records by default
     dist.broadcast(header, src=source, group=process_group)
@@ -179,9 +184,9 @@ def record_local_gradients(ddp_model, recorder, process_group=None) -> None:
     state = _LocalGradients(recorder, table, int(header[0]), params, process_group)
     ddp_model.register_comm_hook(state, _hook)
     if state.recorder is not None:
-        meta = dict(recorder._writer.meta.get("distributed", {}))
+        meta = dict(recorder.recorded_meta("distributed", {}))
         meta.update(local_gradients=True, local_gradient_values="per rank: grad_norm, then grad at probe coordinates")
-        recorder._writer.update_meta(distributed=meta)
+        recorder.note(distributed=meta)
 
 
 __all__ = ["InactiveRecorder", "distributed_meta", "rank_and_world", "record_local_gradients", "unwrap"]

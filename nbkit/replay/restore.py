@@ -1,4 +1,4 @@
-"""Restoring a keyframe onto copies of the user's model: parameters, optimizer state, RNG states.
+"""Restoring a keyframe onto copies of the user's model: parameter groups, optimizer state, RNG states.
 
 Everything here works on copies: the user's model and optimizer are never touched.
 """
@@ -8,29 +8,12 @@ import copy
 import importlib
 import inspect
 import random
-from collections import OrderedDict
 
 import numpy as np
 import torch
 
 from nbkit.errors import ReplayError
-
-
-# --- model copies -------------------------------------------------------------------------------
-def copy_model(model: torch.nn.Module) -> torch.nn.Module:
-    """A deep copy of `model` without the hooks an nbkit Recorder attached (they would copy the
-    recorder itself). The user's own hooks are kept."""
-    from nbkit.record.recorder import Recorder
-
-    memo = {}
-    for module in model.modules():
-        for attribute, value in vars(module).items():
-            if attribute.endswith("_hooks") and isinstance(value, dict):
-                kept = OrderedDict((k, h) for k, h in value.items()
-                                   if not isinstance(getattr(h, "__self__", None), Recorder))
-                if len(kept) != len(value):
-                    memo[id(value)] = kept
-    return copy.deepcopy(model, memo)
+from nbkit.store.layout import OPTIMIZER_ONLY_LAYER
 
 
 def parameter_groups(meta: dict, model: torch.nn.Module, extra_params: dict) -> list[dict]:
@@ -57,7 +40,7 @@ def check_model(meta: dict, model: torch.nn.Module) -> None:
     """The model must have the recorded tensors with the recorded shapes."""
     named = dict(model.named_parameters())
     for t in meta["tensors"]:
-        if t["layer"] == "(optimizer only)":
+        if t["layer"] == OPTIMIZER_ONLY_LAYER:
             continue
         if t["name"] not in named:
             raise ReplayError(f"The model given to replay() has no tensor {t['name']!r}, which the recording "

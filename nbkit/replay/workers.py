@@ -8,7 +8,7 @@ from __future__ import annotations
 import pickle
 
 from nbkit.errors import ReplayError
-from nbkit.replay.replay import run_plan
+from nbkit.replay.loop import run_plan
 
 
 def in_workers(plan, model, step_fn, batches, workers, progress) -> dict:

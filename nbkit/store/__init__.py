@@ -1,4 +1,1 @@
-"""The on-disk format: writer, reader, keyframes. Nothing else in nbkit touches files."""
-from nbkit.store.reader import Recording, load
-
-__all__ = ["Recording", "load"]
+"""The on-disk format: layout, writer, reader, keyframes. Nothing else in nbkit touches files."""

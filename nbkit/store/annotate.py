@@ -1,4 +1,4 @@
-"""Annotating a closed recording: write values of one series at given rows after the fact.
+"""Annotating a closed recording: metadata entries and values of one series, written after the fact.
 
 Used by run.curvature() to fill in sharpness at keyframes. Only committed rows can be written, only
 while no recorder writes the recording, and the min/max overview blocks that hold the rows are
@@ -6,13 +6,16 @@ recomputed so long timelines show the new values.
 """
 from __future__ import annotations
 
-import warnings
 from pathlib import Path
 
 import numpy as np
+import zarr
 
 from nbkit.errors import RecordingError
-from nbkit.store.files import COMMITTED_FILE, META_FILE, OVERVIEW_BLOCK, read_json
+from nbkit.store import layout
+from nbkit.store.arrays import minmax
+from nbkit.store.files import read_json, write_json_atomic
+from nbkit.store.layout import COMMITTED_FILE, META_FILE, OVERVIEW_BLOCK
 
 
 def write_series(path, name: str, rows, values) -> None:
@@ -21,8 +24,6 @@ def write_series(path, name: str, rows, values) -> None:
     rows: row indices (not step numbers; use run.rows_for_steps or searchsorted on run.steps);
     values: one number per row (written to every tensor's column) or a (rows, tensors) array.
     """
-    import zarr
-
     path = Path(path)
     if not (path / META_FILE).is_file():
         raise RecordingError(f"No recording found at {str(path)!r}: it has no {META_FILE}")
@@ -45,17 +46,26 @@ def write_series(path, name: str, rows, values) -> None:
     if not len(rows):
         return
     group = zarr.open_group(str(path), mode="r+", use_consolidated=False)
-    series = group[f"q/{name}"]
+    series = group[layout.series_array(name)]
     data = series[0:n_rows]
     data[rows] = values
     series[0:n_rows] = data
-    overview_name = f"overview/{name}"
+    overview_name = layout.overview_array(name)
     if overview_name not in group:
         return
     overview = group[overview_name]
     for block in np.unique(rows // OVERVIEW_BLOCK):
         part = data[block * OVERVIEW_BLOCK:min((block + 1) * OVERVIEW_BLOCK, n_rows)]
-        with warnings.catch_warnings(), np.errstate(all="ignore"):
-            warnings.simplefilter("ignore", RuntimeWarning)     # all-NaN columns stay NaN, as the writer's
-            low, high = np.nanmin(part, axis=0), np.nanmax(part, axis=0)
+        low, high = minmax(part)                         # all-NaN columns stay NaN, as the writer's
         overview[int(block)] = np.stack([low, high], axis=-1).astype(np.float32)
+
+
+def update_meta(path, **changes) -> None:
+    """Merge `changes` into the metadata of the recording at `path` (atomic rewrite). Call only on a
+    recording no writer holds open; existing keys other than those in `changes` are kept."""
+    meta_path = Path(path) / META_FILE
+    if not meta_path.is_file():
+        raise RecordingError(f"No recording found at {str(path)!r}: it has no {META_FILE}")
+    meta = read_json(meta_path)
+    meta.update(changes)
+    write_json_atomic(meta_path, meta)

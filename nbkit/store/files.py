@@ -1,4 +1,4 @@
-"""Small file helpers shared by the writer and reader: atomic JSON and the recording's layout."""
+"""File helpers shared by the store's modules: atomic JSON writes, JSON reads, what is a recording."""
 from __future__ import annotations
 
 import json
@@ -6,13 +6,8 @@ import os
 import tempfile
 from pathlib import Path
 
-FORMAT_VERSION = 1
-META_FILE = "nbkit.json"            # what the recording is: tensors, optimizer, settings
-COMMITTED_FILE = "committed.json"   # how many rows are safely on disk; published after the data
-KEYFRAME_DIR = "keyframes"
-STEP_CHUNK = 1024                   # rows per chunk for summaries, loss, learning rates
-DETAIL_CHUNK = 256                  # rows per chunk for histograms and probes (bigger rows)
-OVERVIEW_BLOCK = 256                # steps per row of the min/max overview
+from nbkit.store.layout import META_FILE
+
 
 
 def write_json_atomic(path: Path, data: dict) -> None:

@@ -14,12 +14,13 @@ from pathlib import Path
 import torch
 
 from nbkit.errors import RecordingError
-from nbkit.store.files import KEYFRAME_DIR, read_json, write_json_atomic
+from nbkit.store.files import read_json, write_json_atomic
+from nbkit.store.layout import KEYFRAME_DIR
 
 _TENSOR, _TUPLE, _ITEMS = "__tensor__", "__tuple__", "__items__"
 
 
-class Snapshot:
+class Keyframe:
     """State copied on the training thread, to be written later by the writer thread."""
 
     def __init__(self, step: int, state: dict):
@@ -79,16 +80,16 @@ def keyframe_paths(root: Path, step: int) -> tuple[Path, Path]:
     return folder / f"{step:010d}.safetensors", folder / f"{step:010d}.json"
 
 
-def write_keyframe(root: Path, snapshot: Snapshot, extra: dict | None = None) -> int:
+def write_keyframe(root: Path, keyframe: Keyframe, extra: dict | None = None) -> int:
     """Write tensors to a temporary name, rename, then the JSON (its presence marks completeness)."""
     from safetensors.torch import save_file
 
-    tensor_path, json_path = keyframe_paths(root, snapshot.step)
+    tensor_path, json_path = keyframe_paths(root, keyframe.step)
     tensor_path.parent.mkdir(parents=True, exist_ok=True)
     tmp = tensor_path.with_name(f".{tensor_path.name}.tmp")
-    save_file(snapshot.tensors, str(tmp), metadata={"step": str(snapshot.step)})
+    save_file(keyframe.tensors, str(tmp), metadata={"step": str(keyframe.step)})
     os.replace(tmp, tensor_path)
-    write_json_atomic(json_path, {"step": snapshot.step, "state": snapshot.skeleton,
+    write_json_atomic(json_path, {"step": keyframe.step, "state": keyframe.skeleton,
                                   "bytes": tensor_path.stat().st_size, **(extra or {})})
     return tensor_path.stat().st_size
 
@@ -139,3 +140,21 @@ def read_keyframe(root: Path, step: int) -> dict:
         return _decode(side["state"], tensors)
     except (KeyError, TypeError) as exc:
         raise RecordingError(f"Keyframe {str(json_path)!r} does not match its tensors ({exc!r})") from exc
+
+
+def thin_keyframes(root: Path, budget_bytes: int, kept_recent: int) -> list[int]:
+    """Keep step 0 and the newest `kept_recent` keyframes; delete every second older one while the
+    keyframes exceed `budget_bytes`. Returns the deleted steps."""
+    steps = list_keyframes(root)
+    sizes = {s: keyframe_bytes(root, s) for s in steps}
+    thinned = []
+    while sum(sizes.values()) > budget_bytes:
+        older = steps[1:-kept_recent]
+        if not older:
+            break
+        for s in older[1::2] or older[:1]:
+            delete_keyframe(root, s)
+            thinned.append(s)
+            sizes.pop(s)
+        steps = sorted(sizes)
+    return thinned

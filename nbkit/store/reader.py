@@ -1,4 +1,8 @@
-"""Reading a recording: `nbkit.load(path)` -> Recording. Works while a recorder still writes to it."""
+"""Reading a recording from disk: every stored array and keyframe, while a recorder may still write it.
+
+The analysis methods (findings, curvature) are added above the analysis layer, in nbkit.recording;
+this module only reads.
+"""
 from __future__ import annotations
 
 import os
@@ -6,23 +10,20 @@ import warnings
 from pathlib import Path
 
 import numpy as np
+import zarr
 
 from nbkit.errors import RecordingError, RecordingWarning
 from nbkit.store import keyframes as kf
-from nbkit.store.files import COMMITTED_FILE, FORMAT_VERSION, META_FILE, OVERVIEW_BLOCK, read_json
-
-HISTOGRAMS = ("grad", "update", "gain")
-
-
-def load(path) -> "Recording":
-    """Open the recording at `path` (a directory written by nbkit.record or a Recorder)."""
-    if hasattr(path, "recording_path"):          # a live Recorder
-        path = path.recording_path
-    return Recording(path)
+from nbkit.store import layout
+from nbkit.store.files import read_json
+from nbkit.store.layout import COMMITTED_FILE, FORMAT_VERSION, HISTOGRAMS, META_FILE, OVERVIEW_BLOCK
 
 
-class Recording:
-    """A finished or growing recording on disk. Call `refresh()` to see steps written since."""
+class RecordingReader:
+    """A finished or growing recording on disk. Call `refresh()` to see steps written since.
+
+    nbkit.load(path) returns its subclass nbkit.recording.Recording, which adds the analysis methods.
+    """
 
     def __init__(self, path):
         self.path = Path(path)
@@ -34,7 +35,7 @@ class Recording:
         self.refresh()
 
     # --- opening and growth ---------------------------------------------------------------------
-    def refresh(self) -> "Recording":
+    def refresh(self) -> "RecordingReader":
         """Re-read the metadata and the committed row count (a recording may still be growing)."""
         meta_path = self.path / META_FILE
         try:
@@ -78,18 +79,13 @@ class Recording:
                           "Everything it holds is readable.", RecordingWarning, stacklevel=3)
         return self
 
-    @property
-    def group(self):
-        if self._group is None:
-            import zarr
-
-            if self._rows == 0:
-                return None
+    def _open_group(self):
+        if self._group is None and self._rows:
             self._group = zarr.open_group(str(self.path), mode="r", use_consolidated=False)
         return self._group
 
     def _read(self, name: str, selection=slice(None)) -> np.ndarray:
-        group = self.group
+        group = self._open_group()
         if group is None:
             raise RecordingError(f"Recording {str(self.path)!r} holds no committed steps yet")
         try:
@@ -122,7 +118,7 @@ class Recording:
             return np.zeros(0, dtype=np.int64)
         steps = self._cache.get("step")
         if steps is None:
-            steps = self._cache["step"] = self._rows_of("step")
+            steps = self._cache["step"] = self._rows_of(layout.STEP)
             steps.flags.writeable = False
         return steps
 
@@ -160,42 +156,42 @@ class Recording:
             return np.zeros((0,) if tensor else (0, len(self.tensors)), dtype=np.float32)
         rows = _clip(rows, self._rows)
         if tensor is None:
-            return self._read(f"q/{q}", (rows,))
-        return self._read(f"q/{q}", (rows, self.tensor_index(tensor)))
+            return self._read(layout.series_array(q), (rows,))
+        return self._read(layout.series_array(q), (rows, self.tensor_index(tensor)))
 
     def overview(self, q: str) -> tuple[np.ndarray, np.ndarray]:
         """(block start rows, (blocks, tensors, 2) min/max) over blocks of OVERVIEW_BLOCK steps."""
         blocks = -(-self._rows // OVERVIEW_BLOCK)
         if q == "loss":
-            data = self._read("overview/loss", slice(0, blocks))
+            data = self._read(layout.OVERVIEW_LOSS, slice(0, blocks))
         else:
             self._check_quantity(q)
-            data = self._read(f"overview/{q}", slice(0, blocks))
+            data = self._read(layout.overview_array(q), slice(0, blocks))
         return np.arange(blocks) * OVERVIEW_BLOCK, data
 
     @property
     def loss(self) -> np.ndarray:
-        return self._rows_of("loss") if self._rows else np.zeros(0)
+        return self._rows_of(layout.LOSS) if self._rows else np.zeros(0)
 
     @property
     def lr(self) -> np.ndarray:
-        return self._rows_of("lr") if self._rows else np.zeros((0, len(self.meta.get("param_groups", []))))
+        return self._rows_of(layout.LR) if self._rows else np.zeros((0, len(self.meta.get("param_groups", []))))
 
     @property
     def heavy(self) -> np.ndarray:
         """True at steps whose per-tensor quantities were computed (every=N records 1 step in N)."""
-        return self._rows_of("heavy") if self._rows else np.zeros(0, dtype=bool)
+        return self._rows_of(layout.HEAVY) if self._rows else np.zeros(0, dtype=bool)
 
     @property
     def fingerprints(self) -> np.ndarray:
         """(steps, 2, width) batch fingerprints: row 0 the model inputs, row 1 the targets."""
-        return self._rows_of("fingerprint")
+        return self._rows_of(layout.FINGERPRINT)
 
     def probe_index(self, tensor: str) -> np.ndarray:
         i = self.tensor_index(tensor)
         index = self._cache.get("probe_index")
         if index is None:
-            index = self._cache["probe_index"] = self._read("probe_index")
+            index = self._cache["probe_index"] = self._read(layout.PROBE_INDEX)
         return index[i][index[i] >= 0]
 
     def probes(self, tensor: str, *, rows: slice | None = None) -> dict[str, np.ndarray]:
@@ -206,7 +202,7 @@ class Recording:
         n = len(range(*rows.indices(self._rows)))
         out = {"index": np.broadcast_to(index, (n, len(index)))}
         for name in self.meta.get("probe_fields", []):
-            out[name] = self._read(f"probe/{name}", (rows, i, slice(0, len(index))))
+            out[name] = self._read(layout.probe_array(name), (rows, i, slice(0, len(index))))
         return out
 
     def histogram(self, q: str, tensor: str, *, rows: slice | None = None) -> tuple[np.ndarray, np.ndarray]:
@@ -215,7 +211,7 @@ class Recording:
             raise RecordingError(f"No histogram of {q!r}; histograms exist for {', '.join(HISTOGRAMS)}")
         bins = self.meta["histogram_bins"]
         low = self.meta["histogram_low"][q]
-        counts = self._read(f"hist/{q}", (_clip(rows, self._rows), self.tensor_index(tensor), slice(0, bins)))
+        counts = self._read(layout.histogram_array(q), (_clip(rows, self._rows), self.tensor_index(tensor), slice(0, bins)))
         return np.arange(low, low + bins + 1, dtype=np.float64), counts
 
     @property
@@ -231,23 +227,10 @@ class Recording:
         state = self.keyframe(step)
         return state["model"], state["optimizer"]
 
-    def findings(self, **thresholds):
-        from nbkit.analyze.findings import find
-
-        return find(self, **thresholds)
-
-    def curvature(self, model, step_fn, batch):
-        from nbkit.analyze.curvature import fill_keyframe_sharpness
-
-        return fill_keyframe_sharpness(self, model, step_fn, batch)
-
     def rows_for_steps(self, first: int, last: int) -> slice:
         """Row slice covering optimizer steps first..last (inclusive)."""
         steps = self.steps
         return slice(int(np.searchsorted(steps, first)), int(np.searchsorted(steps, last, side="right")))
-
-    def size_bytes(self) -> int:
-        return sum(f.stat().st_size for f in self.path.rglob("*") if f.is_file())
 
     def size_report(self) -> dict:
         """Bytes on disk by part ("rows": step arrays, "keyframes", "metadata", "total") and per step."""
@@ -255,7 +238,7 @@ class Recording:
         for f in self.path.rglob("*"):
             if f.is_file():
                 top = f.relative_to(self.path).parts[0]
-                part = "keyframes" if top == kf.KEYFRAME_DIR else "metadata" if len(f.relative_to(self.path).parts) == 1 else "rows"
+                part = "keyframes" if top == layout.KEYFRAME_DIR else "metadata" if len(f.relative_to(self.path).parts) == 1 else "rows"
                 parts[part] += f.stat().st_size
         parts["total"] = sum(parts.values())
         parts["steps"] = self._rows
@@ -276,8 +259,8 @@ class Recording:
         if self._local_rows == 0:
             ranks = self.meta["distributed"]["world_size"]
             return {"step": np.zeros(0, np.int64), "grad_norm": np.zeros((0, ranks)), "grad": np.zeros((0, ranks, n))}
-        values = self._read("local/values", (slice(0, self._local_rows), slice(None), i))    # (rows, ranks, 1 + P)
-        return {"step": self._read("local/step", slice(0, self._local_rows)),
+        values = self._read(layout.LOCAL_VALUES, (slice(0, self._local_rows), slice(None), i))    # (rows, ranks, 1 + P)
+        return {"step": self._read(layout.LOCAL_STEP, slice(0, self._local_rows)),
                 "grad_norm": values[:, :, 0], "grad": values[:, :, 1:1 + n]}
 
 

@@ -10,12 +10,11 @@ from pathlib import Path
 
 import numpy as np
 
-from nbkit.measure.quantities import HISTOGRAM_BINS, HISTOGRAM_LOW, QUANTITIES
 from nbkit.measure.fingerprint import FINGERPRINT_WIDTH
-from nbkit.store.files import STEP_CHUNK
+from nbkit.measure.quantities import HISTOGRAM_BINS, HISTOGRAM_LOW, QUANTITIES
+from nbkit.store.layout import KEYFRAME_DIR, STEP_CHUNK, Row, new_meta
 from nbkit.store.writer import RecordingWriter
 
-PROBE_FIELDS = ("grad", "update", "first_moment", "second_moment", "momentum_factor", "scale_factor", "residual")
 SHARES = {"accelerated", "damped", "reversed", "sign_flip", "eps_share", "zero_grad_share", "lost_update_share"}
 
 
@@ -34,20 +33,17 @@ def write_synthetic(path, *, steps: int = 1000, tensors: int = 64, probes: int =
     rng = np.random.default_rng(seed)
     spike_at = int(steps * 0.6) if spike_at is None else spike_at
     names = [f"block{k // 2}.{'weight' if k % 2 == 0 else 'bias'}" for k in range(tensors)]
-    meta = {
-        "nbkit_version": "synthetic", "model_class": "Synthetic",
-        "optimizer": {"class": "Adam", "adapter": "adam", "first_moment": "exp_avg", "second_moment": "exp_avg_sq"},
-        "gain_applicable": True,
-        "param_groups": [{"lr": 1e-3, "params": names}],
-        "tensors": [{"name": n, "shape": [256, 256] if n.endswith("weight") else [256], "dtype": "float32",
-                     "numel": 65536 if n.endswith("weight") else 256, "group": 0, "layer": n.rsplit(".", 1)[0],
-                     "probes": probes, "sample_size": 4096} for n in names],
-        "orphans": [], "frozen": [], "quantities": list(QUANTITIES), "probes": probes,
-        "_probe_index": np.tile(np.arange(probes, dtype=np.int64), (tensors, 1)),
-        "histogram_bins": HISTOGRAM_BINS, "histogram_low": dict(HISTOGRAM_LOW),
-        "every": heavy_every, "keyframe_every": keyframe_every, "closed": False, "parent": None, "synthetic": True,
-    }
-    writer = RecordingWriter(path, meta, flush_seconds=3600.0)
+    meta = new_meta(
+        model_class="Synthetic", gain_applicable=True,
+        optimizer={"class": "Adam", "adapter": "adam", "first_moment": "exp_avg", "second_moment": "exp_avg_sq"},
+        param_groups=[{"lr": 1e-3, "params": names}],
+        tensors=[{"name": n, "shape": [256, 256] if n.endswith("weight") else [256], "dtype": "float32",
+                  "numel": 65536 if n.endswith("weight") else 256, "group": 0, "layer": n.rsplit(".", 1)[0],
+                  "probes": probes, "sample_size": 4096} for n in names],
+        probes=probes, options={"every": heavy_every, "keyframe_every": keyframe_every},
+        nbkit_version="synthetic", synthetic=True)
+    probe_index = np.tile(np.arange(probes, dtype=np.int64), (tensors, 1))
+    writer = RecordingWriter(path, meta, probe_index=probe_index, commit_seconds=3600.0)
     scale = 10.0 ** rng.uniform(-4, 0, size=tensors)                 # (T,) decades apart
     for start in range(0, steps, STEP_CHUNK):
         n = min(STEP_CHUNK, steps - start)
@@ -57,7 +53,7 @@ def write_synthetic(path, *, steps: int = 1000, tensors: int = 64, probes: int =
         if keyframe_every:
             for s in range(start, start + n):
                 if s % keyframe_every == 0:
-                    (path / "keyframes").mkdir(exist_ok=True)
+                    (path / KEYFRAME_DIR).mkdir(exist_ok=True)
     writer.close(timeout=None)
     if writer.error is not None:
         raise writer.error
@@ -93,12 +89,11 @@ def _rows(rng, start, n, total, T, P, heavy_every, scale, spike_at):
             q[:, i] = values[name]
     q[~heavy] = np.nan
     for k in range(n):
-        row = {"step": int(step[k]), "loss": float(loss[k]), "lr": np.array([lr[k]]), "heavy": bool(heavy[k]),
-               "fingerprint": np.zeros((2, FINGERPRINT_WIDTH)), "q": q[k],
-               "hist": np.zeros((3, T, HISTOGRAM_BINS + 2), dtype=np.uint32), "probes": {}}
+        row = Row(int(step[k]), float(loss[k]), np.array([lr[k]]), np.zeros((2, FINGERPRINT_WIDTH)), q[k],
+                  np.zeros((3, T, HISTOGRAM_BINS + 2), dtype=np.uint32), heavy=bool(heavy[k]))
         if heavy[k]:
-            row["hist"] = _histograms(rng, T, grad_norm[k])
-            row["probes"] = _probes(rng, T, P, grad_norm[k], lr[k], values["gain_median"][k])
+            row.histograms = _histograms(rng, T, grad_norm[k])
+            row.probes = _probes(rng, T, P, grad_norm[k], lr[k], values["gain_median"][k])
         yield row
 
 

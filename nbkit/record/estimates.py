@@ -1,6 +1,7 @@
 """Sharpness and gradient noise scale estimated while recording (record(curvature_every=N, noise_every=M)).
 
-The recorder calls `after_step(recorder, row)` in its step post-hook, after its own statistics. The
+A step hook of the recorder (Recorder.add_step_hook) calls `after_step(recorder, row)` after the
+recorder's own statistics, using only the recorder's public surface. The
 estimate of step s uses step s's own batch, rebuilt from what the recorder observed: the positional and
 keyword arguments of the last training-mode forward and the criterion's target arguments, giving
     loss = criterion(model(*args, **kwargs), *targets)
@@ -12,74 +13,70 @@ update.
 
 Training is not changed: every pass forks the RNG state and restores buffers (curvature.untouched),
 gradients come from torch.autograd.grad (p.grad is not touched), and the recorder's hooks are paused so
-the extra forward passes leave no trace in the recording. A failed estimate warns once (RecorderWarning)
+the extra forward passes leave no trace in the recording (Recorder.pause). A failed estimate warns once (RecorderWarning)
 and leaves NaN; the recording goes on.
 """
 from __future__ import annotations
 
 import math
 
+from nbkit.analyze.curvature import sharpness
+from nbkit.analyze.noise import RunningNoise, batch_size, noise_parts
 from nbkit.errors import RecorderError
-from nbkit.measure.quantities import QUANTITIES
+from nbkit.record.options import RecordOptions
 
 RECORDING_TOL = 1e-3        # Lanczos tolerance while recording: ample for a stability comparison
 NOISE_AVERAGE_WEIGHT = 0.2  # weight of the newest estimate in the running averages of |G|² and tr Σ
 
 
-def analysis_for(recorder, curvature_every: int, noise_every: int):
-    """The recorder's analysis object, or None when both strides are 0. Raises when it cannot work."""
-    if not (curvature_every or noise_every):
+def estimates_for(options: RecordOptions) -> "DuringRecording | None":
+    """The estimates the options ask for, or None when both strides are 0. Raises when they cannot work."""
+    if not (options.curvature_every or options.noise_every):
         return None
-    if recorder.criterion is None and recorder.step_fn is None:
-        raise RecorderError(f"curvature_every={curvature_every} / noise_every={noise_every} need the loss of the "
-                            "step's batch: pass criterion=<the nn.Module loss you call> or step_fn=step_fn(model, "
-                            "batch) -> loss to nbkit.record")
-    return DuringRecording(curvature_every, noise_every)
+    if options.criterion is None and options.step_fn is None:
+        raise RecorderError(f"curvature_every={options.curvature_every} / noise_every={options.noise_every} need "
+                            "the loss of the step's batch: pass criterion=<the nn.Module loss you call> or "
+                            "step_fn=step_fn(model, batch) -> loss to nbkit.record")
+    return DuringRecording(options.curvature_every, options.noise_every)
 
 
 class DuringRecording:
     """Estimates sharpness every `curvature_every` steps and the noise scale every `noise_every` steps."""
 
     def __init__(self, curvature_every: int, noise_every: int):
-        from nbkit.analyze.noise import RunningNoise
-
         self.curvature_every, self.noise_every = curvature_every, noise_every
         self.noise = RunningNoise(NOISE_AVERAGE_WEIGHT)
         self._noted_batch = False
 
     def after_step(self, recorder, row) -> None:
-        step = row["step"]
+        step = row.step
         want_curvature = self.curvature_every and step % self.curvature_every == 0
         want_noise = self.noise_every and step % self.noise_every == 0
         if not (want_curvature or want_noise):
             return
-        if recorder._last_inputs is None:
-            recorder._fail("curvature/noise estimates found no training forward pass to rebuild the batch from",
-                           stop=False)
+        observed = recorder.last_batch()
+        if observed is None:
+            recorder.report("curvature/noise estimates found no training forward pass to rebuild the batch from")
             return
-        step_fn, batch = self._rebuild(recorder)
-        recorder._paused = True
-        try:
+        step_fn, batch = self._rebuild(recorder, *observed)
+        with recorder.pause():
             if want_curvature:
-                self._estimate(recorder, row, "sharpness", lambda: self._sharpness(recorder, step_fn, batch))
+                self._estimate(recorder, row, "sharpness", lambda: sharpness(
+                    recorder.model, step_fn, batch, optimizer=recorder.optimizer, tol=RECORDING_TOL))
             if want_noise:
                 self._estimate(recorder, row, "noise_scale", lambda: self._noise(recorder, step_fn, batch))
-        finally:
-            recorder._paused = False
 
     @staticmethod
     def _estimate(recorder, row, quantity, compute):
         try:
             value = compute()
         except Exception as exc:
-            recorder._fail(f"the {quantity} estimate failed", exc, stop=False)
+            recorder.report(f"the {quantity} estimate failed", exc)
             return
-        row["q"][QUANTITIES.index(quantity), :] = value if value is not None else math.nan
+        row.set_quantity(quantity, value if value is not None else math.nan)
 
     @staticmethod
-    def _rebuild(recorder):
-        args, kwargs = recorder._last_inputs
-        targets = tuple(recorder._last_targets or ())
+    def _rebuild(recorder, args, kwargs, targets):
         if recorder.step_fn is not None:
             return recorder.step_fn, (*args, *targets)
         criterion = recorder.criterion
@@ -89,27 +86,17 @@ class DuringRecording:
             inputs, keywords, wanted = batch
             loss = criterion(model(*inputs, **keywords), *wanted)
             if summed:                      # the estimators need the mean loss of the batch
-                from nbkit.analyze.noise import _batch_size
-
-                loss = loss / _batch_size(batch)
+                loss = loss / batch_size(batch)
             return loss
 
-        return step_fn, (tuple(args), dict(kwargs), targets)
-
-    @staticmethod
-    def _sharpness(recorder, step_fn, batch):
-        from nbkit.analyze.curvature import sharpness
-
-        return sharpness(recorder.model, step_fn, batch, optimizer=recorder.optimizer, tol=RECORDING_TOL)
+        return step_fn, (args, kwargs, targets)
 
     def _noise(self, recorder, step_fn, batch):
-        from nbkit.analyze.noise import noise_parts
-
         held = {id(p) for g in recorder.optimizer.param_groups for p in g["params"]}
         params = [p for p in recorder.model.parameters() if p.requires_grad and id(p) in held]
         parts = noise_parts(recorder.model, step_fn, batch, params=params)
         if not self._noted_batch:
-            recorder._writer.update_meta(noise_batch_size=parts.batch_size, noise_method=parts.method,
-                                         noise_average_weight=NOISE_AVERAGE_WEIGHT)
+            recorder.note(noise_batch_size=parts.batch_size, noise_method=parts.method,
+                          noise_average_weight=NOISE_AVERAGE_WEIGHT)
             self._noted_batch = True
         return self.noise.add(parts)

@@ -1,0 +1,79 @@
+"""The recording options: one frozen dataclass, validated once, written to the metadata by one method."""
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, fields
+from typing import Callable
+
+import torch
+
+from nbkit.errors import RecorderError
+
+SAMPLE_SIZE = 4096      # sampled coordinates per tensor for shares and histograms (all when smaller)
+
+# old keyword -> new keyword; each old one keeps working for one release, with a DeprecationWarning
+RENAMED = {"flush_seconds": "commit_seconds"}
+
+
+@dataclass(frozen=True)
+class RecordOptions:
+    """Every keyword of nbkit.record after model, optimizer and path, with its default."""
+
+    every: int = 1                  # heavy per-tensor quantities every N steps (loss, lr, fingerprints every step)
+    probes: int = 64                # probe coordinates per tensor, kept in full every heavy step
+    keyframe_every: int = 100       # keyframe stride (plus step 0 and the final state at close())
+    criterion: torch.nn.Module | None = None   # an nn.Module loss: its training-mode outputs give the loss
+    step_fn: Callable | None = None  # step_fn(model, batch) -> loss, for curvature and noise estimates
+    curvature_every: int = 0        # sharpness every N steps (0 = off)
+    noise_every: int = 0            # gradient noise scale every N steps (0 = off)
+    commit_seconds: float = 5.0     # rows are committed at least this often: a crash loses at most this
+    expected_steps: int | None = None   # lets record() refuse when the disk cannot hold the run
+    strict: bool = False            # True: recorder errors raise instead of warning once
+    resume: bool | int = False      # True: append to an existing recording; an int names the restart step
+    overwrite: bool = False         # True: replace an existing recording at the path
+
+    def __post_init__(self):
+        for name, low in (("every", 1), ("probes", 0), ("keyframe_every", 1), ("curvature_every", 0),
+                          ("noise_every", 0)):
+            value = getattr(self, name)
+            if not isinstance(value, int) or isinstance(value, bool) or value < low:
+                raise RecorderError(f"Invalid {name}: {value!r}; expected an integer >= {low}")
+        if self.probes > SAMPLE_SIZE:
+            raise RecorderError(f"Invalid probes: {self.probes}; at most {SAMPLE_SIZE} probe coordinates per tensor")
+        if not (isinstance(self.commit_seconds, (int, float)) and not isinstance(self.commit_seconds, bool)
+                and self.commit_seconds > 0):
+            raise RecorderError(f"Invalid commit_seconds: {self.commit_seconds!r}; expected a positive number of "
+                                "seconds")
+        if self.expected_steps is not None and (not isinstance(self.expected_steps, int) or self.expected_steps < 1):
+            raise RecorderError(f"Invalid expected_steps: {self.expected_steps!r}; expected a positive integer or None")
+        if self.criterion is not None and not isinstance(self.criterion, torch.nn.Module):
+            raise RecorderError(f"criterion must be an nn.Module loss (e.g. torch.nn.CrossEntropyLoss()), got "
+                                f"{type(self.criterion).__name__}; for a loss function, call rec.loss(loss) instead")
+        if self.step_fn is not None and not callable(self.step_fn):
+            raise RecorderError(f"step_fn must be callable as step_fn(model, batch) -> loss, got {self.step_fn!r}")
+
+    @classmethod
+    def from_keywords(cls, **keywords) -> "RecordOptions":
+        """The options from nbkit.record's keywords; an unknown one is an error naming the valid ones,
+        a renamed one warns (DeprecationWarning) and is applied under its new name."""
+        for old, new in RENAMED.items():
+            if old in keywords:
+                warnings.warn(f"nbkit.record({old}=...) is renamed {new}=...; {old} stops working in the next "
+                              "release", DeprecationWarning, stacklevel=3)
+                if new in keywords:
+                    raise RecorderError(f"Pass {new}= only (the same option as the deprecated {old}=)")
+                keywords[new] = keywords.pop(old)
+        valid = [f.name for f in fields(cls)]
+        unknown = sorted(set(keywords) - set(valid))
+        if unknown:
+            raise RecorderError(f"Unknown recording option(s) {unknown}; nbkit.record accepts {', '.join(valid)}")
+        return cls(**keywords)
+
+    def as_meta(self) -> dict:
+        """The options as the recording's metadata states them (the criterion by its class name)."""
+        # a function cannot be stored; resume and overwrite describe the set-up, not the run; probes is
+        # a top-level entry of the layout
+        meta = {f.name: getattr(self, f.name) for f in fields(self)
+                if f.name not in ("step_fn", "resume", "overwrite", "probes")}
+        meta["criterion"] = type(self.criterion).__name__ if self.criterion is not None else None
+        return meta

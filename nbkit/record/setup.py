@@ -1,0 +1,189 @@
+"""Attaching a recorder: checks on the model, optimizer and path, the tensor table, the new recording's
+metadata, the disk-space check and the folder (fresh, replaced or resumed)."""
+from __future__ import annotations
+
+import datetime
+import math
+import os
+import shutil
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from nbkit.errors import RecorderError
+from nbkit.measure.update_rules import Adapter, step_count
+from nbkit.record.options import SAMPLE_SIZE, RecordOptions
+from nbkit.store.files import is_recording
+from nbkit.store.layout import OPTIMIZER_ONLY_LAYER, estimate_recording_bytes, new_meta
+from nbkit.store.resume import ResumePlan, plan_resume
+
+SAMPLE_SEED = 20251201  # the recorder's private generator's seed: the same coordinates in every recording
+EXACT_QUANTITIES = ["grad_norm", "grad_rms", "grad_max", "weight_norm", "update_norm", "update_ratio", "grad_cosine",
+                    "update_grad_cosine", "dead_rows", "nonfinite", "weight_nonfinite", "update_nonfinite",
+                    "grad_missing"]
+SAMPLED_QUANTITIES = ["gain_median", "accelerated", "damped", "reversed", "momentum_factor_median",
+                      "scale_factor_median", "residual_median", "sign_flip", "eps_share", "zero_grad_share",
+                      "lost_update_share", "state_nonfinite", "histograms"]
+
+
+@dataclass
+class RecordedTensor:
+    """One parameter tensor the recorder follows."""
+
+    name: str
+    param: torch.Tensor
+    group: int
+    index: torch.Tensor          # sampled flat coordinates; the first `probes` are the probes
+    probes: int
+    shape: tuple = ()            # the shape when recording started
+    stopped: str | None = None   # why this tensor is no longer recorded
+
+
+def jsonable(value):
+    """A parameter-group setting as JSON: tensors as numbers or lists, anything unknown as its repr."""
+    if isinstance(value, torch.Tensor):
+        return value.item() if value.numel() == 1 else value.tolist()
+    if isinstance(value, (list, tuple)):
+        return [jsonable(v) for v in value]
+    if isinstance(value, dict):
+        return {str(k): jsonable(v) for k, v in value.items()}
+    if value is None or isinstance(value, (bool, int, float, str)):
+        return value
+    return repr(value)
+
+
+def layer_of(name: str) -> str:
+    """The layer owning a tensor: "encoder.0" for "encoder.0.weight"; optimizer-only tensors group{g}.{i}
+    get OPTIMIZER_ONLY_LAYER."""
+    if name.startswith("group") and name.split(".")[0][5:].isdigit() and name.count(".") == 1:
+        return OPTIMIZER_ONLY_LAYER
+    return name.rsplit(".", 1)[0] if "." in name else "(model)"
+
+
+def check_attachable(model, optimizer, path) -> None:
+    """The model and optimizer can be recorded into `path`; raises RecorderError saying what to fix."""
+    if not isinstance(model, torch.nn.Module):
+        raise RecorderError(f"model must be a torch.nn.Module, got {type(model).__name__}")
+    if not isinstance(optimizer, torch.optim.Optimizer):
+        raise RecorderError(f"optimizer must be a torch.optim.Optimizer, got {type(optimizer).__name__}")
+    if not any(True for _ in model.parameters()):
+        raise RecorderError(f"The model ({type(model).__name__}) has no parameters: there is nothing to record")
+    if not any(len(g["params"]) for g in optimizer.param_groups):
+        raise RecorderError("The optimizer holds no parameters: there is nothing to record")
+    for parent in Path(path).resolve().parents:
+        if is_recording(parent):
+            raise RecorderError(f"{str(path)!r} is inside the recording {str(parent)!r}; choose a path outside it")
+
+
+def tensor_table(model, optimizer, probes: int, generator: torch.Generator):
+    """(tensors in model order, orphans, frozen): every tensor the optimizer holds, with its sampled
+    coordinates drawn from `generator`; orphans require grad but are in no group; frozen do not."""
+    names, order = {}, {}
+    for position, (name, p) in enumerate(model.named_parameters()):
+        names[id(p)] = name
+        order[id(p)] = position
+    tensors, in_optimizer = [], set()
+    for g, group in enumerate(optimizer.param_groups):
+        for i, p in enumerate(group["params"]):
+            in_optimizer.add(id(p))
+            n = p.numel()
+            size = min(SAMPLE_SIZE, n)
+            index = torch.randperm(n, generator=generator)[:size] if n > size else torch.randperm(n, generator=generator)
+            tensors.append(RecordedTensor(names.get(id(p), f"group{g}.{i}"), p, g, index, min(probes, size),
+                                          tuple(p.shape)))
+    position = {id(t.param): order.get(id(t.param), len(order) + k) for k, t in enumerate(tensors)}
+    tensors.sort(key=lambda t: position[id(t.param)])
+    orphans = [n for n, p in model.named_parameters() if p.requires_grad and id(p) not in in_optimizer]
+    frozen = [n for n, p in model.named_parameters() if not p.requires_grad and id(p) not in in_optimizer]
+    return tensors, orphans, frozen
+
+
+def probe_index(tensors: list[RecordedTensor], probes: int) -> np.ndarray:
+    """(tensors, probes) int64 flat probe coordinates of each tensor, -1 where it has fewer."""
+    index = np.full((len(tensors), probes), -1, dtype=np.int64)
+    for k, t in enumerate(tensors):
+        index[k, :t.probes] = t.index[:t.probes].numpy()
+    return index
+
+
+def recording_meta(model, optimizer, adapter: Adapter, tensors: list[RecordedTensor], orphans: list[str],
+                   frozen: list[str], options: RecordOptions) -> dict:
+    """The metadata of a new recording of `model` and `optimizer` (schema: nbkit.store.layout.new_meta)."""
+    groups = []
+    for group in optimizer.param_groups:
+        settings = {k: jsonable(v) for k, v in group.items() if k != "params"}
+        settings["params"] = [t.name for t in tensors if any(t.param is p for p in group["params"])]
+        groups.append(settings)
+    sampled = [t.name for t in tensors if t.param.numel() > SAMPLE_SIZE]
+    return new_meta(
+        model_class=type(model).__name__,
+        optimizer={"class": type(optimizer).__name__, "module": type(optimizer).__module__,
+                   "adapter": adapter.name, "defaults": jsonable(optimizer.defaults),
+                   "first_moment": adapter.first_moment, "second_moment": adapter.second_moment,
+                   "notes": adapter.notes},
+        gain_applicable=adapter.gain_applicable, param_groups=groups,
+        tensors=[{"name": t.name, "shape": list(t.param.shape), "dtype": str(t.param.dtype).replace("torch.", ""),
+                  "numel": t.param.numel(), "group": t.group, "layer": layer_of(t.name), "probes": t.probes,
+                  "sample_size": len(t.index)} for t in tensors],
+        probes=options.probes, options=options.as_meta(), orphans=orphans, frozen=frozen,
+        created=datetime.datetime.now(datetime.timezone.utc).isoformat(),
+        torch_version=torch.__version__, numpy_version=np.__version__, python_version=sys.version.split()[0],
+        threads=torch.get_num_threads(), interop_threads=torch.get_num_interop_threads(), pid=os.getpid(),
+        statistics={"sample_size": SAMPLE_SIZE, "sample_seed": SAMPLE_SEED, "sampled_tensors": sampled,
+                    "exact": EXACT_QUANTITIES, "sampled": SAMPLED_QUANTITIES,
+                    "note": f"sampled quantities use a fixed seeded sample of {SAMPLE_SIZE} coordinates per "
+                            "tensor (all coordinates of smaller tensors)"})
+
+
+def check_disk(meta: dict, path: Path, expected_steps: int | None, adapter: Adapter) -> None:
+    """Refuse to start when the estimated size for expected_steps exceeds the free disk space; the
+    estimate goes into meta["size_estimate"]."""
+    if expected_steps is None:
+        return
+    states = 1 + sum(m is not None for m in (adapter.first_moment, adapter.second_moment))
+    estimate = estimate_recording_bytes(meta, expected_steps, state_copies=states)
+    meta["size_estimate"] = estimate
+    existing = next(p for p in (path.resolve(), *path.resolve().parents) if p.exists())
+    free = shutil.disk_usage(existing).free
+    if estimate["total"] > free:
+        raise RecorderError(
+            f"A recording of {expected_steps} steps at {str(path)!r} needs about "
+            f"{estimate['total'] / 2**20:.0f} MiB ({estimate['rows'] / 2**20:.0f} MiB of rows, "
+            f"{estimate['keyframes'] / 2**20:.0f} MiB of keyframes) but only {free / 2**20:.0f} MiB are free. "
+            "Free disk space, record into another disk, or raise every / keyframe_every or lower probes")
+
+
+def prepare_path(path: Path, optimizer, overwrite: bool, resume) -> ResumePlan | None:
+    """Make the folder ready; with resume, return the plan for continuing the recording there."""
+    if resume is not False and resume is not None and is_recording(path):
+        if overwrite:
+            raise RecorderError("Pass either resume=True or overwrite=True, not both")
+        # resume=True: restart at the optimizer's own step count when it keeps one (Adam family),
+        # else right after the last committed step; an int names the restart step explicitly.
+        restart = None if resume is True else int(resume)
+        if restart is None:
+            counts = {step_count(s) for s in optimizer.state.values()}
+            if len(counts) == 1 and math.isfinite(next(iter(counts))):
+                restart = int(next(iter(counts)))
+        try:
+            return plan_resume(path, restart)
+        except (OSError, ValueError, KeyError, TypeError) as exc:
+            raise RecorderError(f"Cannot resume the recording at {str(path)!r}: it is damaged ({exc}); "
+                                "nbkit.load() says what is readable; record into a new path") from exc
+    if path.exists() and any(path.iterdir()):
+        if not is_recording(path):
+            raise RecorderError(f"{str(path)!r} exists and is not an nbkit recording; "
+                                "choose an empty or new folder (nothing there was touched)")
+        if not overwrite:
+            raise RecorderError(f"A recording already exists at {str(path)!r}; pass overwrite=True to "
+                                "replace it or resume=True to continue it")
+        shutil.rmtree(path)
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise RecorderError(f"Cannot create the recording folder {str(path)!r} ({type(exc).__name__}: {exc}); "
+                            "choose a writable location") from exc
+    return None

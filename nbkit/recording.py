@@ -1,0 +1,38 @@
+"""The Recording users open with nbkit.load: the store's reader plus the analysis methods.
+
+Assembled here, above both layers, so that the store never imports the analysis and the analysis
+writes nothing: `curvature()` computes with nbkit.analyze and stores through nbkit.store.annotate.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from nbkit.analyze.curvature import keyframe_sharpness
+from nbkit.analyze.findings import find
+from nbkit.store.annotate import write_series
+from nbkit.store.reader import RecordingReader
+
+
+class Recording(RecordingReader):
+    """A finished or growing recording on disk (nbkit.load). Call `refresh()` to see new steps."""
+
+    def findings(self, **thresholds) -> list:
+        """The automatic findings (heuristics: verify each with a replay); keyword arguments override
+        the thresholds of nbkit.analyze.findings.Thresholds."""
+        return find(self, **thresholds)
+
+    def curvature(self, model, step_fn, batch) -> dict[int, float]:
+        """Estimate sharpness at every keyframe that has a recorded row, on `batch`, and store it in the
+        `sharpness` series (the recording must be closed). Returns {step: sharpness}."""
+        values = keyframe_sharpness(self, model, step_fn, batch)
+        rows = [int(np.searchsorted(self.steps, step)) for step in values]
+        write_series(self.path, "sharpness", rows, np.array(list(values.values()), dtype=np.float32))
+        self.refresh()
+        return values
+
+
+def load(path) -> Recording:
+    """Open the recording at `path` (a folder written by nbkit.record), or a live Recorder's."""
+    if hasattr(path, "recording_path"):          # a live Recorder
+        path = path.recording_path
+    return Recording(path)

@@ -1,0 +1,264 @@
+"""Running a replay plan in this process: restore the keyframe, bring the run to the start step, and
+step every lane in lockstep on the same batches, checking each batch's fingerprint.
+
+Order of one replayed step s (the order of a plain training loop, which is what the recording saw):
+fetch batch s; optimizer.zero_grad(); loss = step_fn(model, batch); loss.backward() unless step_fn
+returned a float or a tensor without grad_fn (it ran backward itself); before_step(model,
+optimizer, s); for the recorded optimizer, set each group's lr to the recorded value; optimizer.step()
+(with a closure built from step_fn for optimizers whose step() requires one, such as LBFGS).
+Several optimizers advance in lockstep on the same batch, each on its own model copy and with its own
+copy of the global torch/numpy/python random states, so dropout draws what the original drew.
+"""
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import torch
+from tqdm.auto import tqdm
+
+from nbkit.errors import ReplayError
+from nbkit.measure.fingerprint import combine, describe_difference, matches
+from nbkit.recording import load
+from nbkit.replay import restore
+from nbkit.replay.fidelity import compare_recordings
+from nbkit.replay.lanes import detach, lane_recorder, make_lane, optimizer_only_tensors
+from nbkit.replay.plan import DATALOADER_ADVICE, Plan
+from nbkit.store.annotate import update_meta
+
+MISMATCHES_KEPT = 100    # fingerprint mismatches listed in a replay's meta with strict=False
+
+
+def run_plan(plan: Plan, model, step_fn, batches, names, progress=True, position=None) -> dict:
+    """Run the replays `names` of `plan` here, in lockstep. Returns {name: output folder}."""
+    run = load(plan.run_path)
+    user_rng, user_threads = restore.get_rng(), torch.get_num_threads()
+    threads_note = _set_threads(run.meta.get("threads"))
+    try:
+        return _run(plan, run, model, step_fn, batches, names, progress, threads_note, position)
+    finally:
+        torch.set_num_threads(user_threads)
+        restore.set_rng(user_rng)        # the caller's random streams are left as they were
+
+
+def _set_threads(recorded) -> str:
+    if not isinstance(recorded, int) or recorded < 1:
+        note = "the recording does not say its torch thread count; results may differ in the last bits"
+        warnings.warn(f"nbkit replay: {note}", stacklevel=4)
+        return note
+    torch.set_num_threads(recorded)
+    if torch.get_num_threads() != recorded:
+        note = (f"could not set the recorded torch thread count {recorded} (running with "
+                f"{torch.get_num_threads()}); results may differ in the last bits")
+        warnings.warn(f"nbkit replay: {note}", stacklevel=4)
+        return note
+    return f"torch thread count set to the recorded {recorded}"
+
+
+def _run(plan, run, model, step_fn, batches, names, progress, threads_note, position=None) -> dict:
+
+    meta = run.meta
+    state = run.keyframe(plan.keyframe)
+    fetch = fetcher(batches, plan.keyframe)           # reaching the keyframe: batches are only fetched
+    restore.set_rng(restore.rng_from_keyframe(state["rng"]))
+    recorded = RecordedSteps(run, plan.keyframe, plan.start + plan.steps)
+    bar = _progress(progress, plan.start + plan.steps - plan.keyframe, names, position)
+    lanes = []
+    try:
+        if plan.start > plan.keyframe:                  # bring the run from the keyframe to `start`
+            bridge = make_lane(f"recorded optimizer from keyframe {plan.keyframe} to start {plan.start}", None, model,
+                           meta, state["model"], state["optimizer"], state["extra_params"])
+            try:
+                _loop([bridge], recorded, step_fn, fetch, plan.keyframe, plan.start, plan.before_step, plan.strict,
+                      bar)
+            finally:
+                detach(bridge)                         # its global hook must not outlive an error
+            state = {"model": bridge.model.state_dict(), "optimizer": bridge.optimizer.state_dict(),
+                     "extra_params": optimizer_only_tensors(bridge, meta)}
+        for name in names:
+            lanes.append(make_lane(name, plan.factories[name], model, meta, state["model"], state["optimizer"],
+                               state["extra_params"]))
+        if plan.record:
+            for lane in lanes:
+                lane.recorder = lane_recorder(lane, plan, meta, threads_note)
+        if len(lanes) > 1:
+            start_rng = restore.get_rng()
+            for lane in lanes:
+                lane.rng = start_rng
+        _loop(lanes, recorded, step_fn, fetch, plan.start, plan.start + plan.steps, plan.before_step,
+              plan.strict, bar)
+    finally:
+        if bar is not None:
+            bar.close()
+        for lane in lanes:
+            detach(lane)
+            if lane.recorder is not None:
+                lane.recorder.close()
+    paths = {}
+    for lane in lanes:
+        paths[lane.name] = plan.targets[lane.name]
+        if not plan.record:
+            continue
+            info = {"fingerprint_mismatches": lane.mismatches[:MISMATCHES_KEPT],
+                "fingerprint_mismatch_count": len(lane.mismatches),
+                "targets_checked": lane.saw_criterion or meta.get("criterion") is None}
+        if lane.recorded:
+            info["fidelity"] = compare_recordings(run, load(paths[lane.name]))
+        replay_meta = dict(load(paths[lane.name]).meta["replay"], **info)
+        update_meta(paths[lane.name], replay=replay_meta)
+        fidelity = info.get("fidelity")
+        if fidelity and not fidelity["identical"]:
+            warnings.warn(f"nbkit replay {lane.name!r} differs from its parent: largest loss difference "
+                          f"{fidelity['loss']:.3g}, probe {fidelity['probes']:.3g}, keyframe parameter "
+                          f"{fidelity['keyframes']:.3g} ({threads_note})", stacklevel=4)
+    return paths
+
+
+class RecordedSteps:
+    """The parent's per-step data the loop needs: fingerprints and learning rates by step."""
+
+    def __init__(self, run, first, end):
+        rows = run.rows_for_steps(first, end - 1)
+        self.first_row = rows.start
+        steps = run.steps[rows]
+        if len(steps) != end - first or (len(steps) and (steps[0] != first or steps[-1] != end - 1)):
+            raise ReplayError(f"The recording lacks rows between steps {first} and {end - 1}; it cannot be replayed "
+                              "over that range")
+        self.fingerprints = run.fingerprints[rows]      # (steps, 2, width)
+        self.lr = run.lr[rows]                          # (steps, groups)
+        self.first = first
+
+    def row(self, step):
+        return step - self.first
+
+
+def fetcher(batches, skip: int):
+    """fetch(step) -> batch. An iterable is advanced past the first `skip` batches (fetched only)."""
+    if callable(batches) and not hasattr(batches, "__iter__"):
+        return batches
+    iterator = iter(batches)
+    for step in range(skip):
+        try:
+            next(iterator)
+        except StopIteration:
+            raise ReplayError(f"`batches` ran out at step {step}, before the keyframe at step {skip}; "
+                              + DATALOADER_ADVICE) from None
+
+    def fetch(step):
+        try:
+            return next(iterator)
+        except StopIteration:
+            raise ReplayError(f"`batches` ran out at step {step}; it must yield every batch of the replayed "
+                              "steps (repeat the epochs as the training loop did)") from None
+
+    return fetch
+
+
+def _progress(progress, total, names, position=None):
+    """A tqdm.auto bar (a widget in a notebook, text in a terminal); tqdm shows steps per second."""
+    if not progress:
+        return None
+    return tqdm(total=total, unit="step", desc=f"replay {', '.join(names)}", leave=True, position=position)
+
+
+def _loop(lanes, recorded, step_fn, fetch, first, end, before_step, strict, bar):
+    """Steps first..end-1 of every lane, in lockstep on the same batches."""
+    several = len(lanes) > 1
+    for step in range(first, end):
+        if several:
+            restore.set_rng(lanes[0].rng)
+            batch = fetch(step)
+            _advance_rng(lanes)
+        else:
+            batch = fetch(step)
+        row = recorded.row(step)
+        for lane in lanes:
+            if several:
+                restore.set_rng(lane.rng)
+            _step(lane, step_fn, batch, before_step, step, recorded.lr[row])
+            _check_fingerprint(lane, recorded.fingerprints[row], step, strict)
+            if several:
+                lane.rng = restore.get_rng()
+        if bar is not None:
+            bar.update(1)
+
+
+def _advance_rng(lanes):
+    """The batch was fetched once, from lane 0's random state: lanes at the same state move with it."""
+    before, after = lanes[0].rng, restore.get_rng()
+    if restore.same_rng(before, after):
+        return
+    for lane in lanes:
+        if lane is lanes[0] or restore.same_rng(lane.rng, before):
+            lane.rng = after
+        else:
+            warnings.warn("nbkit replay: fetching a batch drew from the global random generators while the "
+                          "replays' random states differ; give the data pipeline its own seeded generator",
+                          stacklevel=4)
+
+
+def _needs_backward(loss) -> bool:
+    return isinstance(loss, torch.Tensor) and loss.requires_grad and loss.grad_fn is not None
+
+
+def _step(lane, step_fn, batch, before_step, step, lrs):
+    model, optimizer = lane.model, lane.optimizer
+    lane.prints, lane.target_prints, lane.criterion_now = [], [], False
+    lane.active = True
+    try:
+        if lane.closure:
+            def closure():
+                optimizer.zero_grad()
+                loss = step_fn(model, batch)
+                if _needs_backward(loss):
+                    loss.backward()
+                return loss
+
+            if before_step is not None:
+                before_step(model, optimizer, step)
+            if lane.recorded:
+                _apply_lr(optimizer, lrs)
+            optimizer.step(closure)
+            return
+        optimizer.zero_grad()
+        loss = step_fn(model, batch)
+        if _needs_backward(loss):
+            loss.backward()
+        if not lane.criterion_now and lane.watch is None and lane.rewatch is not None:
+            lane.rewatch()                  # the criterion object found earlier was not used this step
+        if lane.recorder is not None and not lane.criterion_now:
+            lane.recorder.loss(loss)        # no criterion call seen: the step_fn's loss is the step's loss
+        if before_step is not None:
+            before_step(model, optimizer, step)
+        if lane.recorded:
+            _apply_lr(optimizer, lrs)
+        optimizer.step()
+    finally:
+        lane.active = False
+
+
+def _apply_lr(optimizer, lrs):
+    for group, lr in zip(optimizer.param_groups, lrs):
+        if isinstance(group["lr"], torch.Tensor):
+            group["lr"].fill_(float(lr))
+        else:
+            group["lr"] = float(lr)
+
+
+def _check_fingerprint(lane, recorded, step, strict):
+    ok = matches(recorded[0], lane.prints)
+    if ok and lane.target_prints:
+        ok = matches(recorded[1], lane.target_prints)
+    if ok:
+        return
+    seen = np.stack([combine(lane.prints), combine(lane.target_prints)])
+    which = 0 if not matches(recorded[0], lane.prints) else 1
+    part = "model inputs" if which == 0 else "targets given to the criterion"
+    message = (f"Replay {lane.name!r}: the batch at step {step} differs from the recording ({part}: "
+               f"{describe_difference(recorded[which], seen[which])}). " + DATALOADER_ADVICE +
+               ". Pass strict=False to continue with a warning.")
+    if strict:
+        raise ReplayError(message)
+    if not lane.mismatches:
+        warnings.warn(message, stacklevel=4)
+    lane.mismatches.append(int(step))

@@ -1,0 +1,97 @@
+"""A replay's plan: the arguments of replay() validated up front, as plain data a spawned worker can take."""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from nbkit.errors import ReplayError
+from nbkit.replay import restore
+from nbkit.store.files import is_recording, read_json
+from nbkit.store.layout import META_FILE
+
+RECORDED = "recorded"    # the key of the recorded optimizer's replay
+
+DATALOADER_ADVICE = ("`batches` must yield the run's batches from step 0 in the recorded order (or be a "
+                     "callable batches(step)). A DataLoader repeats its order when it is re-created with its "
+                     "own seeded generator, e.g. DataLoader(data, shuffle=True, "
+                     "generator=torch.Generator().manual_seed(0)), and the same worker and sampler settings")
+
+
+@dataclass
+class Plan:
+    """Everything one replay call needs; plain data, so it can travel to a spawned worker."""
+
+    run_path: str
+    start: int
+    steps: int
+    keyframe: int
+    factories: dict            # name -> factory(groups) -> optimizer, or None for the recorded optimizer
+    targets: dict              # name -> output folder
+    before_step: object = None
+    strict: bool = True
+    record: bool = True
+
+
+def make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before_step, workers, strict,
+              record=True) -> Plan:
+    """Validate the arguments of replay() up front and say what to fix."""
+    if len(run) == 0:
+        raise ReplayError(f"The recording {str(run.path)!r} holds no steps yet; record some steps first")
+    first, last = int(run.steps[0]), int(run.steps[-1])
+    start = first if start is None else start
+    if not isinstance(start, (int, np.integer)) or isinstance(start, bool) or not first <= start <= last:
+        raise ReplayError(f"Invalid start: {start!r}; expected a recorded step between {first} and {last}")
+    start = int(start)
+    steps = last + 1 - start if steps is None else steps
+    if not isinstance(steps, (int, np.integer)) or isinstance(steps, bool) or steps < 1:
+        raise ReplayError(f"Invalid steps: {steps!r}; expected a positive number of steps")
+    if start + steps - 1 > last:
+        raise ReplayError(f"start={start} with steps={steps} runs to step {start + steps - 1}, but the recording "
+                          f"ends at step {last}, so later batches cannot be checked; use steps <= {last + 1 - start}")
+    keyframes = [k for k in run.keyframes if k <= start]
+    if not keyframes:
+        raise ReplayError(f"No keyframe at or before step {start} (keyframes: {run.keyframes}); pick a later start")
+    if not isinstance(model, torch.nn.Module):
+        raise ReplayError(f"model must be a torch.nn.Module, got {type(model).__name__}")
+    restore.check_model(run.meta, model)
+    if not callable(step_fn):
+        raise ReplayError(f"step_fn must be callable as step_fn(model, batch) -> loss, got {step_fn!r}")
+    if not callable(batches) and not hasattr(batches, "__iter__"):
+        raise ReplayError(f"batches must be an iterable of the run's batches from step 0 or a callable "
+                          f"batches(step), got {type(batches).__name__}")
+    if before_step is not None and not callable(before_step):
+        raise ReplayError(f"before_step must be None or callable as before_step(model, optimizer, step), "
+                          f"got {before_step!r}")
+    if not isinstance(workers, int) or isinstance(workers, bool) or workers < 1:
+        raise ReplayError(f"Invalid workers: {workers!r}; expected a positive integer")
+    factories = {RECORDED: None} if optimizers is None else optimizers
+    if not isinstance(factories, dict) or not factories:
+        raise ReplayError(f"optimizers must be None or a non-empty dict name -> factory(groups) -> optimizer, "
+                          f"got {optimizers!r}")
+    for name, factory in factories.items():
+        if not isinstance(name, str) or not name or "/" in name or "\\" in name or name.startswith("."):
+            raise ReplayError(f"Invalid replay name {name!r}: names become folder names; use plain words")
+        if factory is not None and not callable(factory):
+            raise ReplayError(f"optimizers[{name!r}] must be a factory(groups) -> optimizer, got {factory!r}")
+    root = Path(f"{run.path}.replays") if to is None else Path(to)
+    targets = {name: str(root / name) for name in factories}
+    if record:
+        for name, target in targets.items():
+            check_target(Path(target), run.path)
+    return Plan(str(run.path), start, int(steps), max(keyframes), dict(factories), targets, before_step,
+                bool(strict), bool(record))
+
+
+def check_target(path: Path, parent: Path) -> None:
+    """A replay may replace an earlier replay of the same run, nothing else."""
+    if not path.exists() or not any(path.iterdir()):
+        return
+    if not is_recording(path):
+        raise ReplayError(f"{str(path)!r} exists and is not an nbkit recording; pass another `to` folder")
+    previous = (read_json(path / META_FILE).get("replay") or {}).get("parent")
+    if previous is None or Path(previous).resolve() != Path(parent).resolve():
+        raise ReplayError(f"{str(path)!r} holds a recording that is not a replay of {str(parent)!r}; it is kept. "
+                          "Pass another `to` folder or another replay name")
