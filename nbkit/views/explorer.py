@@ -20,7 +20,7 @@ import traitlets
 
 from nbkit.views.common import StaticPicture, compose_png, figure_png, safe_call
 from nbkit.views.coordinates import CoordinateView
-from nbkit.views.data import RunData
+from nbkit.views.data import ExplorerData
 from nbkit.views.layer_map import LayerMap
 from nbkit.views.timeline import Timeline
 
@@ -62,7 +62,7 @@ class Explorer(StaticPicture, widgets.VBox):
             raise ValueError(f"Unknown quantity {quantity!r} for the layer map; choose one of run.quantities: "
                              f"{', '.join(run.quantities)}")
         self.run, self.recorder = run, recorder
-        self.data = RunData(run)
+        self.data = ExplorerData(run)
         self._lock = threading.RLock()
         self._moving = False
         self.findings: list = []           # filled by a background thread: findings can take seconds
