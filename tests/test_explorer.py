@@ -71,7 +71,7 @@ def test_cursor_moves_every_part_to_the_recorded_values(view, run_path):
     # layer map: the values at the cursor are the recording's series at that row
     shown = np.asarray(view.layer_map.values.get_xdata(), dtype=np.float64)
     expected = run.series(view.quantity)[row].astype(np.float64)
-    np.testing.assert_allclose(shown, np.where(expected > 0, expected, np.nan) if view.layer_map._is_log else expected)
+    np.testing.assert_allclose(shown, np.where(expected > 0, expected, np.nan) if view.layer_map.is_log else expected)
     # coordinate view: |lr*g| and |update| of the tensor's probes at that row, classes as classify_gain
     probes = run.probes(view.tensor, rows=slice(row, row + 1))
     lr = run.lr[row, 0]
@@ -123,7 +123,7 @@ def test_clicking_a_row_picks_its_tensor_and_loads_its_histogram(view, run_path)
     run = nbkit.load(run_path)
     target = run.tensors[2]
     _click(view.layer_map.canvas, view.layer_map.map_axes, 10, 2)
-    assert view.tensor == target and view.tensor_picker.value == target
+    assert view.tensor == target and view.tensor_menu.value == target
     assert view.coordinates.tensor == target
     _, counts = run.histogram("gain", target)                              # (steps, bins)
     any_tensor = sum(run.histogram("gain", t)[1].sum(axis=1) for t in run.tensors) > 0
@@ -161,7 +161,7 @@ def test_clicking_a_finding_moves_the_cursor_and_picks_its_tensor(view):
     finding = Finding(kind="grad-spike", tensors=[view.run.tensors[3]], first_step=44, last_step=50,
                       severity="warning", evidence={"ratio": 12.0}, suggestion="check the batch")
     view.findings = [finding]
-    view.findings_list.options = view._finding_options()
+    view.findings_list.options = view.finding_options()
     view.findings_list.value = 0
     assert view.step == 44 and view.tensor == view.run.tensors[3]
     assert "grad-spike" in view.findings_list.options[0][0]
@@ -233,8 +233,8 @@ def test_minmax_downsample_keeps_spikes():
 
 @pytest.mark.slow
 def test_live_view_follows_a_running_recorder_and_keeps_a_moved_cursor(tmp_path, monkeypatch):
-    monkeypatch.setattr("nbkit.views.explorer.LIVE_MIN_INTERVAL", 0.0)
-    monkeypatch.setattr("nbkit.views.explorer.LIVE_COST_FACTOR", 0.0)
+    monkeypatch.setattr("nbkit.views.live.LIVE_MIN_INTERVAL", 0.0)
+    monkeypatch.setattr("nbkit.views.live.LIVE_COST_FACTOR", 0.0)
     model = _model()
     opt = torch.optim.Adam(model.parameters(), lr=1e-2)
     x, y = torch.randn(16, 6), torch.randn(16, 1)
@@ -253,7 +253,7 @@ def test_live_view_follows_a_running_recorder_and_keeps_a_moved_cursor(tmp_path,
             time.sleep(0.02)
             seen.append(v.data.rows)
         assert len(set(seen)) >= 3 and seen[-1] > start_rows              # grew, several times, during the loop
-        with v._lock:                                                      # the poller may be mid-refresh
+        with v.lock:                                                       # the poller may be mid-refresh
             assert v.step == int(v.data.steps[-1])                         # and the cursor followed the end
         v.step = 2
         for _ in range(20):
@@ -321,3 +321,100 @@ def test_view_of_a_path_follows_a_recording_another_process_writes(tmp_path):
         v.close()
     finally:
         writer.kill()
+
+
+def test_log_scale_toggle_sets_the_loss_axis_scale(view):
+    assert view.log_toggle.description == "log scale"
+    view.log_toggle.value = True
+    assert view.timeline.log_scale and view.timeline.loss_axes.get_yscale() == "log"
+    view.log_toggle.value = False
+    assert view.timeline.loss_axes.get_yscale() == "linear"
+
+
+# --- the reads the explorer relies on (nbkit.load's public API) ------------------------------------
+def test_probe_fields_keyword_decodes_only_the_fields_asked_for(run_path):
+    run = nbkit.load(run_path)
+    tensor = run.tensors[1]
+    everything = run.probes(tensor, rows=slice(5, 9))
+    some = run.probes(tensor, rows=slice(5, 9), fields=["update", "not_a_field"])
+    assert set(some) == {"index", "update"}
+    np.testing.assert_array_equal(some["update"], everything["update"])
+    np.testing.assert_array_equal(some["index"], everything["index"])
+    assert some["update"].shape == (4, len(run.probe_index(tensor)))
+
+
+def test_histogram_counts_hold_every_tensor_and_learning_rates_a_row_slice(run_path):
+    run = nbkit.load(run_path)
+    edges, counts = run.histogram_counts("gain", rows=slice(10, 30))         # (rows, tensors, bins)
+    assert counts.shape == (20, len(run.tensors), len(edges) - 1)
+    for i, tensor in enumerate(run.tensors):
+        tensor_edges, tensor_counts = run.histogram("gain", tensor, rows=slice(10, 30))
+        np.testing.assert_array_equal(edges, tensor_edges)
+        np.testing.assert_array_equal(counts[:, i, :], tensor_counts)
+    np.testing.assert_array_equal(run.learning_rates(rows=slice(10, 30)), run.lr[10:30])
+    assert run.learning_rates().shape == run.lr.shape
+    with pytest.raises(nbkit.RecordingError, match="histograms exist for"):
+        run.histogram_counts("weight")
+
+
+def _flip_bytes_in_first_chunk(folder):
+    chunk = next(c for c in sorted((folder / "c").rglob("*")) if c.is_file())
+    data = bytearray(chunk.read_bytes())
+    for i in range(len(data) // 3, len(data) // 3 + 4):
+        data[i] ^= 0xFF
+    chunk.write_bytes(bytes(data))
+
+
+@pytest.mark.parametrize("array", ["probe/grad", "hist/gain"])
+def test_a_damaged_chunk_reaches_the_view_as_the_readers_error(run_path, tmp_path, array):
+    import shutil
+
+    copy = tmp_path / "damaged"
+    shutil.copytree(run_path, copy)
+    _flip_bytes_in_first_chunk(copy / array)
+    data = view_data.ExplorerData(nbkit.load(copy))
+    name = array.split("/")[0]
+    with pytest.raises(nbkit.RecordingError, match=f"{array}.*CRC32C"):
+        if name == "probe":
+            data.probes_at(data.run.tensors[0], 3, ["grad", "update"])
+        else:
+            data.histogram_image("gain", data.run.tensors[0])
+    if name == "probe":                                                       # other fields still read
+        assert data.probes_at(data.run.tensors[0], 3, ["update"])["update"].shape == (8,)
+
+
+class _StubRecorder:
+    """The public surface of a live Recorder the explorer uses, nothing else."""
+
+    def __init__(self, path):
+        self.recording_path = path
+        self.hooks, self.flushes = {}, []
+
+    def add_step_hook(self, fn):
+        stub = self
+
+        class Handle:
+            def remove(self):
+                stub.hooks.pop(id(self), None)
+        handle = Handle()
+        self.hooks[id(handle)] = fn
+        return handle
+
+    def flush(self, wait=True):
+        self.flushes.append(wait)
+
+
+def test_a_live_view_uses_only_the_recorders_public_surface(run_path, monkeypatch):
+    monkeypatch.setattr("nbkit.views.live.LIVE_MIN_INTERVAL", 0.0)
+    monkeypatch.setattr("nbkit.views.live.LIVE_COST_FACTOR", 0.0)
+    recorder = _StubRecorder(run_path)
+    v = nbkit.explore(recorder)
+    try:
+        assert v.recorder is recorder and len(recorder.hooks) == 1
+        assert v.step == int(v.data.steps[-1])                                 # a live view starts at the end
+        next(iter(recorder.hooks.values()))(None)                             # one recorded step
+        assert recorder.flushes == [False] and v.errors.value == ""           # asked to commit, did not wait
+    finally:
+        v.close()
+    assert recorder.hooks == {}                                               # close removed the step hook
+    v.close()                                                                 # and closing twice is safe

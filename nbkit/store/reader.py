@@ -194,14 +194,19 @@ class RecordingReader:
             index = self._cache["probe_index"] = self._read(layout.PROBE_INDEX)
         return index[i][index[i] >= 0]
 
-    def probes(self, tensor: str, *, rows: slice | None = None) -> dict[str, np.ndarray]:
-        """Probe coordinates of `tensor`: "index" and every recorded field, each (steps, probes)."""
+    def probes(self, tensor: str, *, rows: slice | None = None, fields=None) -> dict[str, np.ndarray]:
+        """Probe coordinates of `tensor`: "index" and every recorded field, each (steps, probes).
+
+        fields=None: decode every recorded field; a list of names decodes only those of them the
+        recording holds (the others are left out), so a caller that draws two fields reads two.
+        """
         i = self.tensor_index(tensor)
         index = self.probe_index(tensor)
         rows = _clip(rows, self._rows)
         n = len(range(*rows.indices(self._rows)))
         out = {"index": np.broadcast_to(index, (n, len(index)))}
-        for name in self.meta.get("probe_fields", []):
+        recorded = self.meta.get("probe_fields", [])
+        for name in recorded if fields is None else [f for f in fields if f in recorded]:
             out[name] = self._read(layout.probe_array(name), (rows, i, slice(0, len(index))))
         return out
 
@@ -213,6 +218,26 @@ class RecordingReader:
         low = self.meta["histogram_low"][q]
         counts = self._read(layout.histogram_array(q), (_clip(rows, self._rows), self.tensor_index(tensor), slice(0, bins)))
         return np.arange(low, low + bins + 1, dtype=np.float64), counts
+
+    # --- reads for the views: row slices of every tensor at once ----------------------------------
+    def histogram_counts(self, q: str, *, rows: slice | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """(bin edges in log2 units (bins + 1,), counts (steps, tensors, bins)) of q for every tensor.
+
+        The same bins and counts as histogram(q, tensor), for all tensors in one read; rows=None
+        reads every committed step, a slice reads those rows.
+        """
+        if q not in HISTOGRAMS:
+            raise RecordingError(f"No histogram of {q!r}; histograms exist for {', '.join(HISTOGRAMS)}")
+        bins = self.meta["histogram_bins"]
+        low = self.meta["histogram_low"][q]
+        counts = self._read(layout.histogram_array(q), (_clip(rows, self._rows), slice(None), slice(0, bins)))
+        return np.arange(low, low + bins + 1, dtype=np.float64), counts
+
+    def learning_rates(self, *, rows: slice | None = None) -> np.ndarray:
+        """(steps, param_groups) float64 learning rate of each group, over `rows` (None: every step)."""
+        if self._rows == 0:
+            return np.zeros((0, len(self.meta.get("param_groups", []))))
+        return self._read(layout.LR, (_clip(rows, self._rows),))
 
     @property
     def keyframes(self) -> list[int]:

@@ -4,10 +4,15 @@ from __future__ import annotations
 import base64
 import io
 import threading
-import traceback
 import warnings
+from pathlib import Path
 
+import matplotlib
 import numpy as np
+from ipympl.backend_nbagg import Canvas, FigureManager
+from matplotlib.figure import Figure
+from matplotlib.ticker import FuncFormatter, LogLocator, NullLocator
+from PIL import Image, ImageDraw, ImageFont
 
 # Okabe & Ito (2008), "Color Universal Design", eight colours safe for the common colour-vision
 # deficiencies (hex values from memory). Grey for "ordinary" so the three classes stand out.
@@ -47,8 +52,6 @@ def plain_log_ticks(axis) -> None:
     matplotlib's default log ticks are typeset as mathtext (10^-5) with eight minor ticks a decade;
     measured here they were a quarter of a full draw (~0.9 s of CPU over the explorer's first draw).
     """
-    from matplotlib.ticker import FuncFormatter, LogLocator, NullLocator
-
     if axis.get_scale() != "log":
         return
     axis.set_major_locator(LogLocator(numticks=6))
@@ -60,10 +63,7 @@ def label_of(q: str) -> str:
     return UNITS.get(q, q.replace("_", " "))
 
 
-_CANVAS_CLASS = None
-
-
-def _canvas_class():
+class ViewCanvas(Canvas):
     """ipympl's Canvas with a faster PNG encoder for the images it sends after each redraw.
 
     get_diff_image follows matplotlib 3.11's FigureCanvasWebAggCore.get_diff_image
@@ -71,51 +71,54 @@ def _canvas_class():
     on these machines that halves the encoding time of a mostly-empty diff image (24 ms -> 12 ms
     for 600 x 640 pixels, measured here), which is most of a cursor move's cost.
     """
-    global _CANVAS_CLASS
-    if _CANVAS_CLASS is None:
-        from ipympl.backend_nbagg import Canvas
-        from PIL import Image
 
-        class ViewCanvas(Canvas):
-            def get_diff_image(self):
-                if not self._png_is_old:
-                    return None
-                pixels = np.asarray(self.get_renderer().buffer_rgba())
-                buff = pixels.view(np.uint32).squeeze(2)
-                if (self._force_full or buff.shape != self._last_buff.shape
-                        or (pixels[:, :, 3] != 255).any()):
-                    self.set_image_mode("full")
-                    output = buff
-                else:
-                    self.set_image_mode("diff")
-                    output = np.where(buff != self._last_buff, buff, 0)
-                self._last_buff = buff.copy()
-                self._force_full = False
-                self._png_is_old = False
-                data = output.view(dtype=np.uint8).reshape((*output.shape, 4))
-                with io.BytesIO() as png:
-                    Image.fromarray(data).save(png, format="png", compress_level=1)
-                    return png.getvalue()
+    def get_diff_image(self):
+        if not self._png_is_old:
+            return None
+        pixels = np.asarray(self.get_renderer().buffer_rgba())
+        buff = pixels.view(np.uint32).squeeze(2)
+        if (self._force_full or buff.shape != self._last_buff.shape
+                or (pixels[:, :, 3] != 255).any()):
+            self.set_image_mode("full")
+            output = buff
+        else:
+            self.set_image_mode("diff")
+            output = np.where(buff != self._last_buff, buff, 0)
+        self._last_buff = buff.copy()
+        self._force_full = False
+        self._png_is_old = False
+        data = output.view(dtype=np.uint8).reshape((*output.shape, 4))
+        with io.BytesIO() as png:
+            Image.fromarray(data).save(png, format="png", compress_level=1)
+            return png.getvalue()
 
-            def send_binary(self, data):
-                # ipympl 0.10's send_binary, while no browser has said "initialized", replaces the PNG
-                # it was given by the raw RGBA pixels before sending them, so a browser showing the
-                # canvas while the kernel is busy (a live view during training) gets a broken image.
-                # Here the PNG is always what is sent; the static copy (_data_url) is kept as ipympl
-                # keeps it.
-                if self.syncing_data_url:
-                    png = data if self._current_image_mode == "full" else _png(self._last_buff)
-                    self._data_url = base64.b64encode(png).decode("utf-8")
-                self.send({"data": '{"type": "binary"}'}, buffers=[data])
+    def send_binary(self, data):
+        # ipympl 0.10's send_binary, while no browser has said "initialized", replaces the PNG
+        # it was given by the raw RGBA pixels before sending them, so a browser showing the
+        # canvas while the kernel is busy (a live view during training) gets a broken image.
+        # Here the PNG is always what is sent; the static copy (_data_url) is kept as ipympl
+        # keeps it.
+        if self.syncing_data_url:
+            png = data if self._current_image_mode == "full" else _png(self._last_buff)
+            self._data_url = base64.b64encode(png).decode("utf-8")
+        self.send({"data": '{"type": "binary"}'}, buffers=[data])
 
-        def _png(buff):
-            with io.BytesIO() as out:
-                Image.fromarray(buff.view(dtype=np.uint8).reshape((*buff.shape, 4))).save(
-                    out, format="png", compress_level=1)
-                return out.getvalue()
+    def force_full_frame(self):
+        """Make the next image sent a full frame, not a diff (FigureCanvasWebAggCore's own flag)."""
+        self._force_full = True
 
-        _CANVAS_CLASS = ViewCanvas
-    return _CANVAS_CLASS
+    def send_full_frame(self):
+        """Send the whole current image now as a full frame (it replaces any diff a browser skipped)."""
+        self._force_full = True
+        self._png_is_old = True
+        self.manager.refresh_all()
+
+
+def _png(buff):
+    with io.BytesIO() as out:
+        Image.fromarray(buff.view(dtype=np.uint8).reshape((*buff.shape, 4))).save(
+            out, format="png", compress_level=1)
+        return out.getvalue()
 
 
 def make_canvas(width_px: int, height_px: int, *, css_class: str, dpi: int = 100):
@@ -124,11 +127,8 @@ def make_canvas(width_px: int, height_px: int, *, css_class: str, dpi: int = 100
     Building the Figure directly (not plt.figure) means it is never shown twice and never leaks
     into pyplot's figure list, which is what `with plt.ioff():` is usually there to prevent.
     """
-    from ipympl.backend_nbagg import FigureManager
-    from matplotlib.figure import Figure
-
     figure = Figure(figsize=(width_px / dpi, height_px / dpi), dpi=dpi)
-    canvas = _canvas_class()(figure)
+    canvas = ViewCanvas(figure)
     with warnings.catch_warnings():      # ipympl 0.10's Toolbar passes traitlets an argument it deprecates
         warnings.simplefilter("ignore", DeprecationWarning)
         manager = FigureManager(canvas, id(figure))
@@ -202,12 +202,9 @@ class Blitter:
         self._heal_timer.start()
 
     def _heal(self):
-        canvas = self.figure.canvas
         with self.lock:
             try:
-                canvas._force_full = True          # FigureCanvasWebAggCore's own "next frame is full" flag
-                canvas._png_is_old = True
-                canvas.manager.refresh_all()
+                self.figure.canvas.send_full_frame()
             except Exception:                      # noqa: BLE001 - a closed canvas; nothing to heal
                 pass
 
@@ -221,18 +218,11 @@ def figure_png(figure) -> np.ndarray:
     buffer = io.BytesIO()
     figure.savefig(buffer, format="png", dpi=figure.dpi)
     buffer.seek(0)
-    from PIL import Image
-
     return np.asarray(Image.open(buffer).convert("RGBA"))
 
 
 def _footer_font():
     """Matplotlib's own DejaVu Sans (it covers ε, √, ×, …), at the size of the figures' small labels."""
-    from pathlib import Path
-
-    import matplotlib
-    from PIL import ImageFont
-
     return ImageFont.truetype(str(Path(matplotlib.get_data_path()) / "fonts" / "ttf" / "DejaVuSans.ttf"), 12)
 
 
@@ -251,8 +241,6 @@ def _wrap(line: str, font, width: int) -> list[str]:
 
 def compose_png(rows: list[list[np.ndarray]], footer: str = "") -> bytes:
     """Stack rows of RGBA images (each row side by side) on white, with a text footer; PNG bytes."""
-    from PIL import Image, ImageDraw
-
     row_images = []
     for row in rows:
         height = max(img.shape[0] for img in row)
@@ -279,33 +267,3 @@ def compose_png(rows: list[list[np.ndarray]], footer: str = "") -> bytes:
     buffer = io.BytesIO()
     out.convert("RGB").save(buffer, format="png")
     return buffer.getvalue()
-
-
-class StaticPicture:
-    """Mixin for views with `png_bytes()`: `.to_png(path)` and a PNG in the notebook's display data,
-    so exported notebooks and reports show the view without a kernel."""
-
-    def to_png(self, path):
-        """Render the whole view as it is now to a PNG file at `path`."""
-        with open(path, "wb") as handle:
-            handle.write(self.png_bytes())
-        return path
-
-    def _repr_mimebundle_(self, **kwargs):
-        bundle = super()._repr_mimebundle_(**kwargs) or {}
-        try:
-            bundle["image/png"] = base64.b64encode(self.png_bytes()).decode("ascii")
-        except Exception:                            # a static image is a fallback; never break display
-            pass
-        return bundle
-
-
-def safe_call(fn, *args, on_error=None):
-    """Call a user's (or a view part's) callback; an error is reported, never raised into the view."""
-    try:
-        return fn(*args)
-    except Exception:                                   # a view keeps working whatever the callback does
-        text = traceback.format_exc()
-        if on_error is not None:
-            on_error(text)
-        return None

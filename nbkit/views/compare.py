@@ -12,11 +12,13 @@ from __future__ import annotations
 import html
 
 import ipywidgets as widgets
+import matplotlib.pyplot as plt
 import numpy as np
 import traitlets
 
-from nbkit.views.common import (StaticPicture, GAIN_CLASS_COLOURS, SIGNED_MAP, Blitter, compose_png, figure_png, label_of,
-                                make_canvas, safe_call)
+from nbkit.analyze.landscape import landscape_slice
+from nbkit.views.base import GuardedView
+from nbkit.views.common import GAIN_CLASS_COLOURS, SIGNED_MAP, Blitter, compose_png, figure_png, label_of, make_canvas
 from nbkit.views.landscape import RUN_COLOURS, LandscapePanel, run_names
 
 DEFAULT_QUANTITY = "update_ratio"
@@ -40,16 +42,15 @@ def difference_map(a, b, quantity: str):
         return common, va - vb, tensors, "difference"
 
 
-class Comparison(StaticPicture, widgets.VBox):
+class Comparison(GuardedView, widgets.VBox):
     """The comparison widget. Set `step`, `tensor` or `quantity` from code; the view follows."""
 
     step = traitlets.Int(0, help="the cursor: an absolute optimizer step number").tag(sync=True)
     tensor = traitlets.Unicode("", help="the tensor whose quantity and shares are shown").tag(sync=True)
     quantity = traitlets.Unicode(DEFAULT_QUANTITY, help="the per-tensor quantity compared").tag(sync=True)
+    view_name = "comparison"
 
     def __init__(self, run, *others, model=None, step_fn=None, batch=None, quantity=DEFAULT_QUANTITY):
-        import matplotlib.pyplot as plt
-
         self.runs = run_names([run, *others])
         self.names = list(self.runs)
         self.colours = {name: RUN_COLOURS[k % len(RUN_COLOURS)] for k, name in enumerate(self.names)}
@@ -64,6 +65,7 @@ class Comparison(StaticPicture, widgets.VBox):
         self.pair = (self.names[0], self.names[-1])
         self._cache: dict = {}
         self._moving = False
+        self.start_guarding()
         with plt.ioff():
             self._build_figures()
             self.landscape = None
@@ -80,9 +82,9 @@ class Comparison(StaticPicture, widgets.VBox):
             self.tensor = self.tensors[0] if self.tensors else ""
             # the first step every run holds, so each run has a bar at the start
             self.step = self.snap(max(int(steps[0]) for steps in self.run_steps.values() if len(steps)))
-        self.observe(lambda c: self._guard(self._move, c["new"]), "step")
-        self.observe(lambda c: self._guard(self._redraw), "tensor")
-        self.observe(lambda c: self._guard(self._redraw), "quantity")
+        self.observe(lambda c: self.guard(self._move, c["new"]), "step")
+        self.observe(lambda c: self.guard(self._redraw), "tensor")
+        self.observe(lambda c: self.guard(self._redraw), "quantity")
         self._redraw()
 
     # --- building -------------------------------------------------------------------------------
@@ -142,8 +144,6 @@ class Comparison(StaticPicture, widgets.VBox):
         self.share_title = self.detail_blitter.add(self.share_axes.set_title("", fontsize=9, loc="left"))
 
     def _build_landscape(self, model, step_fn, batch):
-        from nbkit.analyze.landscape import landscape_slice
-
         self.landscape = landscape_slice(model, step_fn, batch, self.runs)
         self.landscape_figure, self.landscape_canvas = make_canvas(620, 480, css_class="nbkit-comparison-landscape")
         self.landscape_panel = LandscapePanel(self.landscape_figure.add_subplot(1, 1, 1), self.landscape, self.colours)
@@ -166,23 +166,15 @@ class Comparison(StaticPicture, widgets.VBox):
         self.quantity_menu = widgets.Dropdown(options=first.quantities, value=quantity, description="quantity")
         self.pair_menus = [widgets.Dropdown(options=self.names, value=v, description=d, layout={"width": "220px"})
                            for v, d in zip(self.pair, ("map: run", "minus"))]
-        self.slider.observe(lambda c: self._guard(setattr, self, "step", int(c["new"])), "value")
-        self.tensor_menu.observe(lambda c: self._guard(setattr, self, "tensor", c["new"]), "value")
-        self.quantity_menu.observe(lambda c: self._guard(setattr, self, "quantity", c["new"]), "value")
+        self.slider.observe(lambda c: self.guard(setattr, self, "step", int(c["new"])), "value")
+        self.tensor_menu.observe(lambda c: self.guard(setattr, self, "tensor", c["new"]), "value")
+        self.quantity_menu.observe(lambda c: self.guard(setattr, self, "quantity", c["new"]), "value")
         for menu in self.pair_menus:
-            menu.observe(lambda c: self._guard(self._set_pair), "value")
+            menu.observe(lambda c: self.guard(self._set_pair), "value")
         self.controls = widgets.VBox([widgets.HBox([self.slider, self.tensor_menu]),
                                       widgets.HBox([self.quantity_menu, *self.pair_menus])])
-        self.errors = widgets.HTML("")
 
     # --- reacting -------------------------------------------------------------------------------
-    def _guard(self, fn, *args):
-        return safe_call(fn, *args, on_error=self._show_error)
-
-    def _show_error(self, text):
-        self.errors.value = ("<details open><summary>the comparison hit an error and carried on</summary>"
-                             f"<pre>{html.escape(text[-4000:])}</pre></details>")
-
     def _set_pair(self):
         self.pair = tuple(menu.value for menu in self.pair_menus)
         self._redraw()
@@ -310,7 +302,6 @@ class Comparison(StaticPicture, widgets.VBox):
             rows.append([figure_png(self.landscape_figure)])
         footer = f"comparison of {', '.join(self.names)}: step {self.step}, tensor {self.tensor}, {self.quantity}"
         return compose_png(rows, footer)
-
 
     def close(self):
         # getattr: close() also runs from __del__ of a view whose __init__ raised (bad input)

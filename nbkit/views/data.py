@@ -1,15 +1,15 @@
 """What the views read from a Recording: lazy, cached by storage block, downsampled to pixels.
 
-Views only select; every number shown comes from the recording as stored. Reads go through the
-Recording's public API, except the probe and histogram fields, which are read straight from
-`run.group` so that a cursor move decodes only the fields it draws (the reader's probes() decodes
-every field). Blocks of rows are cached, so scrubbing inside one storage chunk costs no reads.
+Views only select; every number shown comes from the recording as stored. Every read goes through
+the Recording's public API (so a damaged chunk shows as the reader's RecordingError), one storage
+chunk of rows at a time: blocks are cached, so scrubbing inside one chunk costs no reads, and a
+cursor move decodes only the probe fields it draws.
 """
 from __future__ import annotations
 
 import numpy as np
 
-from nbkit.store.files import DETAIL_CHUNK, OVERVIEW_BLOCK, STEP_CHUNK
+from nbkit.store.layout import DETAIL_CHUNK, OVERVIEW_BLOCK, STEP_CHUNK
 
 LONG = 16_384            # rows above which timelines use the stored min/max overview
 HISTOGRAM_BLOCKS = 64    # storage blocks sampled for a long recording's histogram image (each ~6 ms)
@@ -37,7 +37,7 @@ def minmax_downsample(x: np.ndarray, y: np.ndarray, buckets: int) -> tuple[np.nd
     return np.asarray(xs), np.asarray(ys)
 
 
-class RunData:
+class ExplorerData:
     """Cached selections from one Recording for the explorer's parts."""
 
     def __init__(self, run):
@@ -115,22 +115,21 @@ class RunData:
         return float(np.nanmax(column)) if np.isfinite(column).any() else np.nan
 
     # --- per-row selections (cached by storage block) -------------------------------------------
-    def _block(self, name: str, row: int, chunk: int, column=None) -> np.ndarray:
+    def _block(self, key: tuple, row: int, chunk: int, read) -> np.ndarray:
+        """Row `row` of the storage block holding it; read(rows: slice) reads a block on a miss."""
         block = row // chunk
-        key = (name, block, column)
-        data = self._block_cache.get(key)
+        data = self._block_cache.get((key, block))
         if data is None:
             if len(self._block_cache) > 64:                           # keep memory bounded while scrubbing
                 self._block_cache = {k: v for k, v in self._block_cache.items() if k == "lr"}
-            rows = slice(block * chunk, min((block + 1) * chunk, self.rows))
-            array = self.run.group[name]
-            data = array[rows] if column is None else array[rows, column]
-            self._block_cache[key] = data
+            data = read(slice(block * chunk, min((block + 1) * chunk, self.rows)))
+            self._block_cache[(key, block)] = data
         return data[row - block * chunk]
 
     def values_at(self, q: str, row: int) -> np.ndarray:
         """(tensors,) values of q at row."""
-        return np.asarray(self._block(f"q/{q}", row, STEP_CHUNK), dtype=np.float64)
+        values = self._block(("series", q), row, STEP_CHUNK, lambda rows: self.run.series(q, rows=rows))
+        return np.asarray(values, dtype=np.float64)
 
     def value_at(self, q: str, tensor: str, row: int) -> float:
         return float(self.values_at(q, row)[self.run.tensor_index(tensor)])
@@ -140,14 +139,19 @@ class RunData:
 
     def probes_at(self, tensor: str, row: int, fields) -> dict[str, np.ndarray]:
         """{field: (probes,) values} of tensor's probe coordinates at row (fields that exist)."""
-        i = self.run.tensor_index(tensor)
-        width = len(self.run.probe_index(tensor))
         have = set(self.probe_fields())
-        return {f: np.asarray(self._block(f"probe/{f}", row, DETAIL_CHUNK, i)[:width], dtype=np.float64)
-                for f in fields if f in have}
+        out = {}
+        for field in fields:
+            if field in have:
+                values = self._block(("probe", field, tensor), row, DETAIL_CHUNK,
+                                     lambda rows, f=field: self.run.probes(tensor, rows=rows, fields=[f])[f])
+                out[field] = np.asarray(values, dtype=np.float64)
+        return out
 
     def lr_at(self, row: int) -> np.ndarray:
-        return np.asarray(self._block("lr", row, STEP_CHUNK), dtype=np.float64)
+        """(param_groups,) learning rates at row."""
+        values = self._block(("learning_rates",), row, STEP_CHUNK, lambda rows: self.run.learning_rates(rows=rows))
+        return np.asarray(values, dtype=np.float64)
 
     def histogram_image(self, q: str, tensor: str) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
         """(column edges in steps, bin edges in log2 units, (bins, columns) share per column, how)."""
@@ -157,12 +161,11 @@ class RunData:
 
     def _fill_histograms(self, q: str) -> None:
         """One pass over storage blocks fills the images of every tensor: a block holds all tensors."""
-        edges, _ = self.run.histogram(q, self.run.tensors[0], rows=slice(0, 0))
-        bins = len(edges) - 1
-        array = self.run.group[f"hist/{q}"]
+        edges, _ = self.run.histogram_counts(q, rows=slice(0, 0))
         blocks = -(-self.rows // DETAIL_CHUNK)
         if blocks <= HISTOGRAM_BLOCKS:
-            counts = array[0:self.rows, :, :bins].astype(np.float64)              # (rows, T, bins)
+            _, counts = self.run.histogram_counts(q, rows=slice(0, self.rows))
+            counts = counts.astype(np.float64)                                    # (rows, T, bins)
             held = np.flatnonzero(counts.sum(axis=(1, 2)) > 0)                   # rows with a histogram
             held = held if held.size else np.arange(self.rows)
             cols = np.linspace(0, len(held), min(HISTOGRAM_COLUMNS, len(held)) + 1).astype(np.int64)
@@ -171,8 +174,9 @@ class RunData:
             how = "all steps" if len(held) == self.rows else f"the {len(held)} steps with histograms"
         else:
             chosen = np.unique(np.linspace(0, blocks - 1, HISTOGRAM_BLOCKS).round().astype(np.int64))
-            image = np.stack([array[b * DETAIL_CHUNK:min((b + 1) * DETAIL_CHUNK, self.rows), :, :bins]
-                              .astype(np.float64).sum(axis=0) for b in chosen])
+            rows_of = [slice(b * DETAIL_CHUNK, min((b + 1) * DETAIL_CHUNK, self.rows)) for b in chosen]
+            image = np.stack([self.run.histogram_counts(q, rows=rows)[1].astype(np.float64).sum(axis=0)
+                              for rows in rows_of])                               # (columns, T, bins)
             cols = np.append(chosen * DETAIL_CHUNK, self.rows)
             how = f"{len(chosen)} sampled blocks of {DETAIL_CHUNK} steps out of {blocks}"
         with np.errstate(invalid="ignore", divide="ignore"):

@@ -6,12 +6,16 @@ keyframe nearest the cursor `step`. The comparison embeds the same panel.
 """
 from __future__ import annotations
 
-
 import ipywidgets as widgets
+import matplotlib.pyplot as plt
 import numpy as np
 import traitlets
+from matplotlib.colors import LogNorm
 
-from nbkit.views.common import StaticPicture, MAGNITUDE_MAP, OKABE_ITO, compose_png, figure_png, make_canvas
+from nbkit.analyze.landscape import landscape_slice
+from nbkit.recording import Recording, load
+from nbkit.views.base import StaticPicture
+from nbkit.views.common import MAGNITUDE_MAP, OKABE_ITO, compose_png, figure_png, make_canvas
 
 # Okabe & Ito (2008) colours, in the order runs take them (colour-blind safe).
 RUN_COLOURS = [OKABE_ITO[c] for c in ("blue", "orange", "bluish green", "vermillion", "reddish purple",
@@ -21,8 +25,6 @@ RUN_COLOURS = [OKABE_ITO[c] for c in ("blue", "orange", "bluish green", "vermill
 def run_names(runs) -> dict:
     """{name: Recording} from a Recording, a path, a list of them, or a dict. A replay is named by its
     optimizer name, anything else by its folder name; repeated names get a suffix."""
-    from nbkit.store.reader import Recording, load
-
     if isinstance(runs, dict):
         return {str(k): (v if isinstance(v, Recording) else load(v)) for k, v in runs.items()}
     if isinstance(runs, Recording) or not isinstance(runs, (list, tuple)):
@@ -48,8 +50,6 @@ class LandscapePanel:
         levels = 24
         if finite.size and finite.min() > 0 and finite.max() / finite.min() > 30:
             levels = np.geomspace(finite.min(), finite.max(), 24)      # losses spanning decades
-        from matplotlib.colors import LogNorm
-
         norm = LogNorm(finite.min(), finite.max()) if not isinstance(levels, int) else None
         contours = axes.contourf(landscape.alpha, landscape.beta, loss, levels=levels, cmap=MAGNITUDE_MAP, norm=norm)
         axes.contour(landscape.alpha, landscape.beta, loss, levels=contours.levels[::4], colors="white",
@@ -87,10 +87,6 @@ class LandscapeView(StaticPicture, widgets.VBox):
     step = traitlets.Int(0, help="the cursor: an absolute optimizer step number").tag(sync=True)
 
     def __init__(self, model, step_fn, batch, runs, *, resolution=21, progress=True):
-        import matplotlib.pyplot as plt
-
-        from nbkit.analyze.landscape import landscape_slice
-
         self.runs = run_names(runs)
         self.slice = landscape_slice(model, step_fn, batch, self.runs, resolution=resolution, progress=progress)
         colours = {name: RUN_COLOURS[k % len(RUN_COLOURS)] for k, name in enumerate(self.runs)}

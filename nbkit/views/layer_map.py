@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 from matplotlib.colors import LogNorm, Normalize, TwoSlopeNorm
+from matplotlib.ticker import LogLocator
 
 from nbkit.views.common import (MAGNITUDE_MAP, OKABE_ITO, SHARE_MAP, SHARE_QUANTITIES, SIGNED_MAP,
                                 SIGNED_QUANTITIES, Blitter, label_of, make_canvas, plain_log_ticks)
@@ -62,6 +63,7 @@ class LayerMap:
         self.value_axes.set_title("at the cursor", fontsize=8)
         self.title = self.figure.text(0.01, 0.985, "", fontsize=9, va="top")
         self.quantity = None
+        self.is_log = False                 # whether the quantity shown is coloured on a log scale
         self.canvas.mpl_connect("button_press_event", self._press)
 
     def set_quantity(self, q: str):
@@ -85,8 +87,6 @@ class LayerMap:
         self.value_axes.set_xscale("log" if is_log else "linear")
         plain_log_ticks(self.value_axes.xaxis)
         if is_log:                                   # a narrow axis: three labels at most
-            from matplotlib.ticker import LogLocator
-
             self.value_axes.xaxis.set_major_locator(LogLocator(numticks=3))
         plain_log_ticks(self.colourbar.ax.yaxis)
         if np.isfinite(low):
@@ -97,7 +97,7 @@ class LayerMap:
                 self.value_axes.set_xlim(low - pad, high + pad)
         self.title.set_text(f"{label_of(q)} per tensor ({how})" if np.isfinite(low)
                             else f"{q}: no values recorded")
-        self._is_log = is_log
+        self.is_log = is_log
 
     def set_tensor(self, tensor: str):
         k = self.data.run.tensor_index(tensor)
@@ -111,7 +111,7 @@ class LayerMap:
             self.values.set_data([], [])
             return
         values = self.data.values_at(self.quantity, row)
-        if getattr(self, "_is_log", False):
+        if self.is_log:
             values = np.where(values > 0, values, np.nan)
         self.values.set_data(values, np.arange(len(values)))
 

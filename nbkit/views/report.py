@@ -12,6 +12,7 @@ import tempfile
 from pathlib import Path
 
 import numpy as np
+from nbkit.version import __version__
 
 CAUTION = ("Findings are heuristics: each points at a step and tensor worth a look, not a proven cause. "
            "Verify a finding with a replay from a keyframe before acting on it. Recordings (and this report) "
@@ -108,11 +109,9 @@ def write_report(runs, path, *, title: str = "nbkit report", findings=None, land
     landscape: a landscape view (anything with .to_png) to include. commands: shell lines that
     reproduce the report.
     """
-    import nbkit
-
     runs = list(runs)
     parts = [f"<h1>{html.escape(title)}</h1>",
-             f"<p>Written {datetime.datetime.now().strftime('%Y-%m-%d %H:%M')} by nbkit {nbkit.__version__}.</p>"]
+             f"<p>Written {datetime.datetime.now().strftime('%Y-%m-%d %H:%M')} by nbkit {__version__}.</p>"]
     if intro:
         parts.append(f"<p>{html.escape(intro)}</p>")
     parts.append(f"<p class='caution'>{html.escape(CAUTION)}</p>")
