@@ -222,11 +222,11 @@ def test_grad_spike_at_the_planted_outlier_batch(tmp_path):
     assert "0.weight" in found[0].tensors
 
 
-def test_update_ratio_and_divergence_with_a_far_too_high_learning_rate(tmp_path):
+def test_oversized_updates_and_divergence_with_a_far_too_high_learning_rate(tmp_path):
     x, y = digits()
     model = mlp()
     run = train(model, torch.optim.Adam(model.parameters(), lr=0.5), x, y, 80, tmp_path / "high")
-    found = [f for f in run.findings() if f.kind == "update-ratio" and f.severity == "warning"]
+    found = [f for f in run.findings() if f.kind == "oversized-updates" and f.severity == "warning"]
     assert found and {"0.weight", "2.weight"} & set(found[0].tensors)
     assert found[0].first_step < 20
 
@@ -398,12 +398,63 @@ def test_thresholds_are_overridable_and_unknown_names_are_refused(tmp_path):
     x, y = digits()
     model = mlp()
     run = train(model, torch.optim.Adam(model.parameters(), lr=0.5), x, y, 40, tmp_path / "t")
-    assert "update-ratio" in kinds(run.findings())
-    assert "update-ratio" not in kinds(run.findings(update_ratio_high=1e9, update_ratio_extreme=1e9,
-                                                         update_ratio_low=0))
+    assert "oversized-updates" in kinds(run.findings())
+    assert not {"oversized-updates", "stalled-updates"} & kinds(run.findings(oversized_ratio=1e9,
+                                                                              oversized_single_step=1e9,
+                                                                              stalled_ratio=0))
     with pytest.raises(nbkit.NbkitError, match="Unknown finding threshold"):
         run.findings(spike_factr=3)
     assert Thresholds().window == find.__globals__["Thresholds"]().window
+
+
+def test_oversized_and_stalled_updates_each_fire_on_their_own_side_only(tmp_path):
+    x, y = digits()
+    model = mlp()
+    high = train(model, torch.optim.Adam(model.parameters(), lr=0.5), x, y, 40, tmp_path / "high")
+    model = mlp()
+    low = train(model, torch.optim.SGD(model.parameters(), lr=1e-7), x, y, 40, tmp_path / "low")
+    assert "oversized-updates" in kinds(high.findings()) and "stalled-updates" not in kinds(high.findings())
+    assert "stalled-updates" in kinds(low.findings()) and "oversized-updates" not in kinds(low.findings())
+    stalled = [f for f in low.findings() if f.kind == "stalled-updates"]
+    assert {f.severity for f in stalled} == {"info"} and {"0.weight", "2.weight"} <= {t for f in stalled
+                                                                                       for t in f.tensors}
+    assert all(f.evidence["median_update_ratio"] < Thresholds().stalled_ratio for f in stalled)
+    assert all("too low" in f.suggestion for f in stalled)
+    oversized = [f for f in high.findings() if f.kind == "oversized-updates"]
+    assert {f.severity for f in oversized} == {"warning"} and all("too high" in f.suggestion for f in oversized)
+    # each kind answers to its own thresholds only
+    assert [repr(f) for f in high.findings(stalled_ratio=0)] == [repr(f) for f in high.findings()]
+    assert [repr(f) for f in low.findings(oversized_ratio=1e9, oversized_single_step=1e9)] == \
+        [repr(f) for f in low.findings()]
+    assert "stalled-updates" not in kinds(low.findings(stalled_ratio=0))
+
+
+def test_the_old_update_ratio_thresholds_warn_and_still_apply(tmp_path, capsys):
+    from nbkit.cli import main
+
+    x, y = digits()
+    model = mlp()
+    run = train(model, torch.optim.Adam(model.parameters(), lr=0.5), x, y, 40, tmp_path / "old")
+    for old, new, value in (("update_ratio_high", "oversized_ratio", 1e-3),
+                            ("update_ratio_extreme", "oversized_single_step", 1e9),
+                            ("update_ratio_low", "stalled_ratio", 1.0)):
+        with pytest.warns(DeprecationWarning, match=f"{old!r} is deprecated.*use {new!r}"):
+            with_old = run.findings(**{old: value})
+        assert [repr(f) for f in with_old] == [repr(f) for f in run.findings(**{new: value})]
+        assert [repr(f) for f in with_old] != [repr(f) for f in run.findings()]       # the value applied
+    with pytest.warns(DeprecationWarning) as caught:
+        assert "oversized-updates" not in kinds(run.findings(update_ratio_high=1e9, update_ratio_extreme=1e9))
+    assert sorted(str(w.message).split("use ")[1].split()[0] for w in caught) == ["'oversized_ratio'",
+                                                                                 "'oversized_single_step'"]
+    with pytest.raises(nbkit.NbkitError, match="'update_ratio_high' and 'oversized_ratio' are the same threshold"):
+        run.findings(update_ratio_high=1.0, oversized_ratio=2.0)
+    capsys.readouterr()
+    assert main(["findings", "--json", "--set", "oversized_single_step=1e-3", str(run.path)]) == 0
+    with_new = capsys.readouterr().out
+    with pytest.warns(DeprecationWarning, match="oversized_single_step"):
+        assert main(["findings", "--json", "--set", "update_ratio_extreme=1e-3", str(run.path)]) == 0
+    printed = capsys.readouterr()
+    assert printed.out == with_new and "use --set oversized_single_step" in printed.err
 
 
 def test_findings_command_gates_on_errors_and_on_warnings_with_strict(tmp_path, capsys):
@@ -459,7 +510,7 @@ def test_done_when_orphan_nan_and_high_learning_rate_are_all_named(tmp_path, cap
     assert "orphan" in out and "extra.weight" in out
     nonfinite = [f for f in findings if f.kind == "nonfinite"]
     assert nonfinite and nonfinite[0].first_step <= 150
-    assert kinds(loud(findings)) & {"update-ratio", "grad-spike", "oscillation", "overshoot"}
+    assert kinds(loud(findings)) & {"oversized-updates", "grad-spike", "oscillation", "overshoot"}
 
 
 def test_findings_on_sparse_tiny_and_lossless_recordings(tmp_path):

@@ -20,10 +20,10 @@ from __future__ import annotations
 
 import contextlib
 import copy
-import math
 
 import numpy as np
 import torch
+from torch.nn.attention import SDPBackend, sdpa_kernel
 
 from nbkit.analyze.stability import ADAM_FAMILY, coupled_weight_decay
 from nbkit.errors import NbkitError
@@ -56,8 +56,6 @@ def untouched(model: torch.nn.Module):
 def second_order():
     """Gradients enabled, and attention on PyTorch's math kernel: the fused CPU attention kernels have no
     double backward ("derivative for ..._flash_attention_for_cpu_backward is not implemented")."""
-    from torch.nn.attention import SDPBackend, sdpa_kernel
-
     with torch.enable_grad(), sdpa_kernel([SDPBackend.MATH]):
         yield
 
@@ -218,17 +216,15 @@ def sharpness(model, step_fn, batch, optimizer=None, tol=1e-6) -> float:
         return sharpness_of(loss, params, precondition=P, weight_decay=decays, tol=tol)
 
 
-def fill_keyframe_sharpness(run, model, step_fn, batch, *, tol=1e-6) -> dict[int, float]:
-    """Estimate sharpness at every keyframe that has a recorded row and store it in the `sharpness`
-    series (run.curvature). Works on a copy of `model`; the recording must be closed.
+def keyframe_sharpness(run, model, step_fn, batch, *, tol=1e-6) -> dict[int, float]:
+    """Sharpness at every keyframe of `run` that has a recorded row: {step: sharpness}. Computes only;
+    nothing is written (fill_keyframe_sharpness stores the values). Works on a copy of `model`.
 
     At keyframe s the parameters are those before step s's update, on `batch` (the same batch for every
     keyframe, so the values are comparable). Adam-family recordings get the preconditioned sharpness
     with P from the keyframe's optimizer state (none at keyframe 0, which has no second moment yet).
-    Returns {step: sharpness}.
+    tol=1e-6: Lanczos relative tolerance.
     """
-    from nbkit.store.annotate import write_series
-
     if not run.keyframes:
         raise AnalysisError(f"Recording {str(run.path)!r} has no keyframes to estimate sharpness at")
     work = copy.deepcopy(model)
@@ -253,6 +249,21 @@ def fill_keyframe_sharpness(run, model, step_fn, batch, *, tol=1e-6) -> dict[int
         with untouched(work), second_order():
             loss = loss_of(step_fn, work, batch)
             values[step] = sharpness_of(loss, params, precondition=P, weight_decay=decays, tol=tol)
+    return values
+
+
+def fill_keyframe_sharpness(run, model, step_fn, batch, *, tol=1e-6) -> dict[int, float]:
+    """keyframe_sharpness, stored in the recording's `sharpness` series (run.curvature); the recording must
+    be closed. Returns {step: sharpness}.
+
+    Temporary: this wrapper writes, so it belongs above analyze (issue 10: analyze computes, a caller
+    stores); it moves there and leaves this module. The store import is at function level until then,
+    so analyze does not import the store at module level.
+    """
+    from nbkit.store.annotate import write_series
+
+    values = keyframe_sharpness(run, model, step_fn, batch, tol=tol)
+    steps = run.steps
     rows = [int(np.searchsorted(steps, s)) for s in values]
     write_series(run.path, "sharpness", rows, np.array(list(values.values()), dtype=np.float32))
     run.refresh()
@@ -276,6 +287,3 @@ def _keyframe_parts(name, groups, optimizer_state, by_name):
         return params, P, decays
     return params, None, decays
 
-
-def relative_error(a: float, b: float) -> float:
-    return abs(a - b) / max(abs(b), 1e-300) if math.isfinite(a) and math.isfinite(b) else math.inf

@@ -13,10 +13,12 @@ with the model in eval mode and without gradients, so the surface is determinist
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 import torch
 
+from nbkit.analyze.model_copy import copy_model
 from nbkit.errors import NbkitError
 
 
@@ -112,8 +114,6 @@ def evaluate_plane(model, step_fn, batch, names, origin, d1, d2, alpha, beta, pr
 def landscape_slice(model, step_fn, batch, runs: dict, resolution: int = 21, *, seed: int = 0, margin: float = 0.25,
                     progress: bool = True) -> LandscapeSlice:
     """The slice through the runs' shared start point; `runs` maps names to Recordings."""
-    from nbkit.replay.restore import copy_model
-
     if not runs:
         raise NbkitError("landscape() needs at least one recording")
     if not isinstance(resolution, int) or resolution < 3:
@@ -173,8 +173,6 @@ def shared_start(recordings: list, names: list[str]) -> tuple[int, dict]:
     """(step, model state) of the runs' shared start point: the latest first keyframe among them. Every
     recording holding a keyframe there must hold equal parameters; one without it must be the parent
     the others were replayed from (a replay from a step between the parent's keyframes)."""
-    from pathlib import Path
-
     if not all(r.keyframes for r in recordings):
         raise NbkitError("A recording without keyframes has no start point; record with keyframes")
     step = max(r.keyframes[0] for r in recordings)

@@ -10,7 +10,7 @@ import sys
 from dataclasses import fields
 
 import nbkit
-from nbkit.analyze.findings import Thresholds
+from nbkit.analyze.findings import DEPRECATED_THRESHOLDS, Thresholds
 from nbkit.errors import NbkitError
 
 
@@ -24,13 +24,18 @@ def add_arguments(parser) -> None:
 
 
 def _parse_thresholds(pairs) -> dict:
+    """{name: value} of --set pairs. A deprecated name is kept (run.findings warns and applies it) and
+    a note naming the new one is printed, since the command line hides DeprecationWarnings by default."""
     types = {f.name: f.type for f in fields(Thresholds)}
     out = {}
     for pair in pairs:
         name, _, value = pair.partition("=")
-        if name not in types or not value:
+        new = DEPRECATED_THRESHOLDS.get(name)
+        if (name not in types and new is None) or not value:
             raise ValueError(f"--set {pair!r}: expected NAME=VALUE with NAME one of {', '.join(types)}")
-        out[name] = int(value) if types[name] in (int, "int") else float(value)
+        if new is not None:
+            print(f"nbkit findings: --set {name} is deprecated; use --set {new}", file=sys.stderr)
+        out[name] = int(value) if types[new or name] in (int, "int") else float(value)
     return out
 
 

@@ -12,6 +12,7 @@ import tempfile
 from pathlib import Path
 
 import numpy as np
+
 from nbkit.version import __version__
 
 CAUTION = ("Findings are heuristics: each points at a step and tensor worth a look, not a proven cause. "

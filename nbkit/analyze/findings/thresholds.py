@@ -1,0 +1,89 @@
+"""The finding thresholds: their defaults with the reason for each, and the keywords that override them.
+
+README.md, "Findings", explains each threshold. `thresholds_from_keywords` is the one place that
+checks override names, including the names deprecated by issue 10 (one release of grace).
+"""
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, fields
+
+from nbkit.analyze.curvature import AnalysisError
+
+
+@dataclass(frozen=True)
+class Thresholds:
+    """Documented defaults; the reason for each is beside it (README.md, "Findings")."""
+
+    window: int = 20                  # heavy rows a pattern must last to count as sustained
+    sustained_share: float = 0.8      # share of the window's rows that must meet the condition
+    spike_factor: float = 10.0        # grad-spike: global gradient norm above 10× its running median ...
+    spike_over_max: float = 1.5       # ... and 1.5× the largest of the history (not an ordinary swing)
+    spike_history: int = 50           # rows of running history
+    spike_min_history: int = 10       # rows needed before spikes are judged
+    oversized_ratio: float = 0.25     # oversized-updates: 250× the common-practice 1e-3: weights rewritten
+                                      # every few steps ...
+    oversized_single_step: float = 1.0  # ... or any single step that moves a weight by more than its own norm
+    stalled_ratio: float = 1e-5       # stalled-updates: 100× below 1e-3 while the learning rate is not decayed
+    eps_share: float = 0.5            # "most coordinates": ε outweighs √v̂ for over half of them
+    relevant_grad: float = 1e-4       # eps-dominated, lost-updates: only tensors whose gradient RMS is at
+                                      # least 1e-4 × the median tensor's (others barely matter to the loss)
+    tiny_input: float = 1e-3          # ... or weights whose gradient RMS is below 1e-3 × their own layer's
+                                      # bias gradient RMS: the layer's inputs are ~1000× below unit scale
+    sign_flip: float = 0.25           # oscillation: a quarter of the coordinates flip sign (the sharp
+                                      # directions that oscillate are few, but dominate the gradient) ...
+    grad_cosine: float = -0.3         # ... with consecutive gradients pointing against each other ...
+    oscillation_decay: float = 0.5    # ... a gradient norm that does not decay (a converging zig-zag) ...
+    oscillation_progress: float = 0.05  # ... a loss that does not fall by 5 % meanwhile ...
+    oscillation_gap: float = 0.1      # ... and sits above its best by 10 % of the run's loss range
+    reversed_share: float = 0.3       # overshoot: many updates move against the gradient ...
+    reversed_over_flip: float = 2.0   # ... twice as often as gradients flip sign (noise reverses about as
+                                      # often as it flips; momentum carried past a minimum reverses more)
+    dead_share: float = 0.25          # dead-units: a quarter of a weight's rows without gradient (info;
+    dead_share_warning: float = 0.5   # half of them: warning) ...
+    dead_window: int = 50             # ... in every row of this many heavy rows
+    lost_share: float = 0.25          # lost-updates: a quarter of the updates round to nothing
+    plateau_window: int = 100         # plateau: loss rows per window
+    plateau_flat: float = 0.02        # loss change within the window, as a share of the run's progress
+    plateau_gap: float = 0.2          # window loss above the best by this share of the progress
+    plateau_grad: float = 0.1         # global gradient norm below this share of its peak level
+    stability_margin: float = 1.25    # sharpness above 1.25× the limit (edge of stability hovers near 1×)
+    noise_factor: float = 10.0        # batch size 10× below / above the gradient noise scale
+
+
+# Old threshold name -> its new name. The finding kind update-ratio became oversized-updates and
+# stalled-updates (issue 10); the old names keep working, with a DeprecationWarning, for one release.
+DEPRECATED_THRESHOLDS = {
+    "update_ratio_high": "oversized_ratio",
+    "update_ratio_extreme": "oversized_single_step",
+    "update_ratio_low": "stalled_ratio",
+}
+
+
+def threshold_names() -> list[str]:
+    """The current threshold names, in the order of Thresholds' fields."""
+    return [f.name for f in fields(Thresholds)]
+
+
+def thresholds_from_keywords(**keywords) -> Thresholds:
+    """Thresholds with `keywords` overriding the defaults. A deprecated name warns (DeprecationWarning,
+    naming the new one) and sets the new field; an unknown name, or an old and a new name for the same
+    threshold, raises AnalysisError."""
+    valid = threshold_names()
+    unknown = sorted(set(keywords) - set(valid) - set(DEPRECATED_THRESHOLDS))
+    if unknown:
+        raise AnalysisError(f"Unknown finding threshold(s) {unknown}; valid names are {sorted(valid)}")
+    values = {}
+    for name, value in keywords.items():
+        new = DEPRECATED_THRESHOLDS.get(name)
+        if new is None:
+            values[name] = value
+            continue
+        if new in keywords:
+            raise AnalysisError(f"The finding thresholds {name!r} and {new!r} are the same threshold "
+                                f"(got {keywords[name]!r} and {keywords[new]!r}); pass only {new!r}")
+        warnings.warn(f"The finding threshold {name!r} is deprecated and will be removed in the next release; "
+                      f"use {new!r} (the finding kind update-ratio is now oversized-updates and stalled-updates)",
+                      DeprecationWarning, stacklevel=3)
+        values[new] = value
+    return Thresholds(**values)
