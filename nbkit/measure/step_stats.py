@@ -26,10 +26,10 @@ def norms(tensors):
         return torch.zeros(0, dtype=torch.float32)
     dtypes = {_accumulation_dtype(t) for t in tensors}
     if len(dtypes) == 1:
-        norms = torch._foreach_norm(tensors, 2, dtype=dtypes.pop())
+        values = torch._foreach_norm(tensors, 2, dtype=dtypes.pop())
     else:
-        norms = [torch.linalg.vector_norm(t, dtype=_accumulation_dtype(t)) for t in tensors]
-    return torch.stack(norms).double()
+        values = [torch.linalg.vector_norm(t, dtype=_accumulation_dtype(t)) for t in tensors]
+    return torch.stack(values).double()
 
 
 def _dot(a, b):
@@ -79,9 +79,9 @@ def whole_tensor_statistics(grads, minus_updates, previous_grads, previous_norms
     # with a non-finite norm are counted coordinate by coordinate (one check for all).
     out["nonfinite"] = torch.zeros(T, dtype=torch.float64)
     out["update_nonfinite"] = torch.zeros(T, dtype=torch.float64)
-    norms = torch.stack([grad_norm, update_norm]) if T else torch.zeros((2, 0))
-    if T and not bool(torch.isfinite(norms).all()):
-        bad = (~torch.isfinite(norms)).tolist()
+    both = torch.stack([grad_norm, update_norm]) if T else torch.zeros((2, 0))
+    if T and not bool(torch.isfinite(both).all()):
+        bad = (~torch.isfinite(both)).tolist()
         for i in range(T):
             if bad[0][i]:
                 out["nonfinite"][i] = (~torch.isfinite(grads[i])).sum().double()

@@ -99,7 +99,7 @@ def _run(plan, run, model, step_fn, batches, names, progress, threads_note, posi
         paths[lane.name] = plan.targets[lane.name]
         if not plan.record:
             continue
-            info = {"fingerprint_mismatches": lane.mismatches[:MISMATCHES_KEPT],
+        info = {"fingerprint_mismatches": lane.mismatches[:MISMATCHES_KEPT],
                 "fingerprint_mismatch_count": len(lane.mismatches),
                 "targets_checked": lane.saw_criterion or meta.get("criterion") is None}
         if lane.recorded:
