@@ -60,16 +60,11 @@ DEPRECATED_THRESHOLDS = {
 }
 
 
-def threshold_names() -> list[str]:
-    """The current threshold names, in the order of Thresholds' fields."""
-    return [f.name for f in fields(Thresholds)]
-
-
 def thresholds_from_keywords(**keywords) -> Thresholds:
     """Thresholds with `keywords` overriding the defaults. A deprecated name warns (DeprecationWarning,
     naming the new one) and sets the new field; an unknown name, or an old and a new name for the same
     threshold, raises AnalysisError."""
-    valid = threshold_names()
+    valid = [f.name for f in fields(Thresholds)]
     unknown = sorted(set(keywords) - set(valid) - set(DEPRECATED_THRESHOLDS))
     if unknown:
         raise AnalysisError(f"Unknown finding threshold(s) {unknown}; valid names are {sorted(valid)}")
