@@ -439,8 +439,9 @@ def test_the_old_update_ratio_thresholds_warn_and_still_apply(tmp_path, capsys):
     for old, new, value in (("update_ratio_high", "oversized_ratio", 1e-3),
                             ("update_ratio_extreme", "oversized_single_step", 1e9),
                             ("update_ratio_low", "stalled_ratio", 1.0)):
-        with pytest.warns(DeprecationWarning, match=f"{old!r} is deprecated.*use {new!r}"):
+        with pytest.warns(DeprecationWarning, match=f"{old!r} is deprecated.*use {new!r}") as caught:
             with_old = run.findings(**{old: value})
+        assert caught[0].filename == __file__                  # it names the caller's line, not nbkit's
         assert [repr(f) for f in with_old] == [repr(f) for f in run.findings(**{new: value})]
         assert [repr(f) for f in with_old] != [repr(f) for f in run.findings()]       # the value applied
     with pytest.warns(DeprecationWarning) as caught:
