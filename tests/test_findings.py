@@ -3,6 +3,7 @@ runs of different shapes stay quiet (no warning or error). Real data: sklearn.da
 from __future__ import annotations
 
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -438,8 +439,9 @@ def test_the_old_update_ratio_thresholds_warn_and_still_apply(tmp_path, capsys):
     for old, new, value in (("update_ratio_high", "oversized_ratio", 1e-3),
                             ("update_ratio_extreme", "oversized_single_step", 1e9),
                             ("update_ratio_low", "stalled_ratio", 1.0)):
-        with pytest.warns(DeprecationWarning, match=f"{old!r} is deprecated.*use {new!r}"):
+        with pytest.warns(DeprecationWarning, match=f"{old!r} is deprecated.*use {new!r}") as caught:
             with_old = run.findings(**{old: value})
+        assert caught[0].filename == __file__                  # it names the caller's line, not nbkit's
         assert [repr(f) for f in with_old] == [repr(f) for f in run.findings(**{new: value})]
         assert [repr(f) for f in with_old] != [repr(f) for f in run.findings()]       # the value applied
     with pytest.warns(DeprecationWarning) as caught:
@@ -455,6 +457,17 @@ def test_the_old_update_ratio_thresholds_warn_and_still_apply(tmp_path, capsys):
         assert main(["findings", "--json", "--set", "update_ratio_extreme=1e-3", str(run.path)]) == 0
     printed = capsys.readouterr()
     assert printed.out == with_new and "use --set oversized_single_step" in printed.err
+
+
+def test_rules_name_every_kind_of_the_readme_table_once():
+    from nbkit.analyze.findings import RULES
+
+    readme = (Path(__file__).parents[1] / "README.md").read_text(encoding="utf-8")
+    table = readme.split("| kind | severity |", 1)[1].split("\n\n", 1)[0]
+    documented = [line.split("`")[1] for line in table.splitlines() if line.startswith("| `")]
+    named = [kind for rule in RULES for kind in rule.kinds]
+    assert sorted(named) == sorted(documented) and len(set(named)) == len(named)
+    assert {"oversized-updates", "stalled-updates"} <= set(named) and "update-ratio" not in named
 
 
 def test_findings_command_gates_on_errors_and_on_warnings_with_strict(tmp_path, capsys):

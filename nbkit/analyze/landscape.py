@@ -91,7 +91,7 @@ def evaluate_plane(model, step_fn, batch, names, origin, d1, d2, alpha, beta, pr
     out = np.full((len(beta), len(alpha)), np.nan)
     bar = None
     if progress:
-        from tqdm.auto import tqdm
+        from tqdm.auto import tqdm               # function-level: only for the progress bar
 
         bar = tqdm(total=out.size, unit="point", desc="loss landscape", leave=False)
     model.eval()

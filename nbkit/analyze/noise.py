@@ -56,12 +56,15 @@ def two_batch_estimates(small_sq: float, big_sq: float, small: float, big: float
     return float(grad_sq), float(trace_cov)
 
 
-def batch_size(batch) -> int:
+def batch_size_of(batch) -> int:
+    """The number of examples in `batch`: the first dimension of its first tensor that has one."""
     tensors = [t for t in tree_flatten(batch)[0] if isinstance(t, torch.Tensor) and t.dim() > 0]
     if not tensors:
         raise AnalysisError("The batch holds no tensor with a batch dimension; pass the batch step_fn takes, "
                             "e.g. (inputs, targets)")
     return int(tensors[0].shape[0])
+
+
 
 
 def _take(batch, rows, size):
@@ -87,7 +90,7 @@ def _mixes_examples(model) -> bool:
 
 
 def _per_example_parts(model, step_fn, batch, params, size) -> NoiseParts:
-    from torch.func import functional_call, grad, vmap
+    from torch.func import functional_call, grad, vmap    # function-level: heavy, per-example path only
 
     wrapper = _StepModule(model, step_fn)
     names = {id(p): n for n, p in model.named_parameters()}
@@ -145,7 +148,7 @@ def noise_parts(model, step_fn, batch, *, params=None, method="auto") -> NoisePa
     params = [p for p in model.parameters() if p.requires_grad] if params is None else list(params)
     if not params:
         raise AnalysisError("No parameter requires grad: there is no gradient to estimate the noise of")
-    size = batch_size(batch)
+    size = batch_size_of(batch)
     if size < 2:
         raise AnalysisError(f"The gradient noise scale needs a batch of at least 2 examples, got {size}")
     with untouched(model), second_order():

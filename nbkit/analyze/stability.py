@@ -19,6 +19,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numpy as np
+
 # Optimizers whose update divides by a second-moment estimate: their sharpness is preconditioned.
 ADAM_FAMILY = ("Adam", "AdamW", "NAdam", "RAdam", "Adamax")
 # Optimizers whose weight_decay is always decoupled (applied outside the gradient).
@@ -74,8 +76,6 @@ def iteration_matrix(rule: str, lr: float, curvature: float, *, beta: float = 0.
     written from the torch.optim.SGD documentation's pseudo-code: "gd", "heavy-ball" (momentum with
     dampening d), "nesterov", "adam" (Adam's first moment m = β1·m + (1−β1)·g with a frozen
     preconditioner folded into λ: heavy ball with d = β1). Used to check the limits above."""
-    import numpy as np
-
     lam = curvature
     if rule == "gd":
         return np.array([[1 - lr * lam, 0.0], [0.0, 0.0]])

@@ -21,7 +21,7 @@ from __future__ import annotations
 import math
 
 from nbkit.analyze.curvature import sharpness
-from nbkit.analyze.noise import RunningNoise, batch_size, noise_parts
+from nbkit.analyze.noise import RunningNoise, batch_size_of, noise_parts
 from nbkit.errors import RecorderError
 from nbkit.record.options import RecordOptions
 
@@ -86,7 +86,7 @@ class DuringRecording:
             inputs, keywords, wanted = batch
             loss = criterion(model(*inputs, **keywords), *wanted)
             if summed:                      # the estimators need the mean loss of the batch
-                loss = loss / batch_size(batch)
+                loss = loss / batch_size_of(batch)
             return loss
 
         return step_fn, (args, kwargs, targets)

@@ -89,7 +89,8 @@ def overshoot(data, t) -> list[Finding]:
     """overshoot: a large reversed share, well above the sign-flip share, sustained."""
     rev, flips = data.series("reversed"), data.series("sign_flip")
     return per_tensor_findings(data, t, "overshoot", "warning",
-                               lambda k: (rev[:, k] > t.reversed_share) & (rev[:, k] > t.reversed_over_flip * flips[:, k]),
+                               lambda k: (rev[:, k] > t.reversed_share)
+                               & (rev[:, k] > t.reversed_over_flip * flips[:, k]),
                                lambda k, a, b: {"median_reversed": finite_median(rev[a:b + 1, k]),
                                                 "median_sign_flip": finite_median(flips[a:b + 1, k])},
                                "Most updates move against the current gradient: momentum carries the weights past "

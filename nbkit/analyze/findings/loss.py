@@ -38,7 +38,8 @@ def plateau(data, t) -> list[Finding]:
             continue
         inside = (data.heavy_steps >= steps[i]) & (data.heavy_steps <= steps[i + w - 1])
         grads = g[inside]
-        if np.isfinite(peak) and peak > 0 and np.isfinite(grads).any() and finite_median(grads) <= t.plateau_grad * peak:
+        quiet = np.isfinite(grads).any() and finite_median(grads) <= t.plateau_grad * peak
+        if np.isfinite(peak) and peak > 0 and quiet:
             hits.append((int(steps[i]), int(steps[i + w - 1]), float(np.median(part)), finite_median(grads) / peak))
     out = []
     for first, last, level_loss, grad_share in hits:

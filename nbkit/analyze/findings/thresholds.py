@@ -5,6 +5,8 @@ checks override names, including the names deprecated by issue 10 (one release o
 """
 from __future__ import annotations
 
+import inspect
+import os
 import warnings
 from dataclasses import dataclass, fields
 
@@ -60,16 +62,24 @@ DEPRECATED_THRESHOLDS = {
 }
 
 
-def threshold_names() -> list[str]:
-    """The current threshold names, in the order of Thresholds' fields."""
-    return [f.name for f in fields(Thresholds)]
+NBKIT_FOLDER = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+
+
+def stacklevel_outside_nbkit() -> int:
+    """The warnings.warn stacklevel, for a warning raised by its caller, of the first frame outside the
+    nbkit package: the warning then names the user's line (run.findings or find, whichever they called)
+    and is shown where Python shows DeprecationWarnings by default (__main__, notebooks, test runners)."""
+    frame, level = inspect.currentframe().f_back, 1
+    while frame.f_back is not None and os.path.abspath(frame.f_code.co_filename).startswith(NBKIT_FOLDER + os.sep):
+        frame, level = frame.f_back, level + 1
+    return level
 
 
 def thresholds_from_keywords(**keywords) -> Thresholds:
     """Thresholds with `keywords` overriding the defaults. A deprecated name warns (DeprecationWarning,
     naming the new one) and sets the new field; an unknown name, or an old and a new name for the same
     threshold, raises AnalysisError."""
-    valid = threshold_names()
+    valid = [f.name for f in fields(Thresholds)]
     unknown = sorted(set(keywords) - set(valid) - set(DEPRECATED_THRESHOLDS))
     if unknown:
         raise AnalysisError(f"Unknown finding threshold(s) {unknown}; valid names are {sorted(valid)}")
@@ -84,6 +94,6 @@ def thresholds_from_keywords(**keywords) -> Thresholds:
                                 f"(got {keywords[name]!r} and {keywords[new]!r}); pass only {new!r}")
         warnings.warn(f"The finding threshold {name!r} is deprecated and will be removed in the next release; "
                       f"use {new!r} (the finding kind update-ratio is now oversized-updates and stalled-updates)",
-                      DeprecationWarning, stacklevel=3)
+                      DeprecationWarning, stacklevel=stacklevel_outside_nbkit())
         values[new] = value
     return Thresholds(**values)
