@@ -219,7 +219,7 @@ def sharpness(model, step_fn, batch, optimizer=None, tol=1e-6) -> float:
 
 def keyframe_sharpness(run, model, step_fn, batch, *, tol=1e-6) -> dict[int, float]:
     """Sharpness at every keyframe of `run` that has a recorded row: {step: sharpness}. Computes only;
-    nothing is written (fill_keyframe_sharpness stores the values). Works on a copy of `model`.
+    nothing is written (Recording.curvature stores the values). Works on a copy of `model`.
 
     At keyframe s the parameters are those before step s's update, on `batch` (the same batch for every
     keyframe, so the values are comparable). Adam-family recordings get the preconditioned sharpness
@@ -253,24 +253,6 @@ def keyframe_sharpness(run, model, step_fn, batch, *, tol=1e-6) -> dict[int, flo
     return values
 
 
-def fill_keyframe_sharpness(run, model, step_fn, batch, *, tol=1e-6) -> dict[int, float]:
-    """keyframe_sharpness, stored in the recording's `sharpness` series (run.curvature); the recording must
-    be closed. Returns {step: sharpness}.
-
-    Temporary: this wrapper writes, so it belongs above analyze (issue 10: analyze computes, a caller
-    stores); it moves there and leaves this module. The store import is at function level until then,
-    so analyze does not import the store at module level.
-    """
-    from nbkit.store.annotate import write_series
-
-    values = keyframe_sharpness(run, model, step_fn, batch, tol=tol)
-    steps = run.steps
-    rows = [int(np.searchsorted(steps, s)) for s in values]
-    write_series(run.path, "sharpness", rows, np.array(list(values.values()), dtype=np.float32))
-    run.refresh()
-    return values
-
-
 def _keyframe_parts(name, groups, optimizer_state, by_name):
     """Params, preconditioners and decays at a keyframe. The optimizer state dict numbers its tensors in
     group order; the recording lists each group's tensor names, assumed in the same order."""
@@ -287,4 +269,3 @@ def _keyframe_parts(name, groups, optimizer_state, by_name):
             return None, None, None
         return params, P, decays
     return params, None, decays
-

@@ -65,8 +65,6 @@ def batch_size_of(batch) -> int:
     return int(tensors[0].shape[0])
 
 
-
-
 def _take(batch, rows, size):
     """The batch restricted to `rows` along dimension 0 of every tensor whose first dimension is `size`."""
     leaves, spec = tree_flatten(batch)
