@@ -23,6 +23,8 @@ import copy
 
 import numpy as np
 import torch
+from scipy.sparse.linalg import ArpackNoConvergence, LinearOperator, eigsh
+from threadpoolctl import threadpool_limits
 from torch.nn.attention import SDPBackend, sdpa_kernel
 
 from nbkit.analyze.stability import ADAM_FAMILY, coupled_weight_decay
@@ -109,16 +111,11 @@ LANCZOS_BASIS = 8
 def top_eigenvalue(matvec, n: int, *, tol: float = 1e-6, seed: int = START_SEED) -> float:
     """Largest (algebraic) eigenvalue of the symmetric operator `matvec` on R^n by Lanczos (ARPACK).
     Below n = 3 (ARPACK needs more room) the operator is formed densely and numpy.linalg.eigvalsh used."""
-    # function-level: scipy is heavy and only needed once a sharpness is estimated
-    from scipy.sparse.linalg import ArpackNoConvergence, LinearOperator, eigsh
-
     if n < 1:
         raise AnalysisError("There are no parameters to take a Hessian over")
     if n < 3:
         dense = np.stack([matvec(e) for e in np.eye(n)], axis=1)
         return float(np.linalg.eigvalsh((dense + dense.T) / 2)[-1])
-    from threadpoolctl import threadpool_limits     # function-level: only needed with ARPACK, as scipy
-
     start = np.random.default_rng(seed).standard_normal(n)
     operator = LinearOperator((n, n), matvec=matvec, dtype=np.float64)
     # ARPACK keeps LANCZOS_BASIS vectors of length n (scipy's default, 20, is 160 bytes per parameter)

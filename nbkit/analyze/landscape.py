@@ -17,6 +17,7 @@ from pathlib import Path
 
 import numpy as np
 import torch
+from tqdm.auto import tqdm
 
 from nbkit.analyze.model_copy import copy_model
 from nbkit.errors import NbkitError
@@ -91,8 +92,6 @@ def evaluate_plane(model, step_fn, batch, names, origin, d1, d2, alpha, beta, pr
     out = np.full((len(beta), len(alpha)), np.nan)
     bar = None
     if progress:
-        from tqdm.auto import tqdm               # function-level: only for the progress bar
-
         bar = tqdm(total=out.size, unit="point", desc="loss landscape", leave=False)
     model.eval()
     with torch.no_grad():

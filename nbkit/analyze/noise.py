@@ -17,6 +17,7 @@ import math
 from dataclasses import dataclass
 
 import torch
+from torch.func import functional_call, grad, vmap
 from torch.utils._pytree import tree_flatten, tree_unflatten
 
 from nbkit.analyze.curvature import AnalysisError, loss_of, second_order, untouched
@@ -88,7 +89,6 @@ def _mixes_examples(model) -> bool:
 
 
 def _per_example_parts(model, step_fn, batch, params, size) -> NoiseParts:
-    from torch.func import functional_call, grad, vmap    # function-level: heavy, per-example path only
 
     wrapper = _StepModule(model, step_fn)
     names = {id(p): n for n, p in model.named_parameters()}

@@ -16,6 +16,9 @@ import math
 import torch
 from torch import nn
 
+from nbkit.record.attach import record
+from nbkit.recording import load
+
 SENSORS = ("air temperature [°C]", "relative humidity [%]", "CO2 [ppm]", "vent opening [%]",
            "heating pipe temperature [°C]", "outside temperature [°C]", "wind speed [m/s]",
            "screen closure [0-1]", "hour of day (sine)",
@@ -135,13 +138,11 @@ REPLAY_OPTIMIZERS = {"sgd-momentum": sgd_momentum, "rmsprop": rmsprop, "adam-lr-
 def train_first_run(path, *, steps: int = STEPS, curvature_every: int = 25, peak_lr: float = PEAK_LR,
                     overwrite: bool = True):
     """The first run, recorded: Adam with the too-high warm-up, the orphan and the unit error."""
-    import nbkit
-
     features, targets = sensor_data()
     batches = Batches(features, targets)
     model = make_model()
     optimizer = torch.optim.Adam(optimizer_parameters(model), lr=warmup_lr(0, peak_lr))
-    with nbkit.record(model, optimizer, path, criterion=criterion, curvature_every=curvature_every,
+    with record(model, optimizer, path, criterion=criterion, curvature_every=curvature_every,
                       keyframe_every=100, overwrite=overwrite):
         for step in range(steps):
             for group in optimizer.param_groups:
@@ -151,4 +152,4 @@ def train_first_run(path, *, steps: int = STEPS, curvature_every: int = 25, peak
             loss = criterion(model(inputs), target)
             loss.backward()
             optimizer.step()
-    return nbkit.load(path), batches
+    return load(path), batches

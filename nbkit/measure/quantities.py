@@ -4,6 +4,7 @@ Shapes in comments: T = tensors in the batch of work, S = sampled coordinates pe
 """
 from __future__ import annotations
 
+import numpy as np
 import torch
 
 # The series every recording holds, in storage order. Definitions are in README.md ("Quantities").
@@ -81,8 +82,6 @@ GAIN_CLASS_NAMES = ("ordinary", "damped", "accelerated", "reversed")
 def classify_gain(gain, median):
     """Class code per coordinate (numpy or torch): 0 ordinary, 1 damped, 2 accelerated, 3 reversed,
     -1 undefined (non-finite gain). Same rule as gain_classes, for views that hold one tensor."""
-    import numpy as np
-
     gain = np.asarray(gain, dtype=np.float64)
     relative = gain / median
     code = np.zeros(gain.shape, dtype=np.int8)

@@ -5,7 +5,9 @@ the replays in lockstep with `run_plan`, exactly as one process would, and recor
 """
 from __future__ import annotations
 
+import multiprocessing
 import pickle
+from concurrent.futures import ProcessPoolExecutor
 
 from nbkit.errors import ReplayError
 from nbkit.replay.loop import run_plan
@@ -14,8 +16,6 @@ from nbkit.replay.loop import run_plan
 def in_workers(plan, model, step_fn, batches, workers, progress) -> dict:
     """Split the replays over `workers` spawned processes (not forked: a forked child can hang on
     torch's thread pool). Everything sent must pickle by reference to an importable module."""
-    import multiprocessing
-    from concurrent.futures import ProcessPoolExecutor
 
     for what, value in (("step_fn", step_fn), ("batches", batches), ("before_step", plan.before_step),
                         ("model", model), *((f"optimizers[{n!r}]", f) for n, f in plan.factories.items())):

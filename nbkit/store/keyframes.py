@@ -12,6 +12,8 @@ import re
 from pathlib import Path
 
 import torch
+from safetensors import SafetensorError
+from safetensors.torch import load_file, save_file
 
 from nbkit.errors import RecordingError
 from nbkit.store.files import read_json, write_json_atomic
@@ -82,8 +84,6 @@ def keyframe_paths(root: Path, step: int) -> tuple[Path, Path]:
 
 def write_keyframe(root: Path, keyframe: Keyframe, extra: dict | None = None) -> int:
     """Write tensors to a temporary name, rename, then the JSON (its presence marks completeness)."""
-    from safetensors.torch import save_file
-
     tensor_path, json_path = keyframe_paths(root, keyframe.step)
     tensor_path.parent.mkdir(parents=True, exist_ok=True)
     tmp = tensor_path.with_name(f".{tensor_path.name}.tmp")
@@ -119,9 +119,6 @@ def delete_keyframe(root: Path, step: int) -> None:
 
 def read_keyframe(root: Path, step: int) -> dict:
     """The state dict stored at `step`: {"model": ..., "optimizer": ..., "rng": ..., ...}."""
-    from safetensors import SafetensorError
-    from safetensors.torch import load_file
-
     tensor_path, json_path = keyframe_paths(root, step)
     if not json_path.exists():
         available = list_keyframes(root)

@@ -310,3 +310,9 @@ class Comparison(GuardedView, widgets.VBox):
                 canvas.close()
         super().close()
 
+
+
+def compare(run, *others, model=None, step_fn=None, batch=None) -> Comparison:
+    """The comparison: several recordings side by side on one step cursor (an ipywidgets widget).
+    With model, step_fn and batch it adds the loss-landscape slice through the runs."""
+    return Comparison(run, *others, model=model, step_fn=step_fn, batch=batch)

@@ -108,3 +108,9 @@ class LandscapeView(StaticPicture, widgets.VBox):
         return compose_png([[figure_png(self.figure)]], f"loss landscape slice, cursor at step {self.step}")
 
 
+
+
+def landscape(model, step_fn, batch, runs, resolution=21, progress=True) -> LandscapeView:
+    """The loss-landscape slice view: the loss on the plane through the runs' shared start point and
+    two end points (or two filter-normalised random directions for one run), with their paths."""
+    return LandscapeView(model, step_fn, batch, runs, resolution=resolution, progress=progress)
