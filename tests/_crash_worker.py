@@ -2,7 +2,7 @@
 
 Importing torch once and forking keeps twenty kills cheap. Each child imports zarr itself (after the
 fork), so no event-loop thread crosses a fork. Writes trials.json: per trial the recording folder,
-flush_seconds, the steps the child reported (step, wall time) and the kill time.
+commit_seconds, the steps the child reported (step, wall time) and the kill time.
 """
 import json
 import os
@@ -14,7 +14,7 @@ import time
 import torch
 
 
-def child(folder, flush_seconds, write_fd):
+def child(folder, commit_seconds, write_fd):
     import nbkit
 
     torch.set_num_threads(1)
@@ -23,7 +23,7 @@ def child(folder, flush_seconds, write_fd):
     optimizer = torch.optim.Adam(model.parameters(), lr=1e-2)
     criterion = torch.nn.CrossEntropyLoss()
     rec = nbkit.record(model, optimizer, folder, criterion=criterion, probes=16, keyframe_every=7,
-                       flush_seconds=flush_seconds)
+                       commit_seconds=commit_seconds)
     data = torch.Generator().manual_seed(1)
     for step in range(100_000):
         x, y = torch.randn(32, 10, generator=data), torch.randint(0, 4, (32,), generator=data)
@@ -39,14 +39,14 @@ def main(root, trials, seed):
     results = []
     for trial in range(trials):
         folder = os.path.join(root, f"trial{trial:02d}")
-        flush_seconds = rng.choice([0.1, 0.3, 1.0])
+        commit_seconds = rng.choice([0.1, 0.3, 1.0])
         target = rng.randint(1, 200)
         read_fd, write_fd = os.pipe()
         pid = os.fork()
         if pid == 0:
             os.close(read_fd)
             try:
-                child(folder, flush_seconds, write_fd)
+                child(folder, commit_seconds, write_fd)
             finally:
                 os._exit(0)
         os.close(write_fd)
@@ -62,7 +62,7 @@ def main(root, trials, seed):
             os.kill(pid, signal.SIGKILL)
             killed = time.time()
         os.waitpid(pid, 0)
-        results.append({"folder": folder, "flush_seconds": flush_seconds, "target": target,
+        results.append({"folder": folder, "commit_seconds": commit_seconds, "target": target,
                         "reports": reports, "killed": killed})
     with open(os.path.join(root, "trials.json"), "w") as handle:
         json.dump(results, handle)

@@ -183,3 +183,24 @@ def test_parameter_whose_shape_changes_is_reported_and_its_recording_stops(tmp_p
     assert run.steps.tolist() == list(range(10))                        # the run goes on being recorded
     weight = run.series("grad_norm", "weight")
     assert np.isfinite(weight[:5]).all() and np.isnan(weight[5:]).all()   # stopped cleanly from step 5
+
+
+def test_flush_seconds_still_works_for_one_release_with_a_deprecation_warning(tmp_path, tiny_classifier):
+    model, inputs, targets = tiny_classifier
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.1)
+    with pytest.warns(DeprecationWarning, match="renamed commit_seconds"):
+        rec = nbkit.record(model, optimizer, tmp_path / "r", flush_seconds=0.5)
+    train(model, optimizer, inputs, targets, 3)
+    rec.close()
+    run = nbkit.load(tmp_path / "r")
+    assert run.meta["commit_seconds"] == 0.5 and "flush_seconds" not in run.meta and len(run) == 3
+    with pytest.raises(nbkit.RecorderError, match="commit_seconds= only"):
+        nbkit.record(model, optimizer, tmp_path / "s", flush_seconds=1.0, commit_seconds=1.0)
+
+
+def test_an_unknown_recording_option_names_the_valid_ones(tmp_path, tiny_classifier):
+    model, _, _ = tiny_classifier
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.1)
+    with pytest.raises(nbkit.RecorderError, match=r"Unknown recording option\(s\) \['keyframes'\].*keyframe_every"):
+        nbkit.record(model, optimizer, tmp_path / "r", keyframes=10)
+    assert not (tmp_path / "r").exists()

@@ -29,7 +29,7 @@ torch.manual_seed(0)
 model = torch.nn.Sequential(torch.nn.Linear(8, 32), torch.nn.Tanh(), torch.nn.Linear(32, 1))
 optimizer = torch.optim.Adam(model.parameters(), lr=1e-2)
 x = torch.randn(128, 8); y = x[:, :2].sum(dim=1, keepdim=True)
-rec = nbkit.record(model, optimizer, "runs/live", probes=16, overwrite=True)
+rec = nbkit.record(model, optimizer, "recordings/live", probes=16, overwrite=True)
 def train(n):
     for _ in range(n):
         optimizer.zero_grad()

@@ -11,7 +11,7 @@ import pytest
 import nbkit
 
 TRIALS = 20
-# Besides flush_seconds, a step waits for the next forward pass to be queued (one step) and for the
+# Besides commit_seconds, a step waits for the next forward pass to be queued (one step) and for the
 # flush to be written; the writer publishes its longest flush in committed.json (max_write_seconds).
 SLACK_SECONDS = 1.0      # scheduling on a shared, loaded 2-core machine
 
@@ -40,10 +40,10 @@ def test_sigkill_at_random_steps_leaves_a_readable_recording(tmp_path):
         assert len(steps) <= reported[-1] + 2                            # nothing invented past the kill
         committed = json.loads((Path(trial["folder"]) / "committed.json").read_text())
         write = committed.get("max_write_seconds", 0.0) or longest_write
-        deadline = trial["killed"] - trial["flush_seconds"] - 2 * write - SLACK_SECONDS
+        deadline = trial["killed"] - trial["commit_seconds"] - 2 * write - SLACK_SECONDS
         must_have = [step for step, at in trial["reports"] if at < deadline]
         if must_have:
-            assert len(steps) >= must_have[-1] + 1, (trial["flush_seconds"], must_have[-1], len(steps))
+            assert len(steps) >= must_have[-1] + 1, (trial["commit_seconds"], must_have[-1], len(steps))
         if len(steps):
             assert np.isfinite(run.series("grad_norm")).all()            # committed rows hold real values
             assert np.isfinite(run.loss).all()
@@ -55,4 +55,4 @@ def test_sigkill_at_random_steps_leaves_a_readable_recording(tmp_path):
         writes.append(write)
     print(f"steps lost per kill: max {max(lost)}, median {int(np.median(lost))}; seconds of training lost: "
           f"max {max(lost_seconds):.2f}; longest flush {max(writes):.2f} s; "
-          f"flush_seconds {sorted({t['flush_seconds'] for t in trials})}")
+          f"commit_seconds {sorted({t['commit_seconds'] for t in trials})}")

@@ -238,7 +238,7 @@ def test_live_view_follows_a_running_recorder_and_keeps_a_moved_cursor(tmp_path,
     model = _model()
     opt = torch.optim.Adam(model.parameters(), lr=1e-2)
     x, y = torch.randn(16, 6), torch.randn(16, 1)
-    rec = nbkit.record(model, opt, tmp_path / "live", probes=4, flush_seconds=60)
+    rec = nbkit.record(model, opt, tmp_path / "live", probes=4, commit_seconds=60)
     try:
         _train(model, opt, rec, x, y, 3)
         rec.flush()

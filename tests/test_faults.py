@@ -1,6 +1,8 @@
 """Injected faults: the recorder warns once with the cause, training finishes, what was recorded stays readable."""
 import errno
 import os
+import queue
+import types
 import warnings
 
 import numpy as np
@@ -32,7 +34,7 @@ def _failing_store_after(monkeypatch, calls, error):
 def test_disk_full_or_read_only_midway_warns_once_and_training_finishes(tmp_path, tiny_classifier, monkeypatch, error):
     model, inputs, targets = tiny_classifier
     optimizer = torch.optim.Adam(model.parameters(), lr=1e-2)
-    rec = nbkit.record(model, optimizer, tmp_path / "r", flush_seconds=60)
+    rec = nbkit.record(model, optimizer, tmp_path / "r", commit_seconds=60)
     train(model, optimizer, inputs, targets, 30)
     rec.flush()                                     # 30 steps are safely on disk
     _failing_store_after(monkeypatch, 0, error)
@@ -120,15 +122,14 @@ def test_a_recorder_bug_midway_stops_recording_and_keeps_earlier_rows(tmp_path, 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         rec = nbkit.record(model, optimizer, tmp_path / "r")
-        original, calls = rec._light_row, []
+        calls = []
 
-        def buggy():
+        def buggy(row):
             calls.append(1)
             if len(calls) > 6:
                 raise ZeroDivisionError("an injected bug")
-            return original()
 
-        rec._light_row = buggy
+        rec.add_step_hook(buggy)          # runs inside the recorder's step hook, as its own code does
         losses = train(model, optimizer, inputs, targets, 12)
         rec.close()
     assert len(losses) == 12 and np.isfinite(losses).all()
@@ -156,10 +157,17 @@ def test_a_writer_slower_than_training_drops_rows_with_one_warning(tmp_path, tin
     monkeypatch.setattr(writer, "QUEUE_ROWS", 5)
     model, inputs, targets = tiny_classifier
     optimizer = torch.optim.SGD(model.parameters(), lr=0.1)
-    rec = nbkit.record(model, optimizer, tmp_path / "r")
     gate = __import__("threading").Event()
-    original = rec._writer._handle
-    monkeypatch.setattr(rec._writer, "_handle", lambda kind, item: (gate.wait(10), original(kind, item))[1])
+
+    class SlowDisk(queue.Queue):
+        """The writer thread takes nothing off its queue until the gate opens: a disk slower than training."""
+
+        def get(self, *args, **kwargs):
+            gate.wait(10)
+            return super().get(*args, **kwargs)
+
+    monkeypatch.setattr(writer, "queue", types.SimpleNamespace(Queue=SlowDisk, Empty=queue.Empty))
+    rec = nbkit.record(model, optimizer, tmp_path / "r")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         train(model, optimizer, inputs, targets, 30)

@@ -19,7 +19,7 @@ WRITER = textwrap.dedent("""
     optimizer = torch.optim.Adam(model.parameters(), lr=1e-2)
     criterion = torch.nn.CrossEntropyLoss()
     with nbkit.record(model, optimizer, sys.argv[1], criterion=criterion, probes=8, keyframe_every=500,
-                      flush_seconds=0.1):
+                      commit_seconds=0.1):
         for step in range(int(sys.argv[2])):
             optimizer.zero_grad()
             criterion(model(torch.randn(16, 6)), torch.randint(0, 3, (16,))).backward()

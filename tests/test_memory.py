@@ -27,7 +27,7 @@ def test_resident_memory_growth_over_20000_steps_is_bounded(tmp_path):
     x, y = torch.randn(8, 4), torch.randn(8, 2)
     process = psutil.Process()
     rec = nbkit.record(model, optimizer, tmp_path / "r", criterion=criterion, every=10, probes=8,
-                       keyframe_every=1000, flush_seconds=1.0)
+                       keyframe_every=1000, commit_seconds=1.0)
     for step in range(STEPS):
         if step == WARMUP:
             rec.flush()

@@ -83,7 +83,7 @@ CRASHING = textwrap.dedent("""
     torch.manual_seed(0)
     model = torch.nn.Linear(6, 2)
     optimizer = torch.optim.Adam(model.parameters(), lr=1e-2)
-    rec = nbkit.record(model, optimizer, sys.argv[1], keyframe_every=10, flush_seconds=0.1)
+    rec = nbkit.record(model, optimizer, sys.argv[1], keyframe_every=10, commit_seconds=0.1)
     for step in range(int(sys.argv[2])):
         optimizer.zero_grad()
         model(torch.randn(4, 6)).square().mean().backward()

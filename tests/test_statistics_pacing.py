@@ -26,14 +26,14 @@ def _record(path, batches, *, background, hold_always):
     rec = nbkit.record(model, optimizer, path, criterion=nn.MSELoss())
     rec.background = background
     if hold_always:
-        rec._pacer.HOLD_BELOW = float("inf")        # hold whenever both durations are known
+        rec.pacer.HOLD_BELOW = float("inf")        # hold whenever both durations are known
     held = []
     for x, y in batches:
         optimizer.zero_grad()
         loss = rec.criterion(model(x), y)
         loss.backward()
         optimizer.step()
-        held.append(rec._pacer.held is not None and rec._pacer.held.future is None)
+        held.append(rec.pacer.held is not None and rec.pacer.held.future is None)
     rec.close()
     return nbkit.load(path), held
 
@@ -53,18 +53,18 @@ def test_a_held_task_starts_when_the_forward_pass_ends(tmp_path):
     model = _model(0)
     optimizer = torch.optim.Adam(model.parameters(), lr=1e-2)
     rec = nbkit.record(model, optimizer, tmp_path / "r")
-    rec._pacer.HOLD_BELOW = float("inf")
+    rec.pacer.HOLD_BELOW = float("inf")
     x, y = _batches(1)[0]
     try:
         for _ in range(3):
             optimizer.zero_grad()
             nn.functional.mse_loss(model(x), y).backward()
             optimizer.step()
-        task = rec._pacer.held
+        task = rec.pacer.held
         assert task is not None and task.future is None
         with torch.no_grad():
             model(x)                       # any forward pass ends the hold
-        assert rec._pacer.held is None and task.future is not None
+        assert rec.pacer.held is None and task.future is not None
         task.result()
     finally:
         rec.close()
@@ -77,7 +77,7 @@ def test_two_recorders_stepping_in_turn_never_wait_on_each_other(tmp_path):
     optimizers = [torch.optim.Adam(m.parameters(), lr=1e-2) for m in models]
     recs = [nbkit.record(m, o, tmp_path / f"r{k}") for k, (m, o) in enumerate(zip(models, optimizers))]
     for rec in recs:
-        rec._pacer.HOLD_BELOW = float("inf")
+        rec.pacer.HOLD_BELOW = float("inf")
     batches = _batches(15)
 
     def loop():

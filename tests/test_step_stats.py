@@ -14,6 +14,7 @@ import torch
 from torch import nn
 
 import nbkit
+from nbkit.record import setup
 from nbkit.measure.step_stats import reference_sampled_statistics, sampled_statistics
 from nbkit.measure.update_rules import ADAPTERS
 
@@ -85,7 +86,9 @@ def _record(tmp_path, background, steps=4):
         optimizer.step()
         after = {n: p.detach().double().numpy().copy() for n, p in model.named_parameters()}
         seen.append((before, grads, after))
-    samples = {t.name: t.index.numpy() for t in rec._tensors}
+    # the recorder's coordinate sample comes from its seeded generator: drawn again here, the same way
+    table, _, _ = setup.tensor_table(model, optimizer, rec.probes, torch.Generator().manual_seed(setup.SAMPLE_SEED))
+    samples = {t.name: t.index.numpy() for t in table}
     rec.close()
     return nbkit.load(tmp_path / f"r{int(background)}"), seen, samples
 

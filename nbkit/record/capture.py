@@ -11,6 +11,7 @@ optimizer.step() changes, on a background thread (`block_statistics`; when: nbki
 """
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 from typing import Callable
@@ -312,6 +313,37 @@ def deliver(row: Row, ks: list, probe_counts: list, n_probes: int, results: Bloc
         for r, count in enumerate(probe_counts):
             if count < n_probes:
                 block_values[ks[r], count:] = np.nan
+
+
+def prepare_step(blocks: list[Block], row: Row, optimizer, adapter: Adapter, probes: int, *, report) -> list[BlockJob]:
+    """Post-step, on the training thread: mark `row` heavy and prepare the statistics of every block
+    copied before this step (tensors with a dense gradient); the jobs' results fill in `row`.
+    report(what): how a sparse gradient is reported (it is not recorded)."""
+    row.heavy = True
+    jobs = []
+    for block in blocks:
+        if not block.copied:
+            continue
+        block.copied = False
+        rows = []
+        for r, (t, k) in enumerate(zip(block.tensors, block.positions)):
+            if t.stopped:
+                continue
+            grad = t.param.grad
+            row.quantities[QUANTITY_INDEX["grad_missing"], k] = 1.0 if grad is None else 0.0
+            if grad is None:
+                forget_gradient(block, r)
+            elif grad.is_sparse:
+                forget_gradient(block, r)
+                report(f"tensor {t.name!r} has a sparse gradient, which is not recorded")
+            else:
+                rows.append(r)
+        if not rows:
+            continue
+        ks = [block.positions[r] for r in rows]
+        fill = functools.partial(deliver, row, ks, [block.tensors[r].probes for r in rows], probes)
+        jobs.append(prepare_block(block, rows, optimizer, adapter, probes, deliver=fill))
+    return jobs
 
 
 def forget_gradient(block: Block, r: int) -> None:

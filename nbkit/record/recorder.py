@@ -14,7 +14,6 @@ from __future__ import annotations
 import collections
 import contextlib
 import functools
-import math
 import random
 import warnings
 import weakref
@@ -26,18 +25,17 @@ from torch.utils.hooks import RemovableHandle
 
 from nbkit.analyze.model_copy import register_hook_owner
 from nbkit.errors import RecorderError, RecorderWarning
-from nbkit.measure.fingerprint import combine, fingerprint
-from nbkit.measure.quantities import QUANTITIES
 from nbkit.measure.update_rules import adapter_for
 from nbkit.record import capture, lifetime, setup
 from nbkit.record.estimates import estimates_for
 from nbkit.record.options import RecordOptions
 from nbkit.record.pacing import Pacer
+from nbkit.record.step_inputs import StepInputs
 from nbkit.store import keyframes as kf
 from nbkit.store.layout import OPTIMIZER_ONLY_LAYER, Row
 from nbkit.store.writer import RecordingWriter
 
-GRAD_MISSING = QUANTITIES.index("grad_missing")
+_recorder_of: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()   # optimizer -> its open Recorder
 
 
 class Recorder:
@@ -53,9 +51,9 @@ class Recorder:
                  extra_meta: dict | None = None, first_step: int = 0):
         options = options or RecordOptions()
         setup.check_attachable(model, optimizer, path)
-        existing = getattr(optimizer, "_nbkit_recorder", None)
-        if existing is not None and existing() is not None and not existing()._closed:
-            raise RecorderError(f"This optimizer is already recorded into {str(existing().recording_path)!r}; "
+        existing = _recorder_of.get(optimizer)
+        if existing is not None and not existing._closed:
+            raise RecorderError(f"This optimizer is already recorded into {str(existing.recording_path)!r}; "
                                 "close that recorder first (rec.close())")
         self.model, self.optimizer, self.options = model, optimizer, options
         self.criterion, self.step_fn = options.criterion, options.step_fn
@@ -72,18 +70,12 @@ class Recorder:
         self._open_tasks: list = []         # ... and the statistics tasks that fill it in
         self._waiting: collections.deque = collections.deque()   # (row, statistics tasks) still computing
         self._forward_since_step = False
-        self._reported_loss = None
-        self._criterion_losses: list = []
-        self._closure_loss = None
-        self._input_prints: list = []
-        self._target_prints: list = []
         self._last_keyframe = None
-        self._last_inputs = self._last_targets = None   # kept only for estimates: (args, kwargs), targets
         self._step_hooks: collections.OrderedDict = collections.OrderedDict()   # weakref-able, as torch's
         estimates = estimates_for(options)             # raises when they cannot work
-        self._keep_batch = estimates is not None
+        self._inputs = StepInputs(keep_batch=estimates is not None)   # the estimates rebuild the batch
         self._blocks = None                 # nbkit.record.capture.Block list, made at the first step
-        self._pacer = Pacer()               # when the statistics run
+        self.pacer = Pacer()                # when the statistics run (tests set its thresholds)
         self._tensors, orphans, frozen = setup.tensor_table(
             model, optimizer, self.probes, torch.Generator().manual_seed(setup.SAMPLE_SEED))
         meta = setup.recording_meta(model, optimizer, self.adapter, self._tensors, orphans, frozen, options)
@@ -119,7 +111,7 @@ class Recorder:
         if estimates is not None:
             self.add_step_hook(functools.partial(estimates.after_step, self))
         register_hook_owner(self)           # model copies (replays, landscapes) leave these hooks behind
-        optimizer._nbkit_recorder = weakref.ref(self)
+        _recorder_of[optimizer] = self
         lifetime.keep_until_exit(self)
 
     # --- the public surface ---------------------------------------------------------------------
@@ -152,7 +144,7 @@ class Recorder:
         if self._open_row is not None and not self._forward_since_step:
             self._open_row.loss = value
         else:
-            self._reported_loss = value
+            self._inputs.reported_loss = value
 
     def observe_criterion(self, inputs: tuple, output) -> None:
         """A criterion call the recorder's own hook did not see (a replay's criterion object): its
@@ -161,21 +153,14 @@ class Recorder:
             return
         try:
             if torch.is_grad_enabled() and self.model.training and isinstance(output, torch.Tensor):
-                self._criterion_losses.append(output.detach())
-                if len(inputs) > 1:
-                    self._target_prints.append(fingerprint(inputs[1:]))
-                    if self._keep_batch:
-                        self._last_targets = inputs[1:]
+                self._inputs.criterion(inputs, output)
         except Exception as exc:
             self._fail("the criterion hook failed", exc)
 
     def last_batch(self):
         """(args, kwargs, targets) of the last training forward pass and criterion call, when the
         recorder keeps them (curvature_every or noise_every set); None otherwise or before one."""
-        if self._last_inputs is None:
-            return None
-        args, kwargs = self._last_inputs
-        return tuple(args), dict(kwargs), tuple(self._last_targets or ())
+        return self._inputs.last_batch()
 
     @contextlib.contextmanager
     def pause(self):
@@ -292,16 +277,14 @@ class Recorder:
         try:
             self._finalize_rows()
             if module.training and torch.is_grad_enabled():
-                self._input_prints.append(fingerprint(args, kwargs))
-                if self._keep_batch:
-                    self._last_inputs = (args, kwargs)
+                self._inputs.forward(args, kwargs)
                 self._forward_since_step = True
         except Exception as exc:
             self._fail("a forward pre-hook failed", exc)
         return None
 
     def _after_forward(self, module, args, output):
-        self._pacer.forward_ended()
+        self.pacer.forward_ended()
 
     def _after_criterion(self, module, inputs, output):
         self.observe_criterion(inputs, output)
@@ -312,7 +295,7 @@ class Recorder:
             return None                     # a subclass calling super().step(): record once
         try:
             self._check_writer()
-            self._pacer.step_started()
+            self.pacer.step_started()
             self._finalize_rows()
             if self._heavy(self.step):
                 self._copy_before()
@@ -327,12 +310,13 @@ class Recorder:
         return None
 
     def _wrap_closure(self, closure, args, kwargs):
-        self._closure_loss = None
+        inputs = self._inputs
+        inputs.closure_loss = None
 
         def recorded_closure():
             loss = closure()
-            if self._closure_loss is None and loss is not None:
-                self._closure_loss = loss.detach() if isinstance(loss, torch.Tensor) else loss
+            if inputs.closure_loss is None and loss is not None:
+                inputs.closure_loss = loss.detach() if isinstance(loss, torch.Tensor) else loss
             return loss
 
         if "closure" in kwargs:
@@ -365,17 +349,7 @@ class Recorder:
         return step % self.every == 0
 
     def _light_row(self) -> Row:
-        if self._criterion_losses:
-            loss = float(torch.stack([l.float().mean() for l in self._criterion_losses]).mean())
-        elif self._closure_loss is not None:
-            loss = float(self._closure_loss)
-        else:
-            loss = math.nan
-        if self._reported_loss is not None:
-            loss, self._reported_loss = self._reported_loss, None
-        prints = np.stack([combine(self._input_prints), combine(self._target_prints)])
-        self._criterion_losses, self._input_prints, self._target_prints = [], [], []
-        self._closure_loss = None
+        loss, prints = self._inputs.take()
         lrs = np.array([float(g["lr"]) for g in self.optimizer.param_groups], dtype=np.float64)
         return Row.light(self.step, loss, lrs, prints, len(self._tensors))
 
@@ -406,34 +380,11 @@ class Recorder:
         capture.copy_before(self._blocks, self.optimizer, self.adapter.before_keys)
 
     def _heavy_row(self, row: Row) -> list:
-        """Post-step: start the per-tensor quantities, histograms and probes of every block of `row`;
-        returns the statistics tasks that fill them in."""
-        row.heavy = True
-        jobs = []
-        for block in self._blocks or ():
-            if not block.copied:
-                continue
-            block.copied = False
-            rows = []
-            for r, (t, k) in enumerate(zip(block.tensors, block.positions)):
-                if t.stopped:
-                    continue
-                grad = t.param.grad
-                row.quantities[GRAD_MISSING, k] = 1.0 if grad is None else 0.0
-                if grad is None:
-                    capture.forget_gradient(block, r)
-                elif grad.is_sparse:
-                    capture.forget_gradient(block, r)
-                    self._fail(f"tensor {t.name!r} has a sparse gradient, which is not recorded", stop=False)
-                else:
-                    rows.append(r)
-            if not rows:
-                continue
-            ks = [block.positions[r] for r in rows]
-            deliver = functools.partial(capture.deliver, row, ks, [block.tensors[r].probes for r in rows], self.probes)
-            jobs.append(capture.prepare_block(block, rows, self.optimizer, self.adapter, self.probes,
-                                              deliver=deliver))
-        return [self._pacer.submit(jobs, background=self.background)] if jobs else []
+        """Post-step: start the per-tensor quantities, histograms and probes of `row`; returns the
+        statistics tasks that fill them in."""
+        jobs = capture.prepare_step(self._blocks or (), row, self.optimizer, self.adapter, self.probes,
+                                    report=self.report)
+        return [self.pacer.submit(jobs, background=self.background)] if jobs else []
 
     # --- keyframes ------------------------------------------------------------------------------
     def _take_keyframe(self, step: int):

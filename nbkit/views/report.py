@@ -14,6 +14,8 @@ from pathlib import Path
 import numpy as np
 
 from nbkit.version import __version__
+from nbkit.views.compare import compare
+from nbkit.views.explorer import explore
 
 CAUTION = ("Findings are heuristics: each points at a step and tensor worth a look, not a proven cause. "
            "Verify a finding with a replay from a keyframe before acting on it. Recordings (and this report) "
@@ -123,7 +125,7 @@ def write_report(runs, path, *, title: str = "nbkit report", findings=None, land
         parts.append(f"<h2>{html.escape(run.path.name)}</h2>")
         parts.append(_run_table(run))
         parts.append("<h3>Findings</h3>" + findings_table(found))
-        explorer = nbkit.explore(run)
+        explorer = explore(run)
         caption = "Timeline, layer map and coordinate view, as the notebook view shows them"
         focus = _focus(found)
         if focus is not None:
@@ -134,7 +136,7 @@ def write_report(runs, path, *, title: str = "nbkit report", findings=None, land
         parts.append(_figure("Explorer", _png_data_uri(explorer), caption + "."))
     if len(runs) > 1:
         parts.append("<h2>Comparison</h2>")
-        comparison = nbkit.compare(*runs)
+        comparison = compare(*runs)
         shared = max(int(r.steps[0]) for r in runs if len(r.steps))
         comparison.step = shared
         parts.append(_figure("Runs side by side", _png_data_uri(comparison),
