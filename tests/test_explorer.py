@@ -286,7 +286,7 @@ def test_tour_notebook_runs_with_nbclient_and_keeps_a_static_picture(tmp_path):
     assert not [o for o in outputs if o.get("output_type") == "error"]
     explorer = [o for o in outputs if "application/vnd.jupyter.widget-view+json" in o.get("data", {})]
     assert explorer and "image/png" in explorer[0]["data"]                  # the PNG fallback is stored
-    assert (tmp_path / "runs" / "tour-explorer.png").stat().st_size > 20_000
+    assert (tmp_path / "recordings" / "tour-explorer.png").stat().st_size > 20_000
     assert nb.metadata["widgets"]["application/vnd.jupyter.widget-state+json"]["state"]
 
 

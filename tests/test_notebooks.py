@@ -23,7 +23,7 @@ def test_your_model_template_runs_top_to_bottom(tmp_path):
     assert len(views) == 2                                   # the explorer and the comparison
     assert all("image/png" in v["data"] for v in views)      # static pictures for exported notebooks
     assert all("application/vnd.jupyter.widget-view+json" in v["data"] for v in views)
-    recording = tmp_path / "runs" / "your-model"
+    recording = tmp_path / "recordings" / "your-model"
     assert (recording / "nbkit.json").is_file()
-    replays = list((tmp_path / "runs" / "your-model.replays").iterdir())
+    replays = list((tmp_path / "recordings" / "your-model.replays").iterdir())
     assert [p.name for p in replays] == ["sgd-momentum"]
