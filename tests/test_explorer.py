@@ -243,7 +243,7 @@ def test_live_view_follows_a_running_recorder_and_keeps_a_moved_cursor(tmp_path,
         _train(model, opt, rec, x, y, 3)
         rec.flush()
         v = nbkit.explore(rec)
-        start_rows = v.data.rows
+        start_rows = v.data.row_count
         assert v.step == int(v.data.steps[-1])                             # a live view starts at the end
         import time
 
@@ -251,7 +251,7 @@ def test_live_view_follows_a_running_recorder_and_keeps_a_moved_cursor(tmp_path,
         for _ in range(40):                                                # the hook asks the writer to commit
             _train(model, opt, rec, x, y, 1)
             time.sleep(0.02)
-            seen.append(v.data.rows)
+            seen.append(v.data.row_count)
         assert len(set(seen)) >= 3 and seen[-1] > start_rows              # grew, several times, during the loop
         with v.lock:                                                       # the poller may be mid-refresh
             assert v.step == int(v.data.steps[-1])                         # and the cursor followed the end
@@ -262,9 +262,9 @@ def test_live_view_follows_a_running_recorder_and_keeps_a_moved_cursor(tmp_path,
         assert v.step == 2                                                 # a moved cursor stays
         assert v.errors.value == ""
         v.close()
-        before = v.data.rows
+        before = v.data.row_count
         _train(model, opt, rec, x, y, 5)                                   # removed hook: no more refreshes
-        assert v.data.rows == before
+        assert v.data.row_count == before
     finally:
         rec.close()
 
@@ -311,12 +311,12 @@ def test_view_of_a_path_follows_a_recording_another_process_writes(tmp_path):
                 pass
             time.sleep(0.05)
         v = nbkit.explore(path)
-        first_rows = v.data.rows
-        while time.monotonic() < deadline and v.data.rows < 4000:
+        first_rows = v.data.row_count
+        while time.monotonic() < deadline and v.data.row_count < 4000:
             time.sleep(0.2)
         assert writer.wait(120) == 0
         time.sleep(2.5)                              # one more poll after the writer closed
-        assert first_rows < 4000 and v.data.rows == 4000
+        assert first_rows < 4000 and v.data.row_count == 4000
         assert v.step == 3999 and v.slider.max == 3999   # it was at the end, so it followed
         v.close()
     finally:

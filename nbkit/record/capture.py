@@ -33,7 +33,7 @@ class Block:
     def __init__(self, group: int, tensors: list, positions: list[int]):
         self.group = group
         self.tensors = tensors                    # the recorder's _Tensor records
-        self.positions = positions                # their rows in the recording
+        self.positions = positions                # their positions in the recording (tensor order)
         dtype = tensors[0].param.dtype
         sizes = [t.param.numel() for t in tensors]
         offsets = [0]
@@ -105,12 +105,12 @@ def state_tensors(optimizer, p) -> tuple[dict, dict]:
     return shaped, scalars
 
 
-def _sample_state(block: Block, rows: list[int], states: list[dict]) -> dict:
+def _sample_state(block: Block, members: list[int], states: list[dict]) -> dict:
     """(R, S) sampled values of each state key. A block of small tensors (most coordinates sampled)
     concatenates each key's tensors and gathers once; large tensors are gathered one by one."""
     keys = sorted(set().union(*[s.keys() for s in states])) if states else []
     out = {}
-    everything = len(rows) == len(block.tensors)
+    everything = len(members) == len(block.tensors)
     for key in keys:
         if block.concatenate and everything and all(key in s for s in states):
             flat = torch.cat([s[key].reshape(-1) for s in states])
@@ -118,7 +118,7 @@ def _sample_state(block: Block, rows: list[int], states: list[dict]) -> dict:
             continue
         S = block.local.shape[1]
         out[key] = torch.stack([s[key].reshape(-1).index_select(0, block.local[r]) if key in s else
-                                torch.full((S,), math.nan) for r, s in zip(rows, states)]).to(block.work)
+                                torch.full((S,), math.nan) for r, s in zip(members, states)]).to(block.work)
     return out
 
 
@@ -165,8 +165,8 @@ class BlockJob:
     R = the block's tensors measured at this step; S = sampled coordinates per tensor."""
 
     block: Block
-    rows: list[int]                 # the measured tensors' positions in the block
-    everything: bool                # rows == every tensor of the block
+    members: list[int]              # the measured tensors (their indices in the block)
+    everything: bool                # members are every tensor of the block
     current: list                   # this step's gradients (the block's copies)
     previous: list                  # the previous recorded gradients, None where there is none
     minus_update: list              # −Δθ per tensor (the block's buffers)
@@ -198,9 +198,9 @@ class BlockStatistics:
 
 
 @torch.no_grad()
-def prepare_block(block: Block, rows: list[int], optimizer, adapter: Adapter, probes: int, *,
+def prepare_block(block: Block, members: list[int], optimizer, adapter: Adapter, probes: int, *,
                   deliver) -> BlockJob:
-    """Post-step, on the training thread: what the statistics of the tensors `rows` of `block`
+    """Post-step, on the training thread: what the statistics of the tensors `members` of `block`
     (those with a dense gradient) need from tensors that change before the next step.
 
     That is θ_after − θ_before into the block's buffer, a copy of the gradients (the next backward
@@ -211,35 +211,35 @@ def prepare_block(block: Block, rows: list[int], optimizer, adapter: Adapter, pr
     block's buffers are reused or the optimizer steps again.
     """
     wait(block)
-    everything = len(rows) == len(block.tensors)
-    pick = (lambda xs: xs) if everything else (lambda xs: [xs[r] for r in rows])
+    everything = len(members) == len(block.tensors)
+    pick = (lambda xs: xs) if everything else (lambda xs: [xs[r] for r in members])
     tensors = pick(block.tensors)
     grads = [t.param.grad for t in tensors]
     params = [t.param.detach() for t in tensors]
     befores = pick(block.befores)
     current, previous = block.grads[block.turn], block.grads[1 - block.turn]
     block.turn = 1 - block.turn                      # the next step writes the other gradient buffer
-    flat_index = block.flat_index if everything else block.flat_index[rows]
+    flat_index = block.flat_index if everything else block.flat_index[members]
 
     weight_norm = norms(befores)                                                  # ‖θ before‖
-    weight_nonfinite = torch.zeros(len(rows), dtype=torch.float64)
+    weight_nonfinite = torch.zeros(len(members), dtype=torch.float64)
     if not bool(torch.isfinite(weight_norm).all()):                               # rare: count them
         weight_nonfinite = torch.stack([(~torch.isfinite(b)).sum() for b in befores]).double()
     theta_before = _gather(block.before_flat, flat_index, block.work)            # (R, S)
     torch._foreach_sub_(befores, params)                                          # befores := −Δθ
     torch._foreach_copy_(pick(current), grads)
-    before = {k: v if everything else v[rows] for k, v in block.state_before.items()}
+    before = {k: v if everything else v[members] for k, v in block.state_before.items()}
     # a scheduler changes the group after the step: copy it now
     group = {k: v for k, v in optimizer.param_groups[block.group].items() if k != "params"}
-    has_previous = [block.has_previous[r] for r in rows]
-    previous_norms = torch.tensor([block.previous_norms[r] for r in rows], dtype=torch.float64)
-    job = BlockJob(block=block, rows=rows, everything=everything, current=pick(current),
+    has_previous = [block.has_previous[r] for r in members]
+    previous_norms = torch.tensor([block.previous_norms[r] for r in members], dtype=torch.float64)
+    job = BlockJob(block=block, members=members, everything=everything, current=pick(current),
                    previous=[p if h else None for p, h in zip(pick(previous), has_previous)],
                    minus_update=befores, flat_index=flat_index, current_flat=block.grad_flats[1 - block.turn],
                    theta_before=theta_before, weight_norm=weight_norm, weight_nonfinite=weight_nonfinite,
                    previous_norms=previous_norms, has_previous=has_previous, before=before, optimizer=optimizer,
                    params=[t.param for t in tensors], group=group, adapter=adapter, probes=probes, deliver=deliver)
-    for r in rows:
+    for r in members:
         block.has_previous[r] = True
     return job
 
@@ -247,9 +247,9 @@ def prepare_block(block: Block, rows: list[int], optimizer, adapter: Adapter, pr
 def _optimizer_state(job: BlockJob):
     """The sampled optimizer state after the step, and its scalars, read on the statistics thread:
     only optimizer.step() changes the state, and the next step's pre-hook waits for this job."""
-    block, rows = job.block, job.rows
+    block, members = job.block, job.members
     states, scalars = zip(*[state_tensors(job.optimizer, p) for p in job.params])
-    after = _sample_state(block, rows, list(states))
+    after = _sample_state(block, members, list(states))
     scalar_values = {k: torch.tensor([[s.get(k, math.nan)] for s in scalars], dtype=block.work)
                      for k in sorted(set().union(*[s.keys() for s in scalars]))}
     # float64: the step-dependent coefficients (RAdam's ρ_t) cancel badly in float32
@@ -260,10 +260,10 @@ def _optimizer_state(job: BlockJob):
 def block_statistics(job: BlockJob) -> BlockStatistics:
     """The statistics of a prepared block (nbkit.measure.step_stats on the job's buffers); also
     keeps the block's previous gradient sample and norms for the next recorded step."""
-    block, rows, everything = job.block, job.rows, job.everything
+    block, members, everything = job.block, job.members, job.everything
     after, scalar_values, steps = _optimizer_state(job)
-    valid = block.valid if everything else block.valid[rows]
-    pad = block.pad if everything else block.pad[rows]
+    valid = block.valid if everything else block.valid[members]
+    pad = block.pad if everything else block.pad[members]
     whole = whole_tensor_statistics(job.current, job.minus_update, job.previous, job.previous_norms,
                                     job.weight_norm)
     whole["weight_nonfinite"] = job.weight_nonfinite
@@ -272,7 +272,7 @@ def block_statistics(job: BlockJob) -> BlockStatistics:
     finite = bool(torch.isfinite(torch.stack([whole["grad_norm"], whole["update_norm"]])).all())
     previous_sample = None
     if block.previous_sample is not None and all(job.has_previous):
-        previous_sample = block.previous_sample if everything else block.previous_sample[rows]
+        previous_sample = block.previous_sample if everything else block.previous_sample[members]
     sampled, histograms, probe_values = sampled_statistics(
         grad=grad, theta_before=job.theta_before, update=update, valid=valid, before=job.before,
         after=after, scalars=scalar_values, step=steps, group=job.group, lr=float(job.group["lr"]),
@@ -281,14 +281,14 @@ def block_statistics(job: BlockJob) -> BlockStatistics:
     if after:
         state_nonfinite = sum((~torch.isfinite(v) & valid).sum(dim=1) for v in after.values())
     grad_norms = whole["grad_norm"].tolist()
-    for i, r in enumerate(rows):
+    for i, r in enumerate(members):
         block.previous_norms[r] = grad_norms[i]
     if everything:
         block.previous_sample = grad
     else:
         if block.previous_sample is None:
             block.previous_sample = torch.full(block.local.shape, math.nan, dtype=block.work)
-        block.previous_sample[rows] = grad
+        block.previous_sample[members] = grad
     return BlockStatistics(whole, sampled, histograms, probe_values, state_nonfinite)
 
 
@@ -325,7 +325,7 @@ def prepare_step(blocks: list[Block], row: Row, optimizer, adapter: Adapter, pro
         if not block.copied:
             continue
         block.copied = False
-        rows = []
+        members = []
         for r, (t, k) in enumerate(zip(block.tensors, block.positions)):
             if t.stopped:
                 continue
@@ -337,12 +337,12 @@ def prepare_step(blocks: list[Block], row: Row, optimizer, adapter: Adapter, pro
                 forget_gradient(block, r)
                 report(f"tensor {t.name!r} has a sparse gradient, which is not recorded")
             else:
-                rows.append(r)
-        if not rows:
+                members.append(r)
+        if not members:
             continue
-        ks = [block.positions[r] for r in rows]
-        fill = functools.partial(deliver, row, ks, [block.tensors[r].probes for r in rows], probes)
-        jobs.append(prepare_block(block, rows, optimizer, adapter, probes, deliver=fill))
+        ks = [block.positions[r] for r in members]
+        fill = functools.partial(deliver, row, ks, [block.tensors[r].probes for r in members], probes)
+        jobs.append(prepare_block(block, members, optimizer, adapter, probes, deliver=fill))
     return jobs
 
 

@@ -30,16 +30,16 @@ def create(group, name: str, spec: layout.ArraySpec, rows: int):
 class RowArrays:
     """The step arrays of one recording: `append(rows)` writes a batch of Rows at the end."""
 
-    def __init__(self, path: Path, meta: dict, *, rows: int = 0, local_rows: int = 0):
+    def __init__(self, path: Path, meta: dict, *, written: int = 0, local_rows: int = 0):
         self.meta = meta
         self.group = zarr.open_group(str(path), mode="a", use_consolidated=False)
         self.arrays: dict = {}
-        self.rows = rows                        # rows written
+        self.written = written                  # step rows written
         self.local_rows = local_rows
         self.capacity = 0
         self._block_rows: list[np.ndarray] = []     # summaries of the current overview block
         self._block_loss: list[float] = []
-        if rows:                                # resuming: the arrays exist
+        if written:                             # resuming: the arrays exist
             names = [*layout.row_arrays(meta, 1), *layout.overview_arrays(meta)]
             self.arrays = {name: self.group[name] for name in names}
             # a crash while growing can leave arrays of different lengths: the shortest one bounds all
@@ -82,7 +82,7 @@ class RowArrays:
         created = layout.STEP not in self.arrays
         if created:
             self._create(rows[0], probe_index)
-        start, stop = self.rows, self.rows + len(rows)
+        start, stop = self.written, self.written + len(rows)
         if stop > self.capacity:
             self._grow(stop)
         a = self.arrays
@@ -101,7 +101,7 @@ class RowArrays:
             missing = np.full(array.shape[1:], np.nan, dtype=np.float32)
             array[start:stop] = np.stack([r.probes.get(name, missing) for r in rows])
         self._write_overview(start, summaries, [r.loss for r in rows])
-        self.rows = stop
+        self.written = stop
         return created
 
     def _write_overview(self, start: int, summaries: np.ndarray, losses: list[float]) -> None:
@@ -126,12 +126,12 @@ class RowArrays:
 
     def _reload_block(self) -> None:
         """On resume, the rows of the partly filled overview block are read back."""
-        start = (self.rows // OVERVIEW_BLOCK) * OVERVIEW_BLOCK
-        if start == self.rows:
+        start = (self.written // OVERVIEW_BLOCK) * OVERVIEW_BLOCK
+        if start == self.written:
             return
         quantities = self.meta["quantities"]
-        values = np.stack([self.arrays[layout.series_array(q)][start:self.rows] for q in quantities], axis=1)
-        self._block_rows, self._block_loss = list(values), list(self.arrays[layout.LOSS][start:self.rows])
+        values = np.stack([self.arrays[layout.series_array(q)][start:self.written] for q in quantities], axis=1)
+        self._block_rows, self._block_loss = list(values), list(self.arrays[layout.LOSS][start:self.written])
 
     # --- per-rank local gradients ---------------------------------------------------------------
     def append_local(self, items: list[tuple[int, np.ndarray]]) -> None:

@@ -58,12 +58,12 @@ class RecordingReader:
         committed_path = self.path / COMMITTED_FILE
         try:
             committed = read_json(committed_path)
-            self._rows = int(committed["rows"])
+            self._committed = int(committed["rows"])
             if not isinstance(committed, dict) or isinstance(committed["rows"], bool):
                 raise TypeError("not a row count")
         except (OSError, ValueError, KeyError, TypeError, OverflowError) as exc:
             raise RecordingError(f"Commit file {str(committed_path)!r} is missing or damaged ({exc})") from exc
-        if self._rows < 0:
+        if self._committed < 0:
             raise RecordingError(f"Commit file {str(committed_path)!r} has a negative row count; it was tampered with")
         self.closed_cleanly = bool(committed.get("closed", False))
         local_rows = committed.get("local_rows", 0)
@@ -74,13 +74,13 @@ class RecordingReader:
                 and (meta.get("writer_error") or not _writer_alive(meta)):
             self._warned_unclosed = True
             cause = f" (the writer reported {meta['writer_error']})" if meta.get("writer_error") else ""
-            warnings.warn(f"Recording {str(self.path)!r} was not closed cleanly{cause}: it holds {self._rows} "
+            warnings.warn(f"Recording {str(self.path)!r} was not closed cleanly{cause}: it holds {self._committed} "
                           f"committed steps{_last_step_text(committed)}; steps after the last flush were lost. "
                           "Everything it holds is readable.", RecordingWarning, stacklevel=3)
         return self
 
     def _open_group(self):
-        if self._group is None and self._rows:
+        if self._group is None and self._committed:
             self._group = zarr.open_group(str(self.path), mode="r", use_consolidated=False)
         return self._group
 
@@ -100,21 +100,21 @@ class RecordingReader:
                                  "and other steps can still be read.") from exc
 
     def _rows_of(self, name: str, extra=()) -> np.ndarray:
-        return self._read(name, (slice(0, self._rows), *extra))
+        return self._read(name, (slice(0, self._committed), *extra))
 
     # --- the public API -------------------------------------------------------------------------
     def __repr__(self):
         state = "closed" if self.closed_cleanly else "open or not closed cleanly"
-        return (f"Recording({str(self.path)!r}: {self._rows} steps, {len(self.tensors)} tensors, "
+        return (f"Recording({str(self.path)!r}: {self._committed} steps, {len(self.tensors)} tensors, "
                 f"{self.meta.get('optimizer', {}).get('class', '?')}, {state})")
 
     def __len__(self):
-        return self._rows
+        return self._committed
 
     @property
     def steps(self) -> np.ndarray:
         """The optimizer step of each row (read-only; read once per refresh)."""
-        if self._rows == 0:
+        if self._committed == 0:
             return np.zeros(0, dtype=np.int64)
         steps = self._cache.get("step")
         if steps is None:
@@ -152,16 +152,16 @@ class RecordingReader:
     def series(self, q: str, tensor: str | None = None, *, rows: slice | None = None) -> np.ndarray:
         """Quantity `q` per step: (steps, tensors), or (steps,) for one tensor."""
         self._check_quantity(q)
-        if self._rows == 0:
+        if self._committed == 0:
             return np.zeros((0,) if tensor else (0, len(self.tensors)), dtype=np.float32)
-        rows = _clip(rows, self._rows)
+        rows = _clip(rows, self._committed)
         if tensor is None:
             return self._read(layout.series_array(q), (rows,))
         return self._read(layout.series_array(q), (rows, self.tensor_index(tensor)))
 
     def overview(self, q: str) -> tuple[np.ndarray, np.ndarray]:
         """(block start rows, (blocks, tensors, 2) min/max) over blocks of OVERVIEW_BLOCK steps."""
-        blocks = -(-self._rows // OVERVIEW_BLOCK)
+        blocks = -(-self._committed // OVERVIEW_BLOCK)
         if q == "loss":
             data = self._read(layout.OVERVIEW_LOSS, slice(0, blocks))
         else:
@@ -171,16 +171,16 @@ class RecordingReader:
 
     @property
     def loss(self) -> np.ndarray:
-        return self._rows_of(layout.LOSS) if self._rows else np.zeros(0)
+        return self._rows_of(layout.LOSS) if self._committed else np.zeros(0)
 
     @property
     def lr(self) -> np.ndarray:
-        return self._rows_of(layout.LR) if self._rows else np.zeros((0, len(self.meta.get("param_groups", []))))
+        return self._rows_of(layout.LR) if self._committed else np.zeros((0, len(self.meta.get("param_groups", []))))
 
     @property
     def heavy(self) -> np.ndarray:
         """True at steps whose per-tensor quantities were computed (every=N records 1 step in N)."""
-        return self._rows_of(layout.HEAVY) if self._rows else np.zeros(0, dtype=bool)
+        return self._rows_of(layout.HEAVY) if self._committed else np.zeros(0, dtype=bool)
 
     @property
     def fingerprints(self) -> np.ndarray:
@@ -202,8 +202,8 @@ class RecordingReader:
         """
         i = self.tensor_index(tensor)
         index = self.probe_index(tensor)
-        rows = _clip(rows, self._rows)
-        n = len(range(*rows.indices(self._rows)))
+        rows = _clip(rows, self._committed)
+        n = len(range(*rows.indices(self._committed)))
         out = {"index": np.broadcast_to(index, (n, len(index)))}
         recorded = self.meta.get("probe_fields", [])
         for name in recorded if fields is None else [f for f in fields if f in recorded]:
@@ -216,7 +216,7 @@ class RecordingReader:
             raise RecordingError(f"No histogram of {q!r}; histograms exist for {', '.join(HISTOGRAMS)}")
         bins = self.meta["histogram_bins"]
         low = self.meta["histogram_low"][q]
-        counts = self._read(layout.histogram_array(q), (_clip(rows, self._rows), self.tensor_index(tensor), slice(0, bins)))
+        counts = self._read(layout.histogram_array(q), (_clip(rows, self._committed), self.tensor_index(tensor), slice(0, bins)))
         return np.arange(low, low + bins + 1, dtype=np.float64), counts
 
     # --- reads for the views: row slices of every tensor at once ----------------------------------
@@ -230,14 +230,14 @@ class RecordingReader:
             raise RecordingError(f"No histogram of {q!r}; histograms exist for {', '.join(HISTOGRAMS)}")
         bins = self.meta["histogram_bins"]
         low = self.meta["histogram_low"][q]
-        counts = self._read(layout.histogram_array(q), (_clip(rows, self._rows), slice(None), slice(0, bins)))
+        counts = self._read(layout.histogram_array(q), (_clip(rows, self._committed), slice(None), slice(0, bins)))
         return np.arange(low, low + bins + 1, dtype=np.float64), counts
 
     def learning_rates(self, *, rows: slice | None = None) -> np.ndarray:
         """(steps, param_groups) float64 learning rate of each group, over `rows` (None: every step)."""
-        if self._rows == 0:
+        if self._committed == 0:
             return np.zeros((0, len(self.meta.get("param_groups", []))))
-        return self._read(layout.LR, (_clip(rows, self._rows),))
+        return self._read(layout.LR, (_clip(rows, self._committed),))
 
     @property
     def keyframes(self) -> list[int]:
@@ -266,8 +266,8 @@ class RecordingReader:
                 part = "keyframes" if top == layout.KEYFRAME_DIR else "metadata" if len(f.relative_to(self.path).parts) == 1 else "rows"
                 parts[part] += f.stat().st_size
         parts["total"] = sum(parts.values())
-        parts["steps"] = self._rows
-        parts["row_bytes_per_step"] = parts["rows"] / self._rows if self._rows else float("nan")
+        parts["steps"] = self._committed
+        parts["row_bytes_per_step"] = parts["rows"] / self._committed if self._committed else float("nan")
         parts["estimate"] = self.meta.get("size_estimate")
         return parts
 
@@ -280,7 +280,7 @@ class RecordingReader:
         if not self.meta.get("distributed", {}).get("local_gradients"):
             raise RecordingError(f"Recording {str(self.path)!r} has no local gradients; record them with "
                                  "nbkit.record_local_gradients(ddp_model, recorder) before the first backward")
-        i, n = self.tensor_index(tensor), len(self.probe_index(tensor)) if self._rows else 0
+        i, n = self.tensor_index(tensor), len(self.probe_index(tensor)) if self._committed else 0
         if self._local_rows == 0:
             ranks = self.meta["distributed"]["world_size"]
             return {"step": np.zeros(0, np.int64), "grad_norm": np.zeros((0, ranks)), "grad": np.zeros((0, ranks, n))}

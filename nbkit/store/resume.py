@@ -17,13 +17,13 @@ class ResumePlan:
 
     def __init__(self, path: Path, meta: dict, rows: int, local_rows: int, last_step: int | None,
                  next_step: int, note: dict):
-        self.path, self.meta, self.rows, self.local_rows = path, meta, rows, local_rows
+        self.path, self.meta, self.kept_rows, self.kept_local_rows = path, meta, rows, local_rows
         self.last_step, self.next_step, self.note = last_step, next_step, note
 
     def merged_meta(self, new: dict) -> dict:
         """The old metadata, checked against the new run's, with this resume noted in "resumes"."""
         old = self.meta
-        if not old.get("tensors") or self.rows == 0:
+        if not old.get("tensors") or self.kept_rows == 0:
             fresh = dict(new)
             fresh["resumes"] = old.get("resumes", []) + [self.note]
             return fresh

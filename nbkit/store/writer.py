@@ -49,8 +49,8 @@ class RecordingWriter:
         self._local: list[tuple[int, np.ndarray]] = []    # (step, (ranks, tensors, 1 + probes)) rows
         self._last_step = resume.last_step if resume is not None else None
         self._last_commit = time.monotonic()
-        self._arrays = RowArrays(self.path, self.meta, rows=resume.rows if resume is not None else 0,
-                                 local_rows=resume.local_rows if resume is not None else 0)
+        self._arrays = RowArrays(self.path, self.meta, written=resume.kept_rows if resume is not None else 0,
+                                 local_rows=resume.kept_local_rows if resume is not None else 0)
         write_json_atomic(self.path / META_FILE, self.meta)
         self._publish(closed=False)
         self._thread = threading.Thread(target=self._run, name=f"nbkit-writer:{self.path.name}", daemon=True)
@@ -150,7 +150,7 @@ class RecordingWriter:
         """Best effort: say in the metadata why the recording stopped (the disk may still refuse)."""
         try:
             self.meta["writer_error"] = f"{type(self.error).__name__}: {self.error}"
-            self.meta["writer_error_after_rows"] = self._arrays.rows
+            self.meta["writer_error_after_rows"] = self._arrays.written
             write_json_atomic(self.path / META_FILE, self.meta)
         except Exception:
             pass
@@ -174,10 +174,10 @@ class RecordingWriter:
         self._publish(closed=False, last_step=rows[-1].step)
 
     def _publish(self, *, closed: bool, last_step: int | None = None) -> None:
-        data = {"rows": self._arrays.rows, "closed": closed, "time": time.time(),
+        data = {"rows": self._arrays.written, "closed": closed, "time": time.time(),
                 "local_rows": self._arrays.local_rows, "max_write_seconds": round(self.max_write_seconds, 4),
                 "dropped_rows": self.dropped_rows}
-        if last_step is None and self._arrays.rows:
+        if last_step is None and self._arrays.written:
             last_step = self._last_step
         if last_step is not None:
             data["last_step"] = self._last_step = int(last_step)

@@ -105,7 +105,7 @@ class CoordinateView:
     def set_tensor(self, tensor: str):
         self.tensor = tensor
         self._xlim = self._ylim = self._flim = None
-        if self.data.rows == 0:
+        if self.data.row_count == 0:
             return
         # Axes start from recording-wide maxima (the stored overview), so they hold every step.
         data, group = self.data, self.data.tensor_group(tensor)

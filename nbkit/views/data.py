@@ -47,7 +47,7 @@ class ExplorerData:
     def reload(self) -> None:
         """Forget caches of rows that may have grown (call after run.refresh())."""
         self.steps = self.run.steps                                   # (rows,) int64
-        self.rows = len(self.steps)
+        self.row_count = len(self.steps)
         self._block_cache: dict = {}
         self._hist_cache: dict = {}
         self._heavy = None
@@ -55,9 +55,9 @@ class ExplorerData:
     # --- steps and rows -------------------------------------------------------------------------
     def row_of(self, step: int) -> int:
         """Row of the recorded step nearest at or before `step` (first row if before the start)."""
-        if self.rows == 0:
+        if self.row_count == 0:
             return 0
-        return int(np.clip(np.searchsorted(self.steps, step, side="right") - 1, 0, self.rows - 1))
+        return int(np.clip(np.searchsorted(self.steps, step, side="right") - 1, 0, self.row_count - 1))
 
     def heavy_row(self, row: int) -> int | None:
         """The latest row <= row whose per-tensor quantities were computed, or None."""
@@ -72,22 +72,22 @@ class ExplorerData:
     # --- timelines ------------------------------------------------------------------------------
     def timeline(self, which: str, buckets: int) -> tuple[np.ndarray, np.ndarray]:
         """(steps, values) of "loss" or "lr" (first group), at most ~2*buckets points, min/max kept."""
-        if which == "loss" and self.rows > LONG:
+        if which == "loss" and self.row_count > LONG:
             start, blocks = self.run.overview("loss")                 # (blocks,), (blocks, 2)
-            x = self.steps[np.minimum(start, self.rows - 1)]
+            x = self.steps[np.minimum(start, self.row_count - 1)]
             return np.repeat(x, 2), blocks.reshape(-1).astype(np.float64)
         values = self.run.loss if which == "loss" else self.run.lr[:, 0]
         return minmax_downsample(self.steps, values, buckets)
 
     def layer_map(self, q: str) -> tuple[np.ndarray, np.ndarray, str]:
         """(column start steps, (tensors, columns) values, how) for the layer-map heatmap."""
-        if self.rows > LONG:
+        if self.row_count > LONG:
             start, blocks = self.run.overview(q)                      # (blocks, tensors, 2)
-            return self.steps[np.minimum(start, self.rows - 1)], blocks[:, :, 1].T, \
+            return self.steps[np.minimum(start, self.row_count - 1)], blocks[:, :, 1].T, \
                 f"maximum per {OVERVIEW_BLOCK} steps"
         values = self.run.series(q)                                   # (rows, tensors)
         heavy = np.flatnonzero(self.run.heavy)
-        if len(heavy) and len(heavy) < self.rows:                     # every=N: keep the rows that have values
+        if len(heavy) and len(heavy) < self.row_count:                     # every=N: keep the rows that have values
             return self.steps[heavy], values[heavy].T, f"every {self.run.meta.get('every', '?')} steps"
         return self.steps, values.T, "every step"
 
@@ -122,7 +122,7 @@ class ExplorerData:
         if data is None:
             if len(self._block_cache) > 64:                           # keep memory bounded while scrubbing
                 self._block_cache = {k: v for k, v in self._block_cache.items() if k == "lr"}
-            data = read(slice(block * chunk, min((block + 1) * chunk, self.rows)))
+            data = read(slice(block * chunk, min((block + 1) * chunk, self.row_count)))
             self._block_cache[(key, block)] = data
         return data[row - block * chunk]
 
@@ -162,26 +162,26 @@ class ExplorerData:
     def _fill_histograms(self, q: str) -> None:
         """One pass over storage blocks fills the images of every tensor: a block holds all tensors."""
         edges, _ = self.run.histogram_counts(q, rows=slice(0, 0))
-        blocks = -(-self.rows // DETAIL_CHUNK)
+        blocks = -(-self.row_count // DETAIL_CHUNK)
         if blocks <= HISTOGRAM_BLOCKS:
-            _, counts = self.run.histogram_counts(q, rows=slice(0, self.rows))
+            _, counts = self.run.histogram_counts(q, rows=slice(0, self.row_count))
             counts = counts.astype(np.float64)                                    # (rows, T, bins)
             held = np.flatnonzero(counts.sum(axis=(1, 2)) > 0)                   # rows with a histogram
-            held = held if held.size else np.arange(self.rows)
+            held = held if held.size else np.arange(self.row_count)
             cols = np.linspace(0, len(held), min(HISTOGRAM_COLUMNS, len(held)) + 1).astype(np.int64)
             image = np.add.reduceat(counts[held], cols[:-1], axis=0)              # (columns, T, bins)
-            cols = np.append(held[cols[:-1]], self.rows)
-            how = "all steps" if len(held) == self.rows else f"the {len(held)} steps with histograms"
+            cols = np.append(held[cols[:-1]], self.row_count)
+            how = "all steps" if len(held) == self.row_count else f"the {len(held)} steps with histograms"
         else:
             chosen = np.unique(np.linspace(0, blocks - 1, HISTOGRAM_BLOCKS).round().astype(np.int64))
-            rows_of = [slice(b * DETAIL_CHUNK, min((b + 1) * DETAIL_CHUNK, self.rows)) for b in chosen]
+            rows_of = [slice(b * DETAIL_CHUNK, min((b + 1) * DETAIL_CHUNK, self.row_count)) for b in chosen]
             image = np.stack([self.run.histogram_counts(q, rows=rows)[1].astype(np.float64).sum(axis=0)
                               for rows in rows_of])                               # (columns, T, bins)
-            cols = np.append(chosen * DETAIL_CHUNK, self.rows)
+            cols = np.append(chosen * DETAIL_CHUNK, self.row_count)
             how = f"{len(chosen)} sampled blocks of {DETAIL_CHUNK} steps out of {blocks}"
         with np.errstate(invalid="ignore", divide="ignore"):
             share = image / image.sum(axis=2, keepdims=True)                      # (columns, T, bins)
-        step_edges = np.append(self.steps[np.minimum(cols[:-1], self.rows - 1)], self.steps[-1] + 1)
+        step_edges = np.append(self.steps[np.minimum(cols[:-1], self.row_count - 1)], self.steps[-1] + 1)
         for i, tensor in enumerate(self.run.tensors):
             self._hist_cache[(q, tensor)] = (step_edges, edges, share[:, i, :].T, how)
 

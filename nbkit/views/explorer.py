@@ -74,7 +74,7 @@ class Explorer(GuardedView, widgets.VBox):
         super().__init__(children=self._layout())
         self.add_class("nbkit-explorer")
         live = recorder is not None or not run.closed_cleanly
-        first = int(self.data.steps[-1] if live else self.data.steps[0]) if self.data.rows else 0
+        first = int(self.data.steps[-1] if live else self.data.steps[0]) if self.data.row_count else 0
         with self.hold_trait_notifications():
             self.quantity = quantity
             self.tensor = run.tensors[0] if run.tensors else ""
@@ -87,7 +87,7 @@ class Explorer(GuardedView, widgets.VBox):
         # figure drawn now would be drawn again then). draw() does it for scripts and benchmarks.
         self._prepare(first)
         if live:
-            self.follower = LiveFollower(run.path, refresh=self.refresh, shown_rows=lambda: self.data.rows,
+            self.follower = LiveFollower(run.path, refresh=self.refresh, shown_rows=lambda: self.data.row_count,
                                          show_error=self.show_error, recorder=recorder, poll=True)
         self.findings_panel.start_after_first_draws([part.canvas for part in self._parts()])
 
@@ -158,7 +158,7 @@ class Explorer(GuardedView, widgets.VBox):
 
     # --- reacting -------------------------------------------------------------------------------
     def _show_finding_marks(self):
-        if self.data.rows:
+        if self.data.row_count:
             self.timeline.load(self.findings)
             self.timeline.blitter.full()
 
@@ -177,9 +177,9 @@ class Explorer(GuardedView, widgets.VBox):
         self.guard(jump)
 
     def _nudge(self, direction):
-        if self.data.rows:
+        if self.data.row_count:
             row = self.data.row_of(self.step)
-            row = int(np.clip(row + direction, 0, self.data.rows - 1))
+            row = int(np.clip(row + direction, 0, self.data.row_count - 1))
             self._pick_step(int(self.data.steps[row]))
 
     def _on_step(self, change):
@@ -205,7 +205,7 @@ class Explorer(GuardedView, widgets.VBox):
     # --- drawing --------------------------------------------------------------------------------
     def _place(self, step):
         """Snap `step` to a recorded step; point every part's cursor at it. Returns (step, full draw?)."""
-        if self.data.rows == 0:
+        if self.data.row_count == 0:
             self.step_label.value = "<b>no steps recorded yet</b>"
             return step, False
         row = self.data.row_of(step)
@@ -252,9 +252,9 @@ class Explorer(GuardedView, widgets.VBox):
         """Read what every part shows at `step`, without drawing."""
         self._moving = True
         try:
-            if self.data.rows and self.layer_map.quantity != self.quantity:
+            if self.data.row_count and self.layer_map.quantity != self.quantity:
                 self.layer_map.set_quantity(self.quantity)
-            if self.data.rows and self.coordinates.tensor != self.tensor and self.tensor:
+            if self.data.row_count and self.coordinates.tensor != self.tensor and self.tensor:
                 self.coordinates.set_tensor(self.tensor)
                 self.layer_map.set_tensor(self.tensor)
             self._place(step)
@@ -282,11 +282,11 @@ class Explorer(GuardedView, widgets.VBox):
         with self.lock:
             if self._closed:
                 return False                         # a closed view stays as it was
-            old_rows, step_before = self.data.rows, self.step
+            old_rows, step_before = self.data.row_count, self.step
             at_end = old_rows == 0 or self.step >= int(self.data.steps[-1])
             self.run.refresh()
             self.data.reload()
-            if self.data.rows == old_rows:
+            if self.data.row_count == old_rows:
                 return False
             self.timeline.load(self.findings)
             self.layer_map.quantity = None          # re-read the heatmap

@@ -70,7 +70,7 @@ class LayerMap:
         """Read the heatmap of q (downsampled to blocks for long recordings). Needs a full draw."""
         self.quantity = q
         data = self.data
-        if data.rows == 0:
+        if data.row_count == 0:
             return
         starts, values, how = data.layer_map(q)              # (columns,), (tensors, columns)
         low, high, smallest_positive = data.overview_range(q)

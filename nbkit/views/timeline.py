@@ -45,7 +45,7 @@ class Timeline:
     def load(self, findings=()):
         """(Re)read the lines and marks; call after the recording grew. No drawing here."""
         data = self.data
-        if data.rows == 0:
+        if data.row_count == 0:
             return
         self.loss_line.set_data(*data.timeline("loss", BUCKETS))
         self.lr_line.set_data(*data.timeline("lr", BUCKETS))
