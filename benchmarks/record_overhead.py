@@ -35,7 +35,7 @@ from torch import nn
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 import nbkit  # noqa: E402
-from nbkit.record import capture  # noqa: E402
+from nbkit.record import pacing  # noqa: E402
 from paired import median_interval  # noqa: E402
 
 
@@ -187,14 +187,14 @@ def measure(name, steps, block, workdir, in_hook=False):
             train_step(v["model"], v["optimizer"], v["criterion"], data[v["i"]], {k: [] for k in KEYS})
             v["i"] += 1
     done = 0
-    background = capture.BACKGROUND_CPU[0]
+    background = pacing.BACKGROUND_CPU[0]
     while done < steps:
         for v in variants.values():
             for _ in range(block):
                 train_step(v["model"], v["optimizer"], v["criterion"], data[v["i"]], v["t"])
                 v["i"] += 1
         done += block
-    background = (capture.BACKGROUND_CPU[0] - background) / steps
+    background = (pacing.BACKGROUND_CPU[0] - background) / steps
     rec.close()
     params = sum(p.numel() for p in base.parameters())
     tensors = sum(1 for _ in base.parameters())

@@ -1,4 +1,4 @@
-"""When the per-step statistics run (nbkit.record.capture.Pacer): held until the next forward pass
+"""When the per-step statistics run (nbkit.record.pacing.Pacer): held until the next forward pass
 ends, or started at once. Holding changes when the numbers are computed, never what they are."""
 import threading
 
