@@ -29,10 +29,11 @@ BUDGETS = {"open_s": 2.0, "move_median_ms": 100.0, "move_p95_ms": 250.0, "switch
 
 
 def recording(steps: int, cache: Path) -> Path:
+    from nbkit.store.files import is_recording, read_committed
     from nbkit.store.synthetic import write_synthetic
 
     path = cache / f"nbkit-synthetic-{steps}"
-    if not (path / "committed.json").is_file() or not json.loads((path / "committed.json").read_text()).get("closed"):
+    if not is_recording(path) or not read_committed(path).get("closed"):
         print(f"writing a synthetic recording of 64 tensors x {steps:,} steps to {path} ...", flush=True)
         t = time.perf_counter()
         if path.exists():

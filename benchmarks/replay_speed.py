@@ -25,8 +25,8 @@ import torch
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 import nbkit  # noqa: E402
-from nbkit.replay.loop import fetcher as _fetcher
-from nbkit.replay.replay import replay  # noqa: E402
+from nbkit.replay.loop import fetcher, run_plan  # noqa: E402
+from nbkit.replay.plan import make_plan  # noqa: E402
 from paired import median_interval  # noqa: E402
 
 _generator = torch.Generator().manual_seed(0)
@@ -79,9 +79,17 @@ def record(path, steps):
     return nbkit.load(path)
 
 
+def replay_here(run, *, start, steps, to=None, before_step=None, record=True):
+    """nbkit.replay of the recorded optimizer in this process; record=False runs the same plan with its
+    recording switched off (the plan's own switch, which replay() always sets on)."""
+    model = make_model()
+    plan = make_plan(run, model, step_fn, batches, None, start, steps, to, before_step, 1, True, record=record)
+    run_plan(plan, model, step_fn, batches, list(plan.factories), progress=False)
+
+
 def timed_replay(run, steps, record_it, to, start=0):
     started, cpu = time.perf_counter(), time.process_time()
-    replay(run, make_model(), step_fn, batches, start=start, steps=steps, to=to, progress=False, _record=record_it)
+    replay_here(run, start=start, steps=steps, to=to, record=record_it)
     return steps / (time.perf_counter() - started), steps / (time.process_time() - cpu)
 
 
@@ -106,8 +114,7 @@ def interleaved(run, steps):
         plain.append(ended - started)
         marks.append((started, ended))
 
-    replay(run, make_model(), step_fn, batches, start=0, steps=steps, before_step=before_step, progress=False,
-           _record=False)
+    replay_here(run, start=0, steps=steps, before_step=before_step, record=False)
     replayed = [b[0] - a[1] for a, b in zip(marks, marks[1:])]    # one plain step's end to the next's start
     return replayed, plain[1:]
 
@@ -173,10 +180,10 @@ def main(argv=None):
             fetch_times.append((time.perf_counter() - started) / skip)
             iterable = (batches(step) for step in range(skip + 1))
             started = time.perf_counter()
-            _fetcher(iterable, skip)
+            fetcher(iterable, skip)
             skip_times.append((time.perf_counter() - started) / skip)
         started = time.perf_counter()
-        _fetcher(batches, skip)
+        fetcher(batches, skip)
         callable_cost = time.perf_counter() - started
         fetch, skipped = statistics.median(fetch_times), statistics.median(skip_times)
         # a replay's fixed cost (open the recording, read a keyframe, copy the model) in plain steps

@@ -1,7 +1,10 @@
 """nbkit: record a PyTorch training run, scrub through it, replay it with another optimizer.
 
 This module only re-exports the public API (DESIGN.md §3); DEVELOPERS.md maps where each part lives.
+The views (ipywidgets, matplotlib, ipympl) are re-exported on first use, so that a training script,
+a replay worker or a DDP rank that never draws does not pay for importing them.
 """
+import importlib
 from nbkit.analyze.curvature import sharpness
 from nbkit.analyze.noise import noise_scale
 from nbkit.errors import NbkitError, RecorderError, RecorderWarning, RecordingError, RecordingWarning, ReplayError
@@ -12,9 +15,16 @@ from nbkit.record.recorder import Recorder
 from nbkit.recording import Recording, load
 from nbkit.replay.replay import replay
 from nbkit.version import __version__
-from nbkit.views.compare import compare
-from nbkit.views.explorer import explore
-from nbkit.views.landscape import landscape
+
+VIEWS = {"explore": "nbkit.views.explorer", "compare": "nbkit.views.compare", "landscape": "nbkit.views.landscape"}
+
+
+def __getattr__(name):
+    if name in VIEWS:
+        value = getattr(importlib.import_module(VIEWS[name]), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'nbkit' has no attribute {name!r}")
 
 __all__ = [
     # recording

@@ -70,3 +70,28 @@ def test_different_batches_give_different_fingerprints():
     assert matches(fingerprint((a,)), [fingerprint((a.clone(),))])
     assert not matches(fingerprint((a,)), [fingerprint((b,))])
     assert not matches(fingerprint((a,)), [fingerprint((a[1:],))])
+
+
+def test_fingerprints_match_more_or_fewer_passes_over_one_batch():
+    from nbkit.measure.fingerprint import combine, fingerprint, matches
+
+    one = fingerprint(torch.arange(6.0))
+    other = fingerprint(torch.arange(6.0) + 1)
+    assert matches(one, [one]) and matches(one, [one, one, one])           # a closure optimizer evaluates more
+    assert matches(combine([one] * 4), [one])                             # ... or the recording did
+    assert matches(combine([one, other]), [one, other])                   # gradient accumulation
+    assert not matches(one, [other]) and not matches(combine([one, other]), [one])
+
+
+def test_the_fingerprints_short_path_flattens_like_torch_pytree():
+    """Oracle: torch.utils._pytree.tree_flatten, which the fingerprint used before its short path."""
+    from torch.utils._pytree import tree_flatten
+
+    from nbkit.measure.fingerprint import _tensors
+
+    a, b, c = torch.randn(3), torch.arange(4), torch.ones(2, 2)
+    for value in [((a,), {}), ((a, [b, {"z": c, "y": a}]), {"k": b}), ({"b": a, "a": [c, 3, None]},)]:
+        found = []
+        assert _tensors(value, found)
+        expected = [t for t in tree_flatten(value)[0] if isinstance(t, torch.Tensor)]
+        assert len(found) == len(expected) and all(x is y for x, y in zip(found, expected))

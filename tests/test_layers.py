@@ -97,9 +97,23 @@ def hidden_imports(files) -> list[str]:
 
 
 def private_reach(files) -> list[str]:
-    return [f"{path.name}:{line} {source} takes {private} from {target}"
-            for path, source in files for target, line, _, private in imports_of(path, source)
-            if private and target.startswith("nbkit")]
+    """`from nbkit.x import _y`, and `m._y` where `m` names an imported nbkit module."""
+    found = [f"{path.name}:{line} {source} takes {private} from {target}"
+             for path, source in files for target, line, _, private in imports_of(path, source)
+             if private and target.startswith("nbkit")]
+    for path, source in files:
+        tree = ast.parse(path.read_text())
+        modules = set()
+        for node in ast.walk(tree):
+            if isinstance(node, ast.Import):
+                modules.update(a.asname for a in node.names if a.name.startswith("nbkit") and a.asname)
+            elif isinstance(node, ast.ImportFrom) and (node.module or "").startswith("nbkit"):
+                modules.update(a.asname or a.name for a in node.names if is_module(f"{node.module}.{a.name}"))
+        for node in ast.walk(tree):
+            if (isinstance(node, ast.Attribute) and isinstance(node.value, ast.Name) and node.value.id in modules
+                    and node.attr.startswith("_") and not node.attr.startswith("__")):
+                found.append(f"{path.name}:{node.lineno} {source} takes {node.attr} from module {node.value.id}")
+    return found
 
 
 def test_every_import_points_down_the_layers():
@@ -141,9 +155,10 @@ def test_the_import_graph_has_no_cycle():
 def test_the_check_sees_an_upward_import_even_inside_a_function(tmp_path, upward):
     probe = tmp_path / "probe.py"
     probe.write_text(f"from nbkit.store import layout\n\n\ndef f():\n    import {upward}\n"
-                     "    from nbkit.record.recorder import _hidden\n")
+                     "    from nbkit.record.recorder import _hidden\n    return layout._secret\n")
     files = [(probe, "nbkit.store.probe")]
     assert upward_imports(files) == [f"probe.py:5 nbkit.store.probe -> {upward}",
                                      "probe.py:6 nbkit.store.probe -> nbkit.record.recorder"]
     assert len(hidden_imports(files)) == 2
-    assert private_reach(files) == ["probe.py:6 nbkit.store.probe takes ['_hidden'] from nbkit.record.recorder"]
+    assert private_reach(files) == ["probe.py:6 nbkit.store.probe takes ['_hidden'] from nbkit.record.recorder",
+                                    "probe.py:7 nbkit.store.probe takes _secret from module layout"]

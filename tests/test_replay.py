@@ -206,31 +206,6 @@ def test_the_command_line_replays_with_a_setup_function(recorded, tmp_path, caps
     assert nbkit.load(tmp_path / "recorded").meta["replay"]["fidelity"]["identical"]
 
 
-def test_fingerprints_match_more_or_fewer_passes_over_one_batch():
-    from nbkit.measure.fingerprint import combine, fingerprint, matches
-
-    one = fingerprint(torch.arange(6.0))
-    other = fingerprint(torch.arange(6.0) + 1)
-    assert matches(one, [one]) and matches(one, [one, one, one])           # a closure optimizer evaluates more
-    assert matches(combine([one] * 4), [one])                             # ... or the recording did
-    assert matches(combine([one, other]), [one, other])                   # gradient accumulation
-    assert not matches(one, [other]) and not matches(combine([one, other]), [one])
-
-
-def test_the_fingerprints_short_path_flattens_like_torch_pytree():
-    """Oracle: torch.utils._pytree.tree_flatten, which the fingerprint used before its short path."""
-    from torch.utils._pytree import tree_flatten
-
-    from nbkit.measure.fingerprint import _tensors
-
-    a, b, c = torch.randn(3), torch.arange(4), torch.ones(2, 2)
-    for value in [((a,), {}), ((a, [b, {"z": c, "y": a}]), {"k": b}), ({"b": a, "a": [c, 3, None]},)]:
-        found = []
-        assert _tensors(value, found)
-        expected = [t for t in tree_flatten(value)[0] if isinstance(t, torch.Tensor)]
-        assert len(found) == len(expected) and all(x is y for x, y in zip(found, expected))
-
-
 def fresh_criterion_step_fn(model, batch):
     x, y = batch
     return torch.nn.CrossEntropyLoss()(model(x), y)      # a new criterion object every step

@@ -4,7 +4,7 @@ A Recorder hooks the model with its bound methods; a plain copy.deepcopy would c
 with them (its writer, its thread). Objects that hook a model this way register themselves with
 `register_hook_owner`; `copy_model` then drops their hooks from the copy and keeps every other hook
 (the user's own). The registry holds weak references only: registering keeps nothing alive.
-This module imports nothing from nbkit, so every layer may use it.
+This module imports nothing from nbkit; analyze, record and replay use it.
 """
 from __future__ import annotations
 

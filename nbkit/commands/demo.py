@@ -33,7 +33,6 @@ def spike_start(findings, run) -> int:
 
 
 def run_demo(out: Path, steps: int | None = None) -> Path:
-
     out.mkdir(parents=True, exist_ok=True)
     steps = steps or scenario.STEPS
     began = time.perf_counter()
@@ -78,7 +77,6 @@ def run_demo(out: Path, steps: int | None = None) -> Path:
 
 
 def run(args) -> int:
-
     try:
         run_demo(Path(args.out), args.steps)
     except NbkitError as exc:

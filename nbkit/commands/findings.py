@@ -59,7 +59,6 @@ def _table(run_path, findings) -> str:
 
 
 def run(args) -> int:
-
     try:
         thresholds = _parse_thresholds(args.thresholds)
     except ValueError as exc:

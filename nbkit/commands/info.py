@@ -10,7 +10,6 @@ def add_arguments(parser):
 
 
 def run(args) -> int:
-
     status = 0
     for path in args.run:
         try:
@@ -24,7 +23,7 @@ def run(args) -> int:
         span = f"steps {steps[0]}..{steps[-1]}" if len(steps) else "no steps yet"
         size = recording.size_report()
         per_step = size["row_bytes_per_step"]
-        parent = meta.get("parent") or {}
+        replay = meta.get("replay") or {}
         print(f"{path}: {len(steps)} recorded steps ({span}), {len(recording.tensors)} tensors, "
               f"optimizer {meta['optimizer']['class']}, keyframes {recording.keyframes}")
         print(f"  size {size['total'] / 1e6:.1f} MB (rows {size['rows'] / 1e6:.1f} MB"
@@ -32,6 +31,6 @@ def run(args) -> int:
               + f"; keyframes {size['keyframes'] / 1e6:.1f} MB)")
         print("  " + ("closed cleanly" if recording.closed_cleanly else
                       "not closed cleanly: still being written, or the process stopped before close()"))
-        if parent:
-            print(f"  replay of {parent.get('path')} from step {parent.get('start')}")
+        if replay:
+            print(f"  replay of {replay.get('parent')} from step {replay.get('start')}")
     return status

@@ -63,7 +63,6 @@ def parse_optimizers(specs: list[str]) -> dict | None:
 
 
 def run(args) -> int:
-
     try:
         setup = load_object(args.setup, "--setup")
         model, step_fn, batches = setup()

@@ -16,7 +16,6 @@ def add_arguments(parser):
 
 def run(args) -> int:
 
-
     try:
         runs = [load(path) for path in args.runs]
     except RecordingError as exc:

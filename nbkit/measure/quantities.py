@@ -18,6 +18,10 @@ QUANTITIES = (
     "sharpness", "noise_scale",
 )
 
+# Quantities that are shares of coordinates, in [0, 1]
+SHARE_QUANTITIES = frozenset({"accelerated", "damped", "reversed", "sign_flip", "eps_share", "zero_grad_share",
+                              "lost_update_share"})
+
 HISTOGRAM_BINS = 64
 # Lowest log2 magnitude of each histogram's first bin; each bin spans one power of two. Values
 # outside the range are counted in the first or last bin.

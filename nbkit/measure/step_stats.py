@@ -13,6 +13,13 @@ from nbkit.measure.quantities import (HISTOGRAM_BINS, HISTOGRAM_LOW, NONFINITE_C
 from nbkit.measure.update_rules import Adapter, StepContext
 
 NAN = float("nan")
+# What the recording states of its series: computed over every coordinate, or over the sampled ones
+EXACT_QUANTITIES = ["grad_norm", "grad_rms", "grad_max", "weight_norm", "update_norm", "update_ratio", "grad_cosine",
+                    "update_grad_cosine", "dead_rows", "nonfinite", "weight_nonfinite", "update_nonfinite",
+                    "grad_missing"]
+SAMPLED_QUANTITIES = ["gain_median", "accelerated", "damped", "reversed", "momentum_factor_median",
+                      "scale_factor_median", "residual_median", "sign_flip", "eps_share", "zero_grad_share",
+                      "lost_update_share", "state_nonfinite", "histograms"]
 
 
 def _accumulation_dtype(tensor):

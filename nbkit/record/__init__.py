@@ -1,1 +1,1 @@
-"""Hooks and the Recorder; optimizer adapters (which state is which moment)."""
+"""The Recorder, its hooks and what they capture each step; nbkit.record attaches one."""

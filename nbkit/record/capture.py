@@ -32,7 +32,7 @@ class Block:
 
     def __init__(self, group: int, tensors: list, positions: list[int]):
         self.group = group
-        self.tensors = tensors                    # the recorder's _Tensor records
+        self.tensors = tensors                    # the recorder's RecordedTensor records (nbkit.record.setup)
         self.positions = positions                # their positions in the recording (tensor order)
         dtype = tensors[0].param.dtype
         sizes = [t.param.numel() for t in tensors]

@@ -163,19 +163,19 @@ def record_local_gradients(ddp_model, recorder, process_group=None) -> None:
         raise RecorderError(f"record_local_gradients needs the DistributedDataParallel model, got "
                             f"{type(ddp_model).__name__}; pass the wrapper, not its .module")
     rank, _ = rank_and_world()
-    named = [(name, p) for name, p in ddp_model.module.named_parameters() if p.requires_grad]
-    params = [p for _, p in named]
+    params = [p for p in ddp_model.module.parameters() if p.requires_grad]
     probes = int(recorder.probes)
     table = torch.full((len(params), 1 + probes), -1, dtype=torch.int64)
     header = torch.zeros(1, dtype=torch.int64)
     source = 0
     if not isinstance(recorder, InactiveRecorder):  # the recording rank knows the tensor table
-        position = {name: i for i, (name, p) in enumerate(named)}
-        for k, name in enumerate(recorder.tensors):
-            if name in position:
+        order = {name: k for k, name in enumerate(recorder.tensors)}
+        for i, p in enumerate(params):                # matched by identity, as the recorder holds them
+            name = recorder.tensor_name(p)
+            if name is not None:
                 coordinates = recorder.probe_coordinates(name)
-                table[position[name], 0] = k
-                table[position[name], 1:1 + len(coordinates)] = coordinates
+                table[i, 0] = order[name]
+                table[i, 1:1 + len(coordinates)] = coordinates
         header[0] = len(recorder.tensors)
         source = rank
     # every rank needs the same table so that rows line up; rank 0 records by default

@@ -29,7 +29,7 @@ RECORDING_TOL = 1e-3        # Lanczos tolerance while recording: ample for a sta
 NOISE_AVERAGE_WEIGHT = 0.2  # weight of the newest estimate in the running averages of |G|² and tr Σ
 
 
-def estimates_for(options: RecordOptions) -> "DuringRecording | None":
+def estimates_for(options: RecordOptions) -> "RecordingEstimates | None":
     """The estimates the options ask for, or None when both strides are 0. Raises when they cannot work."""
     if not (options.curvature_every or options.noise_every):
         return None
@@ -37,10 +37,10 @@ def estimates_for(options: RecordOptions) -> "DuringRecording | None":
         raise RecorderError(f"curvature_every={options.curvature_every} / noise_every={options.noise_every} need "
                             "the loss of the step's batch: pass criterion=<the nn.Module loss you call> or "
                             "step_fn=step_fn(model, batch) -> loss to nbkit.record")
-    return DuringRecording(options.curvature_every, options.noise_every)
+    return RecordingEstimates(options.curvature_every, options.noise_every)
 
 
-class DuringRecording:
+class RecordingEstimates:
     """Estimates sharpness every `curvature_every` steps and the noise scale every `noise_every` steps."""
 
     def __init__(self, curvature_every: int, noise_every: int):
@@ -56,7 +56,7 @@ class DuringRecording:
             return
         observed = recorder.last_batch()
         if observed is None:
-            recorder.report("curvature/noise estimates found no training forward pass to rebuild the batch from")
+            recorder.report_problem("curvature/noise estimates found no training forward pass to rebuild the batch from")
             return
         step_fn, batch = self._rebuild(recorder, *observed)
         with recorder.pause():
@@ -71,7 +71,7 @@ class DuringRecording:
         try:
             value = compute()
         except Exception as exc:
-            recorder.report(f"the {quantity} estimate failed", exc)
+            recorder.report_problem(f"the {quantity} estimate failed", exc)
             return
         row.set_quantity(quantity, value if value is not None else math.nan)
 

@@ -2,7 +2,7 @@
 from __future__ import annotations
 
 import warnings
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, field, fields
 from typing import Callable
 
 import torch
@@ -15,22 +15,31 @@ SAMPLE_SIZE = 4096      # sampled coordinates per tensor for shares and histogra
 RENAMED = {"flush_seconds": "commit_seconds"}
 
 
+def option(default, help: str):
+    """A recording option: its default and what it does (shown by help(nbkit.record))."""
+    return field(default=default, metadata={"help": help})
+
+
 @dataclass(frozen=True)
 class RecordOptions:
     """Every keyword of nbkit.record after model, optimizer and path, with its default."""
 
-    every: int = 1                  # heavy per-tensor quantities every N steps (loss, lr, fingerprints every step)
-    probes: int = 64                # probe coordinates per tensor, kept in full every heavy step
-    keyframe_every: int = 100       # keyframe stride (plus step 0 and the final state at close())
-    criterion: torch.nn.Module | None = None   # an nn.Module loss: its training-mode outputs give the loss
-    step_fn: Callable | None = None  # step_fn(model, batch) -> loss, for curvature and noise estimates
-    curvature_every: int = 0        # sharpness every N steps (0 = off)
-    noise_every: int = 0            # gradient noise scale every N steps (0 = off)
-    commit_seconds: float = 5.0     # rows are committed at least this often: a crash loses at most this
-    expected_steps: int | None = None   # lets record() refuse when the disk cannot hold the run
-    strict: bool = False            # True: recorder errors raise instead of warning once
-    resume: bool | int = False      # True: append to an existing recording; an int names the restart step
-    overwrite: bool = False         # True: replace an existing recording at the path
+    every: int = option(1, "heavy per-tensor quantities every N steps (loss, learning rates and "
+                           "fingerprints every step)")
+    probes: int = option(64, "probe coordinates per tensor, kept in full every heavy step")
+    keyframe_every: int = option(100, "keyframe stride (plus step 0 and the final state at close())")
+    criterion: torch.nn.Module | None = option(None, "an nn.Module loss; its training-mode outputs give each "
+                                                     "step's loss")
+    step_fn: Callable | None = option(None, "step_fn(model, batch) -> loss, used for curvature and noise estimates")
+    curvature_every: int = option(0, "sharpness every N steps (0 = off)")
+    noise_every: int = option(0, "gradient noise scale every N steps (0 = off)")
+    commit_seconds: float = option(5.0, "rows are committed to disk at least this often: a crash loses at most "
+                                        "this much (flush_seconds, its old name, works until the next release)")
+    expected_steps: int | None = option(None, "lets record() refuse when the disk cannot hold the run")
+    strict: bool = option(False, "True: recorder errors raise instead of warning once")
+    resume: bool | int = option(False, "True: append to an existing recording, steps continue (an int names "
+                                       "the restart step; an overlap or gap is stated under \"resumes\")")
+    overwrite: bool = option(False, "True: replace an existing recording at the path")
 
     def __post_init__(self):
         for name, low in (("every", 1), ("probes", 0), ("keyframe_every", 1), ("curvature_every", 0),
@@ -68,6 +77,21 @@ class RecordOptions:
         if unknown:
             raise RecorderError(f"Unknown recording option(s) {unknown}; nbkit.record accepts {', '.join(valid)}")
         return cls(**keywords)
+
+    @classmethod
+    def describe(cls) -> str:
+        """One line per option: name=default: what it does."""
+        return "\n".join(f"    {f.name}={f.default!r}: {f.metadata['help']}" for f in fields(cls))
+
+    @classmethod
+    def from_meta(cls, meta: dict, **overrides) -> "RecordOptions":
+        """The options a recording's metadata states (as_meta's inverse, where it can be: a criterion and
+        a step_fn are not stored), with `overrides`."""
+        stored = {f.name: meta[f.name] for f in fields(cls) if f.name in meta and f.name != "criterion"}
+        if "commit_seconds" not in meta and "flush_seconds" in meta:     # recordings before the rename
+            stored["commit_seconds"] = meta["flush_seconds"]
+        stored["probes"] = meta["probes"]
+        return cls(**{**stored, **overrides})
 
     def as_meta(self) -> dict:
         """The options as the recording's metadata states them (the criterion by its class name)."""

@@ -48,7 +48,11 @@ class Recorder:
     """
 
     def __init__(self, model, optimizer, path, options: RecordOptions | None = None, *,
-                 extra_meta: dict | None = None, first_step: int = 0):
+                 extra_meta: dict | None = None, first_step: int = 0, **keywords):
+        if keywords:                        # Recorder(model, optimizer, path, every=2, ...), as nbkit.record
+            if options is not None:
+                raise RecorderError("Pass the recording options either as RecordOptions or as keywords, not both")
+            options = RecordOptions.from_keywords(**keywords)
         options = options or RecordOptions()
         setup.check_attachable(model, optimizer, path)
         existing = _recorder_of.get(optimizer)
@@ -56,9 +60,7 @@ class Recorder:
             raise RecorderError(f"This optimizer is already recorded into {str(existing.recording_path)!r}; "
                                 "close that recorder first (rec.close())")
         self.model, self.optimizer, self.options = model, optimizer, options
-        self.criterion, self.step_fn = options.criterion, options.step_fn
-        self.every, self.probes, self.keyframe_every = options.every, options.probes, options.keyframe_every
-        self.strict = options.strict
+        self.strict = options.strict        # may be changed while recording: True makes errors raise
         self.recording_path = Path(path)
         self.adapter = adapter_for(optimizer)
         self.step = int(first_step)
@@ -81,18 +83,19 @@ class Recorder:
         meta = setup.recording_meta(model, optimizer, self.adapter, self._tensors, orphans, frozen, options)
         meta.update(extra_meta or {})
         setup.check_disk(meta, self.recording_path, options.expected_steps, self.adapter)  # before a replace
-        plan = setup.prepare_path(self.recording_path, optimizer, options.overwrite, options.resume)
-        if plan is not None:                # resume: steps continue, the old metadata is kept
+        resume_plan = setup.prepare_path(self.recording_path, optimizer, options.overwrite, options.resume)
+        if resume_plan is not None:         # resume: steps continue, the old metadata is kept
             try:
-                meta = plan.merged_meta(meta)
+                meta = resume_plan.merged_meta(meta)
             except ValueError as exc:
                 raise RecorderError(f"Cannot resume the recording at {str(self.recording_path)!r}: {exc}. "
                                     "Resume only with the same model, optimizer and settings, or record "
                                     "into a new path") from None
-            self.step = plan.next_step
+            self.step = resume_plan.next_step
         try:
             self._writer = RecordingWriter(self.recording_path, meta, commit_seconds=options.commit_seconds,
-                                           probe_index=setup.probe_index(self._tensors, self.probes), resume=plan)
+                                           probe_index=setup.probe_index(self._tensors, self.probes),
+                                           resume=resume_plan)
         except OSError as exc:
             raise RecorderError(f"Cannot write a recording at {str(self.recording_path)!r} "
                                 f"({type(exc).__name__}: {exc}); choose a writable folder with free space") from exc
@@ -108,8 +111,8 @@ class Recorder:
         ]
         if self.criterion is not None:
             self._handles.append(self.criterion.register_forward_hook(self._after_criterion))
-        if estimates is not None:
-            self.add_step_hook(functools.partial(estimates.after_step, self))
+        if estimates is not None:           # a weak reference: the hook must not keep its recorder alive
+            self.add_step_hook(functools.partial(estimates.after_step, weakref.proxy(self)))
         register_hook_owner(self)           # model copies (replays, landscapes) leave these hooks behind
         _recorder_of[optimizer] = self
         lifetime.keep_until_exit(self)
@@ -118,6 +121,26 @@ class Recorder:
     @property
     def active(self) -> bool:
         return not (self._closed or self._failed or self._paused)
+
+    @property
+    def criterion(self):
+        return self.options.criterion
+
+    @property
+    def step_fn(self):
+        return self.options.step_fn
+
+    @property
+    def every(self) -> int:
+        return self.options.every
+
+    @property
+    def probes(self) -> int:
+        return self.options.probes
+
+    @property
+    def keyframe_every(self) -> int:
+        return self.options.keyframe_every
 
     @property
     def tensors(self) -> list[str]:
@@ -130,6 +153,10 @@ class Recorder:
             if t.name == tensor:
                 return t.index[:t.probes]
         raise RecorderError(f"No tensor named {tensor!r} is recorded; recorder.tensors lists them")
+
+    def tensor_name(self, param: torch.Tensor) -> str | None:
+        """The recorded name of a parameter tensor (by identity), or None when it is not recorded."""
+        return next((t.name for t in self._tensors if t.param is param), None)
 
     def loss(self, value) -> None:
         """Report the loss: for the step about to be taken, or for the step just taken when called
@@ -182,7 +209,7 @@ class Recorder:
         self._step_hooks[handle.id] = hook
         return handle
 
-    def report(self, what: str, exc: BaseException | None = None) -> None:
+    def report_problem(self, what: str, exc: BaseException | None = None) -> None:
         """Report a problem once (RecorderWarning; raised in strict mode); recording continues."""
         self._fail(what, exc, stop=False)
 
@@ -383,7 +410,7 @@ class Recorder:
         """Post-step: start the per-tensor quantities, histograms and probes of `row`; returns the
         statistics tasks that fill them in."""
         jobs = capture.prepare_step(self._blocks or (), row, self.optimizer, self.adapter, self.probes,
-                                    report=self.report)
+                                    report=self.report_problem)
         return [self.pacer.submit(jobs, background=self.background)] if jobs else []
 
     # --- keyframes ------------------------------------------------------------------------------

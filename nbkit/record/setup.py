@@ -14,6 +14,7 @@ import numpy as np
 import torch
 
 from nbkit.errors import RecorderError
+from nbkit.measure.step_stats import EXACT_QUANTITIES, SAMPLED_QUANTITIES
 from nbkit.measure.update_rules import Adapter, step_count
 from nbkit.record.options import SAMPLE_SIZE, RecordOptions
 from nbkit.store.files import is_recording
@@ -21,12 +22,6 @@ from nbkit.store.layout import OPTIMIZER_ONLY_LAYER, estimate_recording_bytes, n
 from nbkit.store.resume import ResumePlan, plan_resume
 
 SAMPLE_SEED = 20251201  # the recorder's private generator's seed: the same coordinates in every recording
-EXACT_QUANTITIES = ["grad_norm", "grad_rms", "grad_max", "weight_norm", "update_norm", "update_ratio", "grad_cosine",
-                    "update_grad_cosine", "dead_rows", "nonfinite", "weight_nonfinite", "update_nonfinite",
-                    "grad_missing"]
-SAMPLED_QUANTITIES = ["gain_median", "accelerated", "damped", "reversed", "momentum_factor_median",
-                      "scale_factor_median", "residual_median", "sign_flip", "eps_share", "zero_grad_share",
-                      "lost_update_share", "state_nonfinite", "histograms"]
 
 
 @dataclass

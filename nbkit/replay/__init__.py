@@ -1,1 +1,1 @@
-"""Keyframe restore, batch fingerprints, replays."""
+"""Replays: a recording re-run from a keyframe on the same batches, with the recorded or other optimizers."""

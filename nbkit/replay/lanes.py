@@ -13,7 +13,7 @@ from nbkit.measure.fingerprint import fingerprint
 from nbkit.record.options import RecordOptions
 from nbkit.record.recorder import Recorder
 from nbkit.replay import restore
-from nbkit.store.layout import OPTIMIZER_ONLY_LAYER, commit_seconds
+from nbkit.store.layout import OPTIMIZER_ONLY_LAYER
 
 
 @dataclass
@@ -117,7 +117,7 @@ def lane_recorder(lane, plan, meta, threads_note) -> Recorder:
               "threads": torch.get_num_threads(), "threads_note": threads_note}
     # strict: a replay whose recording fails stops with the recorder's error instead of leaving a
     # silently truncated recording behind
-    options = RecordOptions(every=meta["every"], probes=meta["probes"], keyframe_every=meta["keyframe_every"],
-                            commit_seconds=commit_seconds(meta), strict=True, overwrite=True)
+    options = RecordOptions.from_meta(meta, strict=True, overwrite=True, resume=False, expected_steps=None,
+                                      curvature_every=0, noise_every=0)
     return Recorder(lane.model, lane.optimizer, plan.targets[lane.name], options,
                     extra_meta={"replay": parent, "criterion": meta.get("criterion")}, first_step=plan.start)

@@ -56,7 +56,6 @@ def _set_threads(recorded) -> str:
 
 
 def _run(plan, run, model, step_fn, batches, names, progress, threads_note, position=None) -> dict:
-
     meta = run.meta
     state = run.keyframe(plan.keyframe)
     fetch = fetcher(batches, plan.keyframe)           # reaching the keyframe: batches are only fetched
@@ -116,10 +115,8 @@ def _run(plan, run, model, step_fn, batches, names, progress, threads_note, posi
 
 class RecordedSteps:
     """The parent's per-step data the loop needs: fingerprints and learning rates by step."""
-
     def __init__(self, run, first, end):
         rows = run.rows_for_steps(first, end - 1)
-        self.first_row = rows.start
         steps = run.steps[rows]
         if len(steps) != end - first or (len(steps) and (steps[0] != first or steps[-1] != end - 1)):
             raise ReplayError(f"The recording lacks rows between steps {first} and {end - 1}; it cannot be replayed "

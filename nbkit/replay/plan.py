@@ -9,8 +9,7 @@ import torch
 
 from nbkit.errors import ReplayError
 from nbkit.replay import restore
-from nbkit.store.files import is_recording, read_json
-from nbkit.store.layout import META_FILE
+from nbkit.store.files import is_recording, read_meta
 
 RECORDED = "recorded"    # the key of the recorded optimizer's replay
 
@@ -91,7 +90,7 @@ def check_target(path: Path, parent: Path) -> None:
         return
     if not is_recording(path):
         raise ReplayError(f"{str(path)!r} exists and is not an nbkit recording; pass another `to` folder")
-    previous = (read_json(path / META_FILE).get("replay") or {}).get("parent")
+    previous = (read_meta(path).get("replay") or {}).get("parent")
     if previous is None or Path(previous).resolve() != Path(parent).resolve():
         raise ReplayError(f"{str(path)!r} holds a recording that is not a replay of {str(parent)!r}; it is kept. "
                           "Pass another `to` folder or another replay name")

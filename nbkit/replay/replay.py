@@ -10,7 +10,7 @@ from nbkit.replay.workers import in_workers
 
 
 def replay(run, model, step_fn, batches, optimizers=None, start=None, steps=None, to=None, before_step=None,
-           workers=1, progress=True, strict=True, *, _record=True) -> dict:
+           workers=1, progress=True, strict=True) -> dict:
     """Replay `run` from the keyframe at or before `start` on the same batches; see DESIGN.md §3.
 
     run: a Recording (or its path). model: the recorded architecture (only copies are trained).
@@ -31,8 +31,7 @@ def replay(run, model, step_fn, batches, optimizers=None, start=None, steps=None
     target folder is replaced; any other recording there is left alone (an error says so).
     """
     run = run if isinstance(run, Recording) else load(run)
-    plan = make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before_step, workers, strict,
-                     _record)
+    plan = make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before_step, workers, strict)
     names = list(plan.factories)
     if workers > 1 and len(names) > 1:
         paths = in_workers(plan, copy_model(model), step_fn, batches, workers, progress)

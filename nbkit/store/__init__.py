@@ -1,1 +1,1 @@
-"""The on-disk format: layout, writer, reader, keyframes. Nothing else in nbkit touches files."""
+"""The on-disk format: layout, writer, reader, keyframes. Only this package reads or writes a recording."""

@@ -1,7 +1,7 @@
 """The recording's Zarr arrays while it is written: created at the first rows, grown by doubling,
 appended to in whole batches of rows, with the min/max overview kept up to date.
 
-Used by the writer thread only (nbkit.store.writer); names, shapes and chunks come from
+Written by the writer thread (nbkit.store.writer); names, shapes and chunks come from
 nbkit.store.layout.
 """
 from __future__ import annotations
@@ -43,7 +43,7 @@ class RowArrays:
             names = [*layout.row_arrays(meta, 1), *layout.overview_arrays(meta)]
             self.arrays = {name: self.group[name] for name in names}
             # a crash while growing can leave arrays of different lengths: the shortest one bounds all
-            self.capacity = min(a.shape[0] for n, a in self.arrays.items() if not n.startswith("overview/"))
+            self.capacity = min(a.shape[0] for n, a in self.arrays.items() if not layout.is_overview(n))
             self._reload_block()
         if local_rows:
             self.arrays.update({name: self.group[name] for name in layout.LOCAL_ARRAYS})
@@ -57,9 +57,7 @@ class RowArrays:
             self.arrays[name] = create(self.group, name, spec, capacity)
         for name, spec in layout.overview_arrays(self.meta).items():
             self.arrays[name] = create(self.group, name, spec, layout.overview_rows(capacity))
-        T, P = len(self.meta["tensors"]), self.meta["probes"]
-        index = self.group.create_array(layout.PROBE_INDEX, shape=(T, P), chunks=(T, P), dtype="int64",
-                                        fill_value=-1, compressors=codecs(), overwrite=True)
+        index = create(self.group, layout.PROBE_INDEX, layout.probe_index_array(self.meta), len(self.meta["tensors"]))
         if probe_index is not None:
             index[...] = probe_index
         self.capacity = capacity
@@ -71,7 +69,7 @@ class RowArrays:
         for name, array in self.arrays.items():
             if name in layout.LOCAL_ARRAYS:
                 continue                      # grown by append_local on their own count
-            rows = layout.overview_rows(capacity) if name.startswith("overview/") else capacity
+            rows = layout.overview_rows(capacity) if layout.is_overview(name) else capacity
             array.resize((rows, *array.shape[1:]))
         self.capacity = capacity
 

@@ -6,7 +6,7 @@ import os
 import tempfile
 from pathlib import Path
 
-from nbkit.store.layout import META_FILE
+from nbkit.store.layout import COMMITTED_FILE, META_FILE
 
 
 
@@ -37,6 +37,16 @@ def _json_default(value):
 def read_json(path: Path) -> dict:
     with open(path) as handle:
         return json.load(handle)
+
+
+def read_meta(path: Path) -> dict:
+    """The metadata of the recording at `path` (nbkit.json), as stored."""
+    return read_json(Path(path) / META_FILE)
+
+
+def read_committed(path: Path) -> dict:
+    """The commit record of the recording at `path` (committed.json): "rows", "closed", ..."""
+    return read_json(Path(path) / COMMITTED_FILE)
 
 
 def is_recording(path: Path) -> bool:

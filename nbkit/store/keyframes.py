@@ -59,9 +59,6 @@ class Keyframe:
         self._seen[identity] = name
         return name
 
-    def nbytes(self) -> int:
-        return sum(t.numel() * t.element_size() for t in self.tensors.values())
-
 
 def _decode(value, tensors):
     if isinstance(value, dict):
@@ -82,7 +79,7 @@ def keyframe_paths(root: Path, step: int) -> tuple[Path, Path]:
     return folder / f"{step:010d}.safetensors", folder / f"{step:010d}.json"
 
 
-def write_keyframe(root: Path, keyframe: Keyframe, extra: dict | None = None) -> int:
+def write_keyframe(root: Path, keyframe: Keyframe) -> None:
     """Write tensors to a temporary name, rename, then the JSON (its presence marks completeness)."""
     tensor_path, json_path = keyframe_paths(root, keyframe.step)
     tensor_path.parent.mkdir(parents=True, exist_ok=True)
@@ -90,8 +87,7 @@ def write_keyframe(root: Path, keyframe: Keyframe, extra: dict | None = None) ->
     save_file(keyframe.tensors, str(tmp), metadata={"step": str(keyframe.step)})
     os.replace(tmp, tensor_path)
     write_json_atomic(json_path, {"step": keyframe.step, "state": keyframe.skeleton,
-                                  "bytes": tensor_path.stat().st_size, **(extra or {})})
-    return tensor_path.stat().st_size
+                                  "bytes": tensor_path.stat().st_size})
 
 
 def list_keyframes(root: Path) -> list[int]:

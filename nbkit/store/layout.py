@@ -52,6 +52,10 @@ def overview_array(quantity: str) -> str:
     return f"overview/{quantity}"
 
 
+def is_overview(name: str) -> bool:
+    return name.startswith("overview/")
+
+
 def histogram_array(quantity: str) -> str:
     return f"hist/{quantity}"
 
@@ -96,6 +100,11 @@ def overview_arrays(meta: dict) -> dict[str, ArraySpec]:
     for q in meta["quantities"]:
         specs[overview_array(q)] = ArraySpec((T, 2), "float32", OVERVIEW_CHUNK, np.nan)
     return specs
+
+
+def probe_index_array(meta: dict) -> ArraySpec:
+    """The (tensors, probes) int64 probe coordinates, -1 padded: one chunk, written with the first rows."""
+    return ArraySpec((meta["probes"],), "int64", len(meta["tensors"]), -1)
 
 
 def local_arrays(tail: tuple) -> dict[str, ArraySpec]:
@@ -157,7 +166,7 @@ def new_meta(*, model_class: str, optimizer: dict, gain_applicable: bool, param_
         "histogram_bins": HISTOGRAM_BINS, "histogram_low": dict(HISTOGRAM_LOW),
         "keyframe_retention": {"budget_bytes": KEYFRAME_BUDGET_BYTES, "kept_recent": KEYFRAMES_KEPT_RECENT,
                                "thinned": []},
-        "closed": False, "parent": None,
+        "closed": False,
     }
     meta.update(options)
     meta.update(extra)

@@ -75,7 +75,7 @@ class RecordingReader:
             self._warned_unclosed = True
             cause = f" (the writer reported {meta['writer_error']})" if meta.get("writer_error") else ""
             warnings.warn(f"Recording {str(self.path)!r} was not closed cleanly{cause}: it holds {self._committed} "
-                          f"committed steps{_last_step_text(committed)}; steps after the last flush were lost. "
+                          f"committed steps{_last_step_text(committed)}; steps after the last commit were lost. "
                           "Everything it holds is readable.", RecordingWarning, stacklevel=3)
         return self
 

@@ -11,11 +11,10 @@ from pathlib import Path
 import numpy as np
 
 from nbkit.measure.fingerprint import FINGERPRINT_WIDTH
-from nbkit.measure.quantities import HISTOGRAM_BINS, HISTOGRAM_LOW, QUANTITIES
-from nbkit.store.layout import KEYFRAME_DIR, STEP_CHUNK, Row, new_meta
+from nbkit.measure.quantities import HISTOGRAM_BINS, HISTOGRAM_LOW, QUANTITIES, SHARE_QUANTITIES
+from nbkit.store.layout import HISTOGRAMS, KEYFRAME_DIR, STEP_CHUNK, Row, new_meta
 from nbkit.store.writer import RecordingWriter
 
-SHARES = {"accelerated", "damped", "reversed", "sign_flip", "eps_share", "zero_grad_share", "lost_update_share"}
 
 
 def write_synthetic(path, *, steps: int = 1000, tensors: int = 64, probes: int = 16, heavy_every: int = 10,
@@ -82,7 +81,7 @@ def _rows(rng, start, n, total, T, P, heavy_every, scale, spike_at):
     }
     values["update_ratio"] = values["update_norm"] / values["weight_norm"]
     values["scale_factor_median"] = values["gain_median"]
-    for name in SHARES:
+    for name in sorted(SHARE_QUANTITIES):
         values[name] = rng.beta(1, 8, size=(n, T))
     for i, name in enumerate(QUANTITIES):
         if name in values:
@@ -99,8 +98,9 @@ def _rows(rng, start, n, total, T, P, heavy_every, scale, spike_at):
 
 def _histograms(rng, T, grad_norm):
     hist = np.zeros((3, T, HISTOGRAM_BINS + 2), dtype=np.uint32)
-    for h, (name, centre) in enumerate((("grad", np.log2(grad_norm / 64)), ("update", np.full(T, -10.0)),
-                                        ("gain", np.full(T, 2.0)))):
+    centres = {"grad": np.log2(grad_norm / 64), "update": np.full(T, -10.0), "gain": np.full(T, 2.0)}
+    for h, name in enumerate(HISTOGRAMS):
+        centre = centres[name]
         bins = np.clip(np.round(centre[:, None] + rng.normal(0, 2, (T, 200))) - HISTOGRAM_LOW[name],
                        0, HISTOGRAM_BINS - 1).astype(np.int64)
         for t in range(T):

@@ -42,9 +42,9 @@ class RecordingWriter:
         self.max_write_seconds = 0.0
         self._probe_index = probe_index
         self._queue: queue.Queue = queue.Queue()
-        # Each counter is written by one thread only (queued: training, written: writer), so their
+        # Each counter is written by one thread only (queued: training, dequeued: writer), so their
         # difference is the backlog without a lock.
-        self._queued_rows = self._written_rows = self._queued_bytes = self._written_bytes = 0
+        self._queued_rows = self._dequeued_rows = self._queued_bytes = self._dequeued_bytes = 0
         self._buffer: list[Row] = []
         self._local: list[tuple[int, np.ndarray]] = []    # (step, (ranks, tensors, 1 + probes)) rows
         self._last_step = resume.last_step if resume is not None else None
@@ -58,8 +58,8 @@ class RecordingWriter:
 
     # --- the training thread's side -------------------------------------------------------------
     def put_row(self, row: Row) -> None:
-        if (self._queued_rows - self._written_rows >= QUEUE_ROWS
-                or self._queued_bytes - self._written_bytes >= QUEUE_BYTES):
+        if (self._queued_rows - self._dequeued_rows >= QUEUE_ROWS
+                or self._queued_bytes - self._dequeued_bytes >= QUEUE_BYTES):
             self.dropped_rows += 1
             return
         size = row.nbytes()
@@ -114,8 +114,8 @@ class RecordingWriter:
     def _handle(self, kind, item) -> bool:
         if kind == "row":
             item, size = item
-            self._written_rows += 1
-            self._written_bytes += size
+            self._dequeued_rows += 1
+            self._dequeued_bytes += size
             if self.error is None:
                 self._buffer.append(item)
         elif kind == "keyframe":

@@ -14,6 +14,7 @@ from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, LogLocator, NullLocator
 from PIL import Image, ImageDraw, ImageFont
 
+
 # Okabe & Ito (2008), "Color Universal Design", eight colours safe for the common colour-vision
 # deficiencies (hex values from memory). Grey for "ordinary" so the three classes stand out.
 OKABE_ITO = {"orange": "#E69F00", "sky blue": "#56B4E9", "bluish green": "#009E73", "yellow": "#F0E442",
@@ -25,8 +26,7 @@ SHARE_MAP = "cividis"         # perceptually uniform, for shares in [0, 1]
 DENSITY_MAP = "magma"         # perceptually uniform, for histogram images
 SIGNED_MAP = "PuOr_r"         # diverging, centred on zero, for signed values (cosines)
 SIGNED_QUANTITIES = {"grad_cosine", "update_grad_cosine"}
-SHARE_QUANTITIES = {"accelerated", "damped", "reversed", "sign_flip", "eps_share", "zero_grad_share",
-                    "lost_update_share"}
+DEFAULT_QUANTITY = "update_ratio"   # the per-tensor quantity a view shows first
 UNITS = {   # plain labels with units for the explorer's quantity axes
     "grad_norm": "gradient L2 norm (loss units per parameter unit)", "grad_rms": "gradient RMS",
     "grad_max": "largest |gradient|", "weight_norm": "weight L2 norm", "update_norm": "update L2 norm ‖Δθ‖",

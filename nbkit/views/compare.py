@@ -18,11 +18,11 @@ import traitlets
 
 from nbkit.analyze.landscape import landscape_slice
 from nbkit.views.base import GuardedView
-from nbkit.views.common import GAIN_CLASS_COLOURS, SIGNED_MAP, Blitter, compose_png, figure_png, label_of, make_canvas
+from nbkit.views.common import (DEFAULT_QUANTITY, GAIN_CLASS_COLOURS, SIGNED_MAP, Blitter, compose_png, figure_png,
+                                label_of, make_canvas)
 from nbkit.views.landscape import RUN_COLOURS, LandscapePanel, run_names
 
-DEFAULT_QUANTITY = "update_ratio"
-SHARES = ("damped", "accelerated", "reversed")
+GAIN_CLASS_SHARES = ("damped", "accelerated", "reversed")
 # positive magnitudes are compared as log10(a / b); the rest as a - b
 RATIO_QUANTITIES = {"grad_norm", "grad_rms", "grad_max", "weight_norm", "update_norm", "update_ratio", "sharpness",
                     "noise_scale"}
@@ -131,10 +131,10 @@ class Comparison(GuardedView, widgets.VBox):
         self.map_image = self.map_axes.imshow(np.zeros((1, 1)), aspect="auto", cmap=SIGNED_MAP, interpolation="nearest")
         self.map_colorbar = self.detail_figure.colorbar(self.map_image, ax=self.map_axes, shrink=0.9)
         self.map_cursor = self.detail_blitter.add(self.map_axes.axvline(0, color="black", linewidth=0.9))
-        width = 0.8 / len(SHARES)
+        width = 0.8 / len(GAIN_CLASS_SHARES)
         positions = np.arange(n)
         self.bars = {}
-        for k, share in enumerate(SHARES):
+        for k, share in enumerate(GAIN_CLASS_SHARES):
             container = self.share_axes.bar(positions + (k - 1) * width, np.zeros(n), width,
                                             color=GAIN_CLASS_COLOURS[share], label=share)
             self.bars[share] = [self.detail_blitter.add(bar) for bar in container]
@@ -198,7 +198,7 @@ class Comparison(GuardedView, widgets.VBox):
             steps = self.run_steps[name]
             row = int(np.searchsorted(steps, step))
             inside = row < len(steps) and steps[row] == step
-            out[name] = {s: float(self._series(name, s, self.tensor)[row]) if inside else np.nan for s in SHARES}
+            out[name] = {s: float(self._series(name, s, self.tensor)[row]) if inside else np.nan for s in GAIN_CLASS_SHARES}
         return out
 
     # --- drawing --------------------------------------------------------------------------------
@@ -243,7 +243,7 @@ class Comparison(GuardedView, widgets.VBox):
         self.map_axes.set_xlabel("step")
         self.map_axes.set_title(f"{what} of {self.quantity}: {a} vs {b}", fontsize=9, loc="left")
         self.map_colorbar.set_label(f"{what} ({a} vs {b})", fontsize=8)
-        top = max([np.nanmax(self._series(n, s, self.tensor), initial=0.0) for n in self.names for s in SHARES])
+        top = max([np.nanmax(self._series(n, s, self.tensor), initial=0.0) for n in self.names for s in GAIN_CLASS_SHARES])
         self.share_axes.set_ylim(0, max(1e-3, min(1.0, 1.15 * top)))
         self._moving = False
         self._place(self.step)
@@ -271,7 +271,7 @@ class Comparison(GuardedView, widgets.VBox):
             value = self._series(name, self.quantity, self.tensor)[row] if inside else np.nan
             dot.set_data([step], [value])
         shares = self.shares_at(step)
-        for share in SHARES:
+        for share in GAIN_CLASS_SHARES:
             for bar, name in zip(self.bars[share], self.names):
                 value = shares[name][share]
                 bar.set_height(0.0 if not np.isfinite(value) else value)

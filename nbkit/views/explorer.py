@@ -19,7 +19,7 @@ import traitlets
 
 from nbkit.recording import Recording, load
 from nbkit.views.base import GuardedView
-from nbkit.views.common import compose_png, figure_png
+from nbkit.views.common import DEFAULT_QUANTITY, compose_png, figure_png
 from nbkit.views.coordinates import CoordinateView
 from nbkit.views.data import ExplorerData
 from nbkit.views.findings_panel import FindingsPanel
@@ -27,7 +27,6 @@ from nbkit.views.layer_map import LayerMap
 from nbkit.views.live import LiveFollower, prepare_busy_frontends
 from nbkit.views.timeline import Timeline
 
-DEFAULT_QUANTITY = "update_ratio"
 
 
 def _open(source):

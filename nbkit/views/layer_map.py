@@ -5,8 +5,9 @@ import numpy as np
 from matplotlib.colors import LogNorm, Normalize, TwoSlopeNorm
 from matplotlib.ticker import LogLocator
 
-from nbkit.views.common import (MAGNITUDE_MAP, OKABE_ITO, SHARE_MAP, SHARE_QUANTITIES, SIGNED_MAP,
-                                SIGNED_QUANTITIES, Blitter, label_of, make_canvas, plain_log_ticks)
+from nbkit.measure.quantities import SHARE_QUANTITIES
+from nbkit.views.common import (MAGNITUDE_MAP, OKABE_ITO, SHARE_MAP, SIGNED_MAP, SIGNED_QUANTITIES, Blitter, label_of,
+                                make_canvas, plain_log_ticks)
 
 WIDTH = 620
 DECADES_FOR_LOG = 2.0     # a quantity spanning more than 100x is coloured on a log scale

@@ -4,8 +4,7 @@ from __future__ import annotations
 import threading
 import time
 
-from nbkit.store.files import read_json
-from nbkit.store.layout import COMMITTED_FILE
+from nbkit.store.files import read_committed
 from nbkit.views.base import safe_call
 
 LIVE_MIN_INTERVAL = 0.5      # seconds between live refreshes: at most twice a second ...
@@ -87,7 +86,7 @@ class LiveFollower:
             if self.stopped:
                 return                               # stopped while this slept
             try:
-                committed = read_json(self.path / COMMITTED_FILE)
+                committed = read_committed(self.path)
                 if int(committed.get("rows", 0)) != self.shown_rows():
                     safe_call(self.refresh, on_error=self.show_error)
                 if committed.get("closed") and int(committed.get("rows", 0)) == self.shown_rows():

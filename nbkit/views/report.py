@@ -87,7 +87,7 @@ def _run_table(run) -> str:
     hyper = "; ".join(", ".join(f"{k}={_hyper(v)}" for k, v in g.items() if k in ("lr", "betas", "eps", "momentum",
                                                                              "weight_decay", "alpha"))
                       for g in groups)
-    parent = meta.get("parent") or {}
+    replay = meta.get("replay") or {}
     lr = run.lr
     lr_range = ""
     if lr.size and np.isfinite(lr).any():
@@ -99,8 +99,8 @@ def _run_table(run) -> str:
             ("tensors", str(len(run.tensors))), ("keyframes", ", ".join(map(str, run.keyframes))),
             ("closed cleanly", "yes" if run.closed_cleanly else "no"),
             ("torch / threads", f"{meta.get('torch_version')} / {meta.get('threads')}")]
-    if parent:
-        rows.append(("replay of", f"{parent.get('path')} from step {parent.get('start')}"))
+    if replay:
+        rows.append(("replay of", f"{replay.get('parent')} from step {replay.get('start')}"))
     return "<table>" + "".join(f"<tr><th>{html.escape(k)}</th><td>{html.escape(v)}</td></tr>" for k, v in rows) + "</table>"
 
 

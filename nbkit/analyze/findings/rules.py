@@ -48,7 +48,7 @@ SEVERITY_RANK = {"error": 0, "warning": 1, "info": 2}
 
 def find(run, **thresholds) -> list[Finding]:
     """All findings of a recording, sorted by first step. Keyword arguments override Thresholds
-    (unknown names raise AnalysisError; the names deprecated by issue 10 warn and still apply)."""
+    (unknown names raise AnalysisError; the deprecated names of DEPRECATED_THRESHOLDS warn and still apply)."""
     t = thresholds_from_keywords(**thresholds)
     data = FindingInputs(run)
     found: list[Finding] = []

@@ -1,7 +1,7 @@
 """The finding thresholds: their defaults with the reason for each, and the keywords that override them.
 
 README.md, "Findings", explains each threshold. `thresholds_from_keywords` is the one place that
-checks override names, including the names deprecated by issue 10 (one release of grace).
+checks override names, including the deprecated names (one release of grace).
 """
 from __future__ import annotations
 
@@ -54,7 +54,7 @@ class Thresholds:
 
 
 # Old threshold name -> its new name. The finding kind update-ratio became oversized-updates and
-# stalled-updates (issue 10); the old names keep working, with a DeprecationWarning, for one release.
+# stalled-updates after nbkit 0.1.0; the old names keep working, with a DeprecationWarning, for one release.
 DEPRECATED_THRESHOLDS = {
     "update_ratio_high": "oversized_ratio",
     "update_ratio_extreme": "oversized_single_step",

@@ -1,7 +1,7 @@
 """Finding rules over update series: oversized and stalled updates, ε-dominated denominators, lost updates.
 
 oversized-updates and stalled-updates are the two sides of the update-to-weight ratio ‖Δθ‖/‖θ‖
-(common practice aims near 1e-3); they were one kind, update-ratio, until nbkit 0.1.
+(common practice aims near 1e-3); they were one kind, update-ratio, up to nbkit 0.1.0.
 """
 from __future__ import annotations
 
