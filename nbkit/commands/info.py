@@ -1,6 +1,8 @@
 """`nbkit info RUN`: what a recording holds, in a few lines."""
 from __future__ import annotations
 
+import numpy as np
+
 from nbkit.errors import RecordingError
 from nbkit.recording import load
 
@@ -31,6 +33,10 @@ def run(args) -> int:
               + f"; keyframes {size['keyframes'] / 1e6:.1f} MB)")
         print("  " + ("closed cleanly" if recording.closed_cleanly else
                       "not closed cleanly: still being written, or the process stopped before close()"))
+        without_loss = int(np.isnan(recording.loss).sum())
+        if without_loss:
+            print(f"  {without_loss} of {len(steps)} steps without a loss (NaN: no criterion, returned loss, "
+                  "closure or rec.loss() gave one)")
         if replay:
             print(f"  replay of {replay.get('parent')} from step {replay.get('start')}")
     return status

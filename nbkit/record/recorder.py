@@ -26,11 +26,11 @@ from torch.utils.hooks import RemovableHandle
 from nbkit.analyze.model_copy import register_hook_owner
 from nbkit.errors import RecorderError, RecorderWarning
 from nbkit.measure.update_rules import adapter_for
-from nbkit.record import capture, lifetime, setup
+from nbkit.record import capture, lifetime, setup, wrappers
 from nbkit.record.estimates import estimates_for
 from nbkit.record.options import RecordOptions
 from nbkit.record.pacing import Pacer
-from nbkit.record.step_inputs import StepInputs
+from nbkit.record.step_inputs import NO_LOSS, StepInputs
 from nbkit.store import keyframes as kf
 from nbkit.store.layout import OPTIMIZER_ONLY_LAYER, Row
 from nbkit.store.writer import RecordingWriter
@@ -54,6 +54,8 @@ class Recorder:
                 raise RecorderError("Pass the recording options either as RecordOptions or as keywords, not both")
             options = RecordOptions.from_keywords(**keywords)
         options = options or RecordOptions()
+        parts = wrappers.unwrap_model(model)        # DDP's module, compile's _orig_mod: the plain model's names
+        model, optimizer = parts.plain, wrappers.unwrap_optimizer(optimizer)
         setup.check_attachable(model, optimizer, path)
         existing = _recorder_of.get(optimizer)
         if existing is not None and not existing._closed:
@@ -72,6 +74,7 @@ class Recorder:
         self._open_tasks: list = []         # ... and the statistics tasks that fill it in
         self._waiting: collections.deque = collections.deque()   # (row, statistics tasks) still computing
         self._forward_since_step = False
+        self._traced = False                # a forward pre-hook ran inside torch.compile's tracing
         self._last_keyframe = None
         self._step_hooks: collections.OrderedDict = collections.OrderedDict()   # weakref-able, as torch's
         estimates = estimates_for(options)             # raises when they cannot work
@@ -80,7 +83,8 @@ class Recorder:
         self.pacer = Pacer()                # when the statistics run (tests set its thresholds)
         self._tensors, orphans, frozen = setup.tensor_table(
             model, optimizer, self.probes, torch.Generator().manual_seed(setup.SAMPLE_SEED))
-        meta = setup.recording_meta(model, optimizer, self.adapter, self._tensors, orphans, frozen, options)
+        meta = setup.recording_meta(model, optimizer, self.adapter, self._tensors, orphans, frozen, options,
+                                    compiled=parts.compiled)
         meta.update(extra_meta or {})
         setup.check_disk(meta, self.recording_path, options.expected_steps, self.adapter)  # before a replace
         resume_plan = setup.prepare_path(self.recording_path, optimizer, options.overwrite, options.resume)
@@ -106,8 +110,8 @@ class Recorder:
         self._handles = [
             optimizer.register_step_pre_hook(self._pre_step),
             optimizer.register_step_post_hook(self._post_step),
-            model.register_forward_pre_hook(self._before_forward, with_kwargs=True),
-            model.register_forward_hook(self._after_forward),
+            parts.forward_module.register_forward_pre_hook(self._before_forward, with_kwargs=True),
+            parts.forward_module.register_forward_hook(self._after_forward),
         ]
         if self.criterion is not None:
             self._handles.append(self.criterion.register_forward_hook(self._after_criterion))
@@ -170,6 +174,7 @@ class Recorder:
             return
         if self._open_row is not None and not self._forward_since_step:
             self._open_row.loss = value
+            self._inputs.without_loss = False
         else:
             self._inputs.reported_loss = value
 
@@ -289,6 +294,13 @@ class Recorder:
             except Exception:
                 pass
 
+    def _warn_once(self, message: str, key: str | None = None):
+        """A RecorderWarning about how the recorder is used, once per `key` (default: the message); never
+        raised, also with strict=True."""
+        if (key or message) not in self._warned:
+            self._warned.add(key or message)
+            warnings.warn(f"nbkit recorder ({self.recording_path}): {message}", RecorderWarning, stacklevel=4)
+
     def _check_writer(self):
         if self._writer.error is not None and not self._failed:
             self._fail("writing the recording failed", self._writer.error)
@@ -299,11 +311,14 @@ class Recorder:
 
     # --- hooks ----------------------------------------------------------------------------------
     def _before_forward(self, module, args, kwargs):
+        if torch.compiler.is_compiling():   # traced into a graph (the model was compiled after record()):
+            self._traced = True             # add nothing to it; the next optimizer step warns
+            return None
         if not self.active:
             return None
         try:
             self._finalize_rows()
-            if module.training and torch.is_grad_enabled():
+            if self.model.training and torch.is_grad_enabled():
                 self._inputs.forward(args, kwargs)
                 self._forward_since_step = True
         except Exception as exc:
@@ -311,7 +326,15 @@ class Recorder:
         return None
 
     def _after_forward(self, module, args, output):
+        if torch.compiler.is_compiling():
+            return None
         self.pacer.forward_ended()
+        if self.active and self.model.training and torch.is_grad_enabled():
+            try:
+                self._inputs.model_output(output)      # a loss the model returns (output.loss, ["loss"])
+            except Exception as exc:
+                self._fail("a forward hook failed", exc)
+        return None
 
     def _after_criterion(self, module, inputs, output):
         self.observe_criterion(inputs, output)
@@ -321,6 +344,8 @@ class Recorder:
         if self._depth > 1 or not self.active:
             return None                     # a subclass calling super().step(): record once
         try:
+            if self._traced:
+                self._warn_once(wrappers.COMPILED_AFTER_RECORD)
             self._check_writer()
             self.pacer.step_started()
             self._finalize_rows()
@@ -330,25 +355,14 @@ class Recorder:
                 capture.wait_all(self._blocks)   # the statistics thread reads the optimizer state
             # args holds the optimizer itself first, then step()'s own arguments
             closure = kwargs.get("closure", args[1] if len(args) > 1 else None)
-            if closure is not None:
-                return self._wrap_closure(closure, args, kwargs)
+            if closure is not None:                  # its loss is the step's loss when nothing else gives one
+                recorded_closure = self._inputs.wrap_closure(closure)
+                if "closure" in kwargs:
+                    return args, {**kwargs, "closure": recorded_closure}
+                return (args[0], recorded_closure, *args[2:]), kwargs
         except Exception as exc:
             self._fail("the step pre-hook failed", exc)
         return None
-
-    def _wrap_closure(self, closure, args, kwargs):
-        inputs = self._inputs
-        inputs.closure_loss = None
-
-        def recorded_closure():
-            loss = closure()
-            if inputs.closure_loss is None and loss is not None:
-                inputs.closure_loss = loss.detach() if isinstance(loss, torch.Tensor) else loss
-            return loss
-
-        if "closure" in kwargs:
-            return args, {**kwargs, "closure": recorded_closure}
-        return (args[0], recorded_closure, *args[2:]), kwargs
 
     def _post_step(self, optimizer, args, kwargs):
         self._depth -= 1
@@ -385,6 +399,8 @@ class Recorder:
         rec.loss() after the step) is finished first. A row whose statistics still run on the
         statistics thread waits for a later hook unless `force` (flush, close)."""
         if self._open_row is not None:
+            if self._inputs.without_loss:   # nothing gave this step a loss, also not a rec.loss() after it
+                self._warn_once(NO_LOSS.format(step=self._open_row.step), key=NO_LOSS)
             self._waiting.append((self._open_row, self._open_tasks))
             self._open_row, self._open_tasks = None, []
         while self._waiting:

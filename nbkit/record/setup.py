@@ -105,8 +105,10 @@ def probe_index(tensors: list[RecordedTensor], probes: int) -> np.ndarray:
 
 
 def recording_meta(model, optimizer, adapter: Adapter, tensors: list[RecordedTensor], orphans: list[str],
-                   frozen: list[str], options: RecordOptions) -> dict:
-    """The metadata of a new recording of `model` and `optimizer` (schema: nbkit.store.layout.new_meta)."""
+                   frozen: list[str], options: RecordOptions, compiled: bool = False) -> dict:
+    """The metadata of a new recording of `model` and `optimizer` (schema: nbkit.store.layout.new_meta);
+    compiled: the recorded forward passes ran through torch.compile (a replay on the plain model runs
+    eager kernels, whose numerics differ)."""
     groups = []
     for group in optimizer.param_groups:
         settings = {k: jsonable(v) for k, v in group.items() if k != "params"}
@@ -123,7 +125,7 @@ def recording_meta(model, optimizer, adapter: Adapter, tensors: list[RecordedTen
         tensors=[{"name": t.name, "shape": list(t.param.shape), "dtype": str(t.param.dtype).replace("torch.", ""),
                   "numel": t.param.numel(), "group": t.group, "layer": layer_of(t.name), "probes": t.probes,
                   "sample_size": len(t.index)} for t in tensors],
-        probes=options.probes, options=options.as_meta(), orphans=orphans, frozen=frozen,
+        probes=options.probes, options=options.as_meta(), orphans=orphans, frozen=frozen, compiled=compiled,
         created=datetime.datetime.now(datetime.timezone.utc).isoformat(),
         torch_version=torch.__version__, numpy_version=np.__version__, python_version=sys.version.split()[0],
         threads=torch.get_num_threads(), interop_threads=torch.get_num_interop_threads(), pid=os.getpid(),
