@@ -101,7 +101,8 @@ def _record_warnings(model, optimizer, path, inputs, targets, steps):
         losses = train(model, optimizer, inputs, targets, steps)
         rec.close()
     assert len(losses) == steps and np.isfinite(losses).all()            # training finished
-    messages = [str(w.message) for w in caught if issubclass(w.category, nbkit.RecorderWarning)]
+    messages = [str(w.message) for w in caught if issubclass(w.category, nbkit.RecorderWarning)
+                and "has no loss" not in str(w.message)]            # these loops give the recorder no loss
     assert len(messages) == len(set(messages))                          # each problem reported once
     return messages
 
@@ -133,7 +134,8 @@ def test_a_recorder_bug_midway_stops_recording_and_keeps_earlier_rows(tmp_path, 
         losses = train(model, optimizer, inputs, targets, 12)
         rec.close()
     assert len(losses) == 12 and np.isfinite(losses).all()
-    messages = [str(w.message) for w in caught if issubclass(w.category, nbkit.RecorderWarning)]
+    messages = [str(w.message) for w in caught if issubclass(w.category, nbkit.RecorderWarning)
+                and "has no loss" not in str(w.message)]            # these loops give the recorder no loss
     assert len(messages) == 1 and "recording stopped" in messages[0] and "injected bug" in messages[0], messages
     run = nbkit.load(tmp_path / "r")
     assert run.steps.tolist() == list(range(6)) and np.isfinite(run.series("grad_norm")).all()
@@ -173,7 +175,8 @@ def test_a_writer_slower_than_training_drops_rows_with_one_warning(tmp_path, tin
         train(model, optimizer, inputs, targets, 30)
         gate.set()
         rec.close()
-    messages = [str(w.message) for w in caught if issubclass(w.category, nbkit.RecorderWarning)]
+    messages = [str(w.message) for w in caught if issubclass(w.category, nbkit.RecorderWarning)
+                and "has no loss" not in str(w.message)]            # these loops give the recorder no loss
     assert len(messages) == 1 and "fell behind" in messages[0] and "rows were dropped" in messages[0]
     run = nbkit.load(tmp_path / "r")
     assert 5 <= len(run) < 30 and run.steps.tolist() == sorted(run.steps.tolist())

@@ -9,16 +9,18 @@ from nbkit.record.recorder import Recorder
 def record(model, optimizer, path, **options) -> Recorder:
     """Attach a recorder to `model` and `optimizer`; every optimizer.step() becomes a recorded row.
 
-    Under torch.distributed only rank 0 records; other ranks get an InactiveRecorder. A DDP wrapper is
-    unwrapped, so tensor names have no "module." prefix. The options (nbkit.RecordOptions):
+    Under torch.distributed only rank 0 records; other ranks get an InactiveRecorder. Wrappers are
+    unwrapped (nbkit.record.wrappers): a DDP model and a torch.compile'd one give the plain model's tensor
+    names (no "module." or "_orig_mod." prefix), and an optimizer wrapper holding the real optimizer in
+    `.optimizer` (accelerate, Lightning) is followed to it. The options (nbkit.RecordOptions):
     """
     settings = RecordOptions.from_keywords(**options)
     # Under torch.distributed one rank records (gradients are already averaged); the others pay
-    # only this rank check. A DDP wrapper is unwrapped so tensor names have no "module." prefix.
+    # only this rank check. The Recorder unwraps DDP, torch.compile and optimizer wrappers.
     rank, _ = distributed.rank_and_world()
     if rank != 0:
         return distributed.InactiveRecorder(path, settings.probes, rank)
-    return Recorder(distributed.unwrap(model), optimizer, path, settings, extra_meta=distributed.distributed_meta())
+    return Recorder(model, optimizer, path, settings, extra_meta=distributed.distributed_meta())
 
 
 record.__doc__ = record.__doc__.rstrip(" ") + RecordOptions.describe() + "\n"

@@ -14,7 +14,6 @@ from __future__ import annotations
 import collections
 import contextlib
 import functools
-import random
 import warnings
 import weakref
 from pathlib import Path
@@ -32,7 +31,7 @@ from nbkit.record.options import RecordOptions
 from nbkit.record.pacing import Pacer
 from nbkit.record.step_inputs import NO_LOSS, StepInputs
 from nbkit.store import keyframes as kf
-from nbkit.store.layout import OPTIMIZER_ONLY_LAYER, Row
+from nbkit.store.layout import Row
 from nbkit.store.writer import RecordingWriter
 
 _recorder_of: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()   # optimizer -> its open Recorder
@@ -356,10 +355,7 @@ class Recorder:
             # args holds the optimizer itself first, then step()'s own arguments
             closure = kwargs.get("closure", args[1] if len(args) > 1 else None)
             if closure is not None:                  # its loss is the step's loss when nothing else gives one
-                recorded_closure = self._inputs.wrap_closure(closure)
-                if "closure" in kwargs:
-                    return args, {**kwargs, "closure": recorded_closure}
-                return (args[0], recorded_closure, *args[2:]), kwargs
+                return self._inputs.wrap_closure(closure, args, kwargs)
         except Exception as exc:
             self._fail("the step pre-hook failed", exc)
         return None
@@ -434,16 +430,8 @@ class Recorder:
         if self._last_keyframe == step:
             return
         self._last_keyframe = step
-        extra = {t.name: t.param for t in self._tensors if setup.layer_of(t.name) == OPTIMIZER_ONLY_LAYER}
-        state = {
-            "step": step,
-            "model": self.model.state_dict(),
-            "optimizer": self.optimizer.state_dict(),
-            "extra_params": extra,
-            "rng": {"torch": torch.get_rng_state(), "numpy": np.random.get_state(), "python": random.getstate()},
-        }
         try:
-            keyframe = kf.Keyframe(step, state)
+            keyframe = kf.Keyframe(step, setup.keyframe_state(step, self.model, self.optimizer, self._tensors))
         except TypeError as exc:        # state a keyframe cannot hold without pickle: rows go on
             self._fail("an optimizer or model state could not be stored in a keyframe", exc, stop=False)
             return

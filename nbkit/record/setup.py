@@ -5,6 +5,7 @@ from __future__ import annotations
 import datetime
 import math
 import os
+import random
 import shutil
 import sys
 from dataclasses import dataclass
@@ -133,6 +134,18 @@ def recording_meta(model, optimizer, adapter: Adapter, tensors: list[RecordedTen
                     "exact": EXACT_QUANTITIES, "sampled": SAMPLED_QUANTITIES,
                     "note": f"sampled quantities use a fixed seeded sample of {SAMPLE_SIZE} coordinates per "
                             "tensor (all coordinates of smaller tensors)"})
+
+
+def keyframe_state(step: int, model, optimizer, tensors: list[RecordedTensor]) -> dict:
+    """What a keyframe at `step` holds: the model's and optimizer's state_dicts, the optimizer-only
+    tensors by name, and the global random states (torch, numpy, python)."""
+    return {
+        "step": step,
+        "model": model.state_dict(),
+        "optimizer": optimizer.state_dict(),
+        "extra_params": {t.name: t.param for t in tensors if layer_of(t.name) == OPTIMIZER_ONLY_LAYER},
+        "rng": {"torch": torch.get_rng_state(), "numpy": np.random.get_state(), "python": random.getstate()},
+    }
 
 
 def check_disk(meta: dict, path: Path, expected_steps: int | None, adapter: Adapter) -> None:

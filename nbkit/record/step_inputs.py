@@ -67,8 +67,9 @@ class StepInputs:
         if loss is not None:
             self._returned_losses.append(loss.detach())
 
-    def wrap_closure(self, closure):
-        """The closure given to optimizer.step(), wrapped so that its first loss is kept."""
+    def wrap_closure(self, closure, args: tuple, kwargs: dict) -> tuple[tuple, dict]:
+        """optimizer.step()'s (args, kwargs) as a step pre-hook sees them (the optimizer first), with
+        `closure` wrapped so that its first loss is kept."""
         self.closure_loss = None
 
         def recorded_closure():
@@ -77,7 +78,9 @@ class StepInputs:
                 self.closure_loss = loss.detach() if isinstance(loss, torch.Tensor) else loss
             return loss
 
-        return recorded_closure
+        if "closure" in kwargs:
+            return args, {**kwargs, "closure": recorded_closure}
+        return (args[0], recorded_closure, *args[2:]), kwargs
 
     def take(self) -> tuple[float, np.ndarray]:
         """(the step's loss, (2, width) fingerprints of inputs and targets); starts the next step."""
