@@ -19,10 +19,10 @@ NO_LOSS = ("step {step} has no loss: no criterion= was given, the model's output
 def returned_loss(output) -> torch.Tensor | None:
     """The loss a model returns with its output: a tensor in output.loss (transformers' ModelOutput) or
     output["loss"] (a dict); None when there is none."""
+    if isinstance(output, (torch.Tensor, tuple, list)):     # the common outputs first: this runs every forward
+        return None
     if isinstance(output, Mapping):
         loss = output.get("loss")
-    elif isinstance(output, (torch.Tensor, tuple, list)):
-        return None
     else:
         loss = getattr(output, "loss", None)
     return loss if isinstance(loss, torch.Tensor) else None
