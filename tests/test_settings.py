@@ -13,6 +13,7 @@ import torch
 import nbkit
 import replay_setup as rs
 from nbkit.replay import restore
+from nbkit.store.synthetic import write_synthetic
 
 STEPS = 40
 
@@ -149,3 +150,39 @@ def test_keys_that_are_equal_in_every_group_or_scheduled_are_not_carried(tmp_pat
     carried = restore.carried_settings(run.meta, set(run.settings))
     # momentum differs nowhere and is scheduled; dampening differs and stays: carried; lr never
     assert carried == [{"dampening": 0.0}, {"dampening": 0.1}]
+
+
+def test_a_recording_without_stored_settings_gives_its_learning_rate_alone(tmp_path):
+    run = nbkit.load(write_synthetic(tmp_path / "old", steps=300, tensors=2, probes=2))
+    assert "settings" not in run.meta or not run.meta["settings"]
+    assert list(run.settings) == ["lr"]                     # its warm-up: the lr array, as run.lr gives it
+    np.testing.assert_array_equal(run.settings["lr"], run.lr)
+    assert run.setting_values().shape == (300, 1, 0)
+
+
+def test_a_decay_schedule_from_zero_still_finds_coupled_decay(tmp_path):
+    model = rs.make_model()
+    optimizer = torch.optim.Adam(model.parameters(), lr=1e-2, weight_decay=0.0)
+    with nbkit.record(model, optimizer, tmp_path / "run", criterion=rs.CRITERION, keyframe_every=5):
+        for step in range(10):
+            optimizer.param_groups[0]["weight_decay"] = 0.0 if step < 4 else 1e-2      # decay switched on
+            optimizer.zero_grad()
+            rs.step_fn(model, rs.Batches()(step)).backward()
+            optimizer.step()
+    found = [f for f in nbkit.load(tmp_path / "run").findings() if f.kind == "coupled-decay"]
+    assert len(found) == 1 and found[0].first_step == 4 and found[0].evidence["weight_decay"] == 1e-2
+
+
+def test_a_resumed_recording_keeps_storing_its_settings(tmp_path):
+    model = rs.make_model()
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.05, momentum=0.9)
+    for part in range(2):
+        with nbkit.record(model, optimizer, tmp_path / "run", criterion=rs.CRITERION, resume=part == 1):
+            for step in range(5):
+                optimizer.param_groups[0]["momentum"] = 0.5 + 0.05 * (5 * part + step)
+                optimizer.zero_grad()
+                rs.step_fn(model, rs.Batches()(5 * part + step)).backward()
+                optimizer.step()
+    run = nbkit.load(tmp_path / "run")
+    assert run.steps.tolist() == list(range(10))
+    np.testing.assert_allclose(run.settings["momentum"][:, 0], 0.5 + 0.05 * np.arange(10))
