@@ -180,7 +180,8 @@ class Row:
         self.quantities[QUANTITIES.index(name), :] = values
 
     def nbytes(self) -> int:
-        return 256 + self.quantities.nbytes + self.histograms.nbytes + sum(v.nbytes for v in self.probes.values())
+        settings = self.settings.nbytes if self.settings is not None else 0
+        return 256 + settings + self.quantities.nbytes + self.histograms.nbytes + sum(v.nbytes for v in self.probes.values())
 
 
 def new_meta(*, model_class: str, optimizer: dict, gain_applicable: bool, param_groups: list[dict],
