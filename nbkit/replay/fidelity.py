@@ -13,6 +13,8 @@ import torch
 
 from nbkit.store.layout import setting_columns
 
+FIELD_ORDER = ("grad", "update")     # at one step a gradient differs before the update and the state it makes
+
 
 def _largest(a: np.ndarray, b: np.ndarray) -> float:
     """Largest |a - b|; NaN equals NaN; a NaN against a number counts as infinite."""
@@ -77,7 +79,8 @@ def compare_recordings(parent, child) -> dict:
             if tensor not in parent.tensors:
                 continue
             a, b = parent.probes(tensor), child.probes(tensor)
-            for field in sorted(set(a) & set(b) - {"index"}):
+            fields = set(a) & set(b) - {"index"}
+            for field in sorted(fields, key=lambda f: (FIELD_ORDER.index(f) if f in FIELD_ORDER else len(FIELD_ORDER), f)):
                 out["probes"] = max(out["probes"], _largest(a[field][parent_rows], b[field][child_rows]))
                 note(first_differing_row(a[field][parent_rows], b[field][child_rows]), 1,
                      f"tensor {tensor!r} (probe {field})")
