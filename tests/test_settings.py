@@ -13,6 +13,7 @@ import torch
 import nbkit
 import replay_setup as rs
 from nbkit.replay import restore
+from nbkit.store.layout import SettingColumn
 from nbkit.store.synthetic import write_synthetic
 
 STEPS = 40
@@ -106,8 +107,8 @@ def test_a_zero_dim_tensor_setting_is_stored_and_other_values_are_noted(tmp_path
 def test_apply_settings_writes_tuples_tensors_and_ints_back_in_their_own_types():
     beta = torch.tensor(0.9)
     groups = [{"betas": (beta, 0.999), "momentum": 0.5, "max_iter": 20, "lr": 0.1}]
-    columns = [restore.SettingColumn("betas.0", "betas", 0), restore.SettingColumn("momentum", "momentum"),
-               restore.SettingColumn("max_iter", "max_iter"), restore.SettingColumn("missing", "missing")]
+    columns = [SettingColumn("betas.0", "betas", 0), SettingColumn("momentum", "momentum"),
+               SettingColumn("max_iter", "max_iter"), SettingColumn("missing", "missing")]
     restore.apply_settings(groups, columns, np.array([[0.85, 0.25, 20.0, 1.0]]))
     assert groups[0]["betas"][0] is beta and float(beta) == pytest.approx(0.85) and groups[0]["betas"][1] == 0.999
     assert groups[0]["momentum"] == 0.25 and type(groups[0]["max_iter"]) is int and "missing" not in groups[0]
