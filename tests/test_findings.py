@@ -276,7 +276,8 @@ def test_eps_dominated_traces_inputs_in_the_wrong_unit(tmp_path, unit):
     assert found[0].evidence["input_scale"] == pytest.approx(unit, rel=1.0)   # within a factor of 2
 
 
-def quadratic_run(tmp_path, name, optimizer_factory, steps, *, curvature_every=0, scale=(4.0, 1.0, 0.25)):
+def quadratic_run(tmp_path, name, optimizer_factory, steps, *, curvature_every=0, scale=(4.0, 1.0, 0.25),
+                  scheduler=None):
     """Linear least squares with a known Hessian diag(scale) (the data are its square roots)."""
     dims = len(scale)
     x = torch.diag(torch.tensor(scale, dtype=torch.float32).sqrt()) * math.sqrt(dims)       # mean of x xᵀ = diag(scale)
@@ -292,7 +293,7 @@ def quadratic_run(tmp_path, name, optimizer_factory, steps, *, curvature_every=0
 
     optimizer = optimizer_factory(model.parameters())
     return train(model, optimizer, x, y, steps, tmp_path / name, batch=None, criterion=HalfSquare(),
-                 curvature_every=curvature_every), model
+                 curvature_every=curvature_every, scheduler=scheduler and scheduler(optimizer)), model
 
 
 def test_oscillation_on_a_quadratic_just_past_the_limit(tmp_path):
@@ -366,6 +367,30 @@ def test_over_stability_limit_fires_where_gradient_descent_diverges(tmp_path, lr
     assert bool(found) == diverges
     if diverges:
         assert found[0].first_step == 0 and found[0].evidence["limit"] == pytest.approx(2 / lr)
+
+
+class MomentumDrop:
+    """A scheduler that sets the momentum to 0 before step `at`."""
+
+    def __init__(self, optimizer, at):
+        self.optimizer, self.at, self.steps = optimizer, at, 0
+
+    def step(self):
+        self.steps += 1
+        if self.steps == self.at:
+            self.optimizer.param_groups[0]["momentum"] = 0.0
+
+
+def test_over_stability_limit_reads_the_momentum_of_each_step(tmp_path):
+    # λ = 4, lr = 0.9: with β = 0.9 the heavy-ball limit 2(1+β)/lr = 4.22 holds (Polyak 1964); once a
+    # schedule drops β to 0 the gradient-descent limit 2/lr = 2.22 is passed (Cohen et al. 2021)
+    run, model = quadratic_run(tmp_path, "drop", lambda p: torch.optim.SGD(p, lr=0.9, momentum=0.9), 30,
+                               curvature_every=5, scheduler=lambda o: MomentumDrop(o, 10))
+    assert run.meta["param_groups"][0]["momentum"] == 0.9                  # the start value alone says stable
+    np.testing.assert_array_equal(run.settings["momentum"][:, 0], [0.9] * 10 + [0.0] * 20)
+    assert abs(model.weight[0, 0].item()) > 1.0                            # observed: it diverged
+    found = [f for f in run.findings() if f.kind == "over-stability-limit"]
+    assert found and found[0].first_step == 10 and found[0].evidence["limit"] == pytest.approx(2 / 0.9)
 
 
 def test_coupled_decay_cites_loshchilov_and_hutter(tmp_path):

@@ -254,8 +254,10 @@ def _keyframe_parts(name, groups, optimizer_state, by_name):
     """Params, preconditioners and decays at a keyframe. The optimizer state dict numbers its tensors in
     group order; the recording lists each group's tensor names, assumed in the same order."""
     params, P, decays = [], [], []
-    for g, (group, saved) in enumerate(zip(groups, optimizer_state.get("param_groups", []))):
-        for tensor_name, index in zip(group.get("params", []), saved.get("params", [])):
+    for g, (recorded, saved) in enumerate(zip(groups, optimizer_state.get("param_groups", []))):
+        # the keyframe's own group settings (eps, weight_decay, ... as scheduled then) over the start values
+        group = {**recorded, **{k: v for k, v in saved.items() if k != "params"}}
+        for tensor_name, index in zip(recorded.get("params", []), saved.get("params", [])):
             if tensor_name not in by_name:
                 continue                              # an orphan the model does not hold
             params.append(by_name[tensor_name])

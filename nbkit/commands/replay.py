@@ -78,8 +78,10 @@ def run(args) -> int:
         fidelity = info.get("fidelity")
         note = ""
         if fidelity is not None:
+            first = (f"first difference at step {fidelity['first_step']}: {fidelity['first_difference']}; "
+                     if fidelity.get("first_step") is not None else "")
             note = ("identical to the parent" if fidelity["identical"] else
-                    f"largest differences: loss {fidelity['loss']:.3g}, probes {fidelity['probes']:.3g}, "
+                    f"{first}largest differences: loss {fidelity['loss']:.3g}, probes {fidelity['probes']:.3g}, "
                     f"keyframes {fidelity['keyframes']:.3g}")
         print(f"{name}: steps {int(recording.steps[0])}-{int(recording.steps[-1])} -> {recording.path} "
               f"(process {info['pid']}; {note or recording.meta['optimizer']['class']})")

@@ -29,9 +29,10 @@ from nbkit.record import capture, lifetime, setup, wrappers
 from nbkit.record.estimates import estimates_for
 from nbkit.record.options import RecordOptions
 from nbkit.record.pacing import Pacer
+from nbkit.record.settings import SettingsReader
 from nbkit.record.step_inputs import NO_LOSS, StepInputs
 from nbkit.store import keyframes as kf
-from nbkit.store.layout import Row
+from nbkit.store.layout import Row, setting_columns
 from nbkit.store.writer import RecordingWriter
 
 _recorder_of: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()   # optimizer -> its open Recorder
@@ -95,6 +96,7 @@ class Recorder:
                                     "Resume only with the same model, optimizer and settings, or record "
                                     "into a new path") from None
             self.step = resume_plan.next_step
+        self._settings = SettingsReader(setting_columns(meta))     # the stored keys: fixed at the start
         try:
             self._writer = RecordingWriter(self.recording_path, meta, commit_seconds=options.commit_seconds,
                                            probe_index=setup.probe_index(self._tensors, self.probes),
@@ -387,8 +389,9 @@ class Recorder:
 
     def _light_row(self) -> Row:
         loss, prints = self._inputs.take()
-        lrs = np.array([float(g["lr"]) for g in self.optimizer.param_groups], dtype=np.float64)
-        return Row.light(self.step, loss, lrs, prints, len(self._tensors))
+        groups = self.optimizer.param_groups
+        lrs = np.array([float(g["lr"]) for g in groups], dtype=np.float64)
+        return Row.light(self.step, loss, lrs, prints, len(self._tensors), self._settings.read(groups))
 
     def _finalize_rows(self, force: bool = False):
         """Hand finished rows to the writer, in step order. The open row (the last step's, kept for a

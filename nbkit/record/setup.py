@@ -18,6 +18,7 @@ from nbkit.errors import RecorderError
 from nbkit.measure.step_stats import EXACT_QUANTITIES, SAMPLED_QUANTITIES
 from nbkit.measure.update_rules import Adapter, step_count
 from nbkit.record.options import SAMPLE_SIZE, RecordOptions
+from nbkit.record.settings import setting_columns_of
 from nbkit.store.files import is_recording
 from nbkit.store.layout import OPTIMIZER_ONLY_LAYER, estimate_recording_bytes, new_meta
 from nbkit.store.resume import ResumePlan, plan_resume
@@ -116,6 +117,7 @@ def recording_meta(model, optimizer, adapter: Adapter, tensors: list[RecordedTen
         settings["params"] = [t.name for t in tensors if any(t.param is p for p in group["params"])]
         groups.append(settings)
     sampled = [t.name for t in tensors if t.param.numel() > SAMPLE_SIZE]
+    columns, not_replayed = setting_columns_of(optimizer.param_groups)
     return new_meta(
         model_class=type(model).__name__,
         optimizer={"class": type(optimizer).__name__, "module": type(optimizer).__module__,
@@ -127,6 +129,7 @@ def recording_meta(model, optimizer, adapter: Adapter, tensors: list[RecordedTen
                   "numel": t.param.numel(), "group": t.group, "layer": layer_of(t.name), "probes": t.probes,
                   "sample_size": len(t.index)} for t in tensors],
         probes=options.probes, options=options.as_meta(), orphans=orphans, frozen=frozen, compiled=compiled,
+        settings=[c.name for c in columns], settings_not_replayed=not_replayed,
         created=datetime.datetime.now(datetime.timezone.utc).isoformat(),
         torch_version=torch.__version__, numpy_version=np.__version__, python_version=sys.version.split()[0],
         threads=torch.get_num_threads(), interop_threads=torch.get_num_interop_threads(), pid=os.getpid(),

@@ -44,7 +44,9 @@ def optimizer_only_tensors(lane, meta) -> dict:
             for p, name in zip(group["params"], info["params"]) if name in names}
 
 
-def make_lane(name, factory, model, meta, model_state, optimizer_state, extra_params) -> Lane:
+def make_lane(name, factory, model, meta, model_state, optimizer_state, extra_params, carried=()) -> Lane:
+    """A lane for `factory` (None: the recorded optimizer with the keyframe's state); carried: per group,
+    the settings a factory's groups carry (restore.carried_settings)."""
     copy = copy_model(model)
     copy.load_state_dict(model_state)
     copy.train()
@@ -53,11 +55,11 @@ def make_lane(name, factory, model, meta, model_state, optimizer_state, extra_pa
         optimizer = restore.recorded_optimizer(meta, groups, optimizer_state)
     else:
         try:
-            optimizer = factory(groups)
+            optimizer = restore.factory_optimizer(factory, groups, list(carried) or [{} for _ in groups])
         except Exception as exc:
             raise ReplayError(f"The optimizer factory {name!r} failed on the recorded parameter groups "
                               f"({type(exc).__name__}: {exc}); it is called as factory(groups) with groups a list "
-                              "of {'params': [...]} dicts") from exc
+                              "of {'params': [...], ...} dicts (plus the settings that differ between groups)") from exc
         if not isinstance(optimizer, torch.optim.Optimizer):
             raise ReplayError(f"The optimizer factory {name!r} returned {type(optimizer).__name__}, not a "
                               "torch.optim.Optimizer")

@@ -4,7 +4,8 @@ step every lane in lockstep on the same batches, checking each batch's fingerpri
 Order of one replayed step s (the order of a plain training loop, which is what the recording saw):
 fetch batch s; optimizer.zero_grad(); loss = step_fn(model, batch); loss.backward() unless step_fn
 returned a float or a tensor without grad_fn (it ran backward itself); before_step(model,
-optimizer, s); for the recorded optimizer, set each group's lr to the recorded value; optimizer.step()
+optimizer, s); for the recorded optimizer, set each group's lr and every other recorded setting
+(momentum, betas, weight_decay, ...) to the recorded values of step s; optimizer.step()
 (with a closure built from step_fn for optimizers whose step() requires one, such as LBFGS).
 Several optimizers advance in lockstep on the same batch, each on its own model copy and with its own
 copy of the global torch/numpy/python random states, so dropout draws what the original drew.
@@ -26,6 +27,7 @@ from nbkit.replay.fidelity import compare_recordings
 from nbkit.replay.lanes import detach, lane_recorder, make_lane, optimizer_only_tensors
 from nbkit.replay.plan import DATALOADER_ADVICE, Plan
 from nbkit.store.annotate import update_meta
+from nbkit.store.layout import setting_columns
 
 MISMATCHES_KEPT = 100    # fingerprint mismatches listed in a replay's meta with strict=False
 
@@ -75,9 +77,10 @@ def _run(plan, run, model, step_fn, batches, names, progress, threads_note, posi
                 detach(bridge)                         # its global hook must not outlive an error
             state = {"model": bridge.model.state_dict(), "optimizer": bridge.optimizer.state_dict(),
                      "extra_params": optimizer_only_tensors(bridge, meta)}
+        carried = restore.carried_settings(meta, set(run.settings))
         for name in names:
             lanes.append(make_lane(name, plan.factories[name], model, meta, state["model"], state["optimizer"],
-                               state["extra_params"]))
+                                   state["extra_params"], carried))
         if plan.record:
             for lane in lanes:
                 lane.recorder = lane_recorder(lane, plan, meta, threads_note)
@@ -111,14 +114,16 @@ def _run(plan, run, model, step_fn, batches, names, progress, threads_note, posi
             # a recording of a compiled model replayed on the eager one: inductor's kernels round differently
             differs = ("differs: compiled vs eager numerics (recorded through torch.compile, replayed eagerly); "
                        if meta.get("compiled") and not is_compiled(model) else "differs from its parent: ")
-            warnings.warn(f"nbkit replay {lane.name!r} {differs}largest loss difference "
-                          f"{fidelity['loss']:.3g}, probe {fidelity['probes']:.3g}, keyframe parameter "
-                          f"{fidelity['keyframes']:.3g} ({threads_note})", stacklevel=4)
+            warnings.warn(f"nbkit replay {lane.name!r} {differs}first difference at step "
+                          f"{fidelity['first_step']}: {fidelity['first_difference']}; largest loss difference "
+                          f"{fidelity['loss']:.3g}, probe {fidelity['probes']:.3g}, setting "
+                          f"{fidelity['settings']:.3g}, keyframe parameter {fidelity['keyframes']:.3g} "
+                          f"({threads_note})", stacklevel=4)
     return paths
 
 
 class RecordedSteps:
-    """The parent's per-step data the loop needs: fingerprints and learning rates by step."""
+    """The parent's per-step data the loop needs: fingerprints, learning rates and settings by step."""
     def __init__(self, run, first, end):
         rows = run.rows_for_steps(first, end - 1)
         steps = run.steps[rows]
@@ -127,6 +132,10 @@ class RecordedSteps:
                               "over that range")
         self.fingerprints = run.fingerprints[rows]      # (steps, 2, width)
         self.lr = run.lr[rows]                          # (steps, groups)
+        columns = setting_columns(run.meta)
+        keep = [s for s, c in enumerate(columns) if c.key != "lr"]     # lr comes from self.lr (old recordings too)
+        self.setting_columns = [columns[s] for s in keep]
+        self.settings = run.setting_values(rows=rows)[:, :, keep]      # (steps, groups, settings)
         self.first = first
 
     def row(self, step):
@@ -176,7 +185,7 @@ def _loop(lanes, recorded, step_fn, fetch, first, end, before_step, strict, bar)
         for lane in lanes:
             if several:
                 restore.set_rng(lane.rng)
-            _step(lane, step_fn, batch, before_step, step, recorded.lr[row])
+            _step(lane, step_fn, batch, before_step, step, recorded, row)
             _check_fingerprint(lane, recorded.fingerprints[row], step, strict)
             if several:
                 lane.rng = restore.get_rng()
@@ -202,7 +211,7 @@ def _needs_backward(loss) -> bool:
     return isinstance(loss, torch.Tensor) and loss.requires_grad and loss.grad_fn is not None
 
 
-def _step(lane, step_fn, batch, before_step, step, lrs):
+def _step(lane, step_fn, batch, before_step, step, recorded, row):
     model, optimizer = lane.model, lane.optimizer
     lane.prints, lane.target_prints, lane.criterion_now = [], [], False
     lane.active = True
@@ -218,7 +227,7 @@ def _step(lane, step_fn, batch, before_step, step, lrs):
             if before_step is not None:
                 before_step(model, optimizer, step)
             if lane.recorded:
-                _apply_lr(optimizer, lrs)
+                _apply_settings(optimizer, recorded, row)
             optimizer.step(closure)
             return
         optimizer.zero_grad()
@@ -232,18 +241,21 @@ def _step(lane, step_fn, batch, before_step, step, lrs):
         if before_step is not None:
             before_step(model, optimizer, step)
         if lane.recorded:
-            _apply_lr(optimizer, lrs)
+            _apply_settings(optimizer, recorded, row)
         optimizer.step()
     finally:
         lane.active = False
 
 
-def _apply_lr(optimizer, lrs):
-    for group, lr in zip(optimizer.param_groups, lrs):
+def _apply_settings(optimizer, recorded, row):
+    """The recorded optimizer's groups take step `row`'s recorded learning rates and settings."""
+    for group, lr in zip(optimizer.param_groups, recorded.lr[row]):
         if isinstance(group["lr"], torch.Tensor):
             group["lr"].fill_(float(lr))
         else:
             group["lr"] = float(lr)
+    if recorded.setting_columns:
+        restore.apply_settings(optimizer.param_groups, recorded.setting_columns, recorded.settings[row])
 
 
 def _check_fingerprint(lane, recorded, step, strict):

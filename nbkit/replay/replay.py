@@ -16,17 +16,22 @@ def replay(run, model, step_fn, batches, optimizers=None, start=None, steps=None
     run: a Recording (or its path). model: the recorded architecture (only copies are trained).
     step_fn(model, batch) -> loss. batches: an iterable yielding the run's batches from step 0, or
     a callable batches(step) -> batch. optimizers=None: {"recorded": None}; otherwise name ->
-    factory(groups) -> optimizer, where groups are the recorded parameter groups as [{"params": [...]}];
-    a value None stands for the recorded optimizer. start=None: the run's first step. steps=None: to
+    factory(groups) -> optimizer, where groups are the recorded parameter groups as [{"params": [...]}]
+    plus the settings that stay constant over the run, differ between groups and the target optimizer
+    knows (e.g. a no-decay group's weight_decay=0; never lr; nbkit.replay.restore.factory_optimizer,
+    which may call the factory twice to learn what the target knows); a value None stands for the
+    recorded optimizer. start=None: the run's first step. steps=None: to
     the run's last step. to=None: "<run path>.replays/<name>"; otherwise a folder holding <name>.
     before_step=None: before_step(model, optimizer, step) before every optimizer.step(). workers=1:
     replays run in this many spawned processes. progress=True: a tqdm.auto bar. strict=True: a batch
     whose fingerprint differs from the recording stops the replay (False: a warning, listed in meta).
     Returns {name: Recording}; each replay's meta["replay"] holds its parent, start, process id,
     thread count and, for the recorded optimizer, the largest differences from the parent
-    ("fidelity"). The model copies run in training mode. The recorded optimizer gets the recorded
-    learning rates after before_step, so a scheduler's effect is reproduced without its object (and a
-    scheduler stepped in before_step does not change it). For closure optimizers (LBFGS) before_step
+    ("fidelity", with the first differing step and tensor or setting). The model copies run in
+    training mode. The recorded optimizer gets the recorded learning rates and every other recorded
+    setting (momentum, betas, weight_decay, ...: run.meta["settings"]) after before_step, so a
+    scheduler's effect is reproduced without its object (and a scheduler stepped in before_step does
+    not change it). For closure optimizers (LBFGS) before_step
     runs once before step(closure), not inside the closure. An earlier replay of the same run in the
     target folder is replaced; any other recording there is left alone (an error says so).
     """

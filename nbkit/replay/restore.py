@@ -13,7 +13,7 @@ import numpy as np
 import torch
 
 from nbkit.errors import ReplayError
-from nbkit.store.layout import OPTIMIZER_ONLY_LAYER
+from nbkit.store.layout import OPTIMIZER_ONLY_LAYER, SettingColumn, setting_columns
 
 
 def parameter_groups(meta: dict, model: torch.nn.Module, extra_params: dict) -> list[dict]:
@@ -34,6 +34,62 @@ def parameter_groups(meta: dict, model: torch.nn.Module, extra_params: dict) -> 
                                   "model the run was recorded with")
         groups.append({"params": params})
     return groups
+
+
+def carried_settings(meta: dict, changed: set[str]) -> list[dict]:
+    """Per recorded group, the settings a factory's groups carry: {key: value} of the numeric keys that
+    stay constant over the run (not in `changed`, names as in run.settings) and differ between groups,
+    never lr. Values are the start values in meta["param_groups"] (tuples as tuples). Recordings made
+    before settings were stored do not say which keys changed: their numeric keys count as constant."""
+    groups = meta.get("param_groups", [])
+    columns = setting_columns(meta)
+    if columns:
+        keys = list(dict.fromkeys(c.key for c in columns))
+        moved = {c.key for c in columns if c.name in changed}
+    else:
+        keys = list(dict.fromkeys(k for g in groups for k, v in g.items() if _numeric_json(v)))
+        moved = set()
+    carried = [{} for _ in groups]
+    for key in keys:
+        if key == "lr" or key in moved:
+            continue
+        values = [_tuples(g[key]) if key in g else None for g in groups]
+        if len(groups) < 2 or all(v == values[0] for v in values):
+            continue                                    # the same in every group: the factory's keyword wins
+        for g, value in enumerate(values):
+            if value is not None and _numeric_json(value):
+                carried[g][key] = value
+    return carried
+
+
+def _is_json_number(value) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+def _numeric_json(value) -> bool:
+    """A setting as the metadata holds it: a number or a non-empty list (or tuple) of numbers."""
+    return _is_json_number(value) or (isinstance(value, (list, tuple)) and len(value) > 0
+                                      and all(_is_json_number(v) for v in value))
+
+
+def factory_optimizer(factory, groups: list[dict], carried: list[dict]) -> torch.optim.Optimizer:
+    """factory(groups) with each group holding `params` plus its carried settings (carried_settings)
+    that the target optimizer knows.
+
+    Which keys the target knows is its `defaults` (what torch.optim fills into every group), known only
+    once the factory has run: so when there is something to carry, the factory is called first with the
+    plain `params` groups, and again with the known carried keys added (a factory may be called twice;
+    the first optimizer is dropped). inspect.signature of the class's __init__ would miss optimizers
+    that take **kwargs; `defaults` is what torch.optim itself uses. Keys the target does not know (betas
+    for SGD) are left out; the factory's keywords give every key that is not carried.
+    """
+    if not any(carried):
+        return factory(groups)
+    first = factory([{"params": g["params"]} for g in groups])
+    known = set(getattr(first, "defaults", None) or {}) - {"lr"}
+    if not any(known & set(c) for c in carried):
+        return first
+    return factory([{**g, **{k: v for k, v in c.items() if k in known}} for g, c in zip(groups, carried)])
 
 
 def check_model(meta: dict, model: torch.nn.Module) -> None:
@@ -77,6 +133,40 @@ def recorded_optimizer(meta: dict, groups: list[dict], optimizer_state: dict) ->
         optimizer = cls(built, lr=saved[0].get("lr", 1e-3))   # optimizers whose lr has no default
     optimizer.load_state_dict(optimizer_state)
     return optimizer
+
+
+def apply_settings(param_groups: list[dict], columns: list[SettingColumn], values: np.ndarray) -> None:
+    """Write one step's recorded settings, values (groups, settings) in `columns` order, into the groups.
+
+    A tensor setting is filled in place (fill_), a tuple's element is written back into a tuple (betas),
+    an int stays an int; NaN (not a number at that step) and keys the group lacks are left alone.
+    """
+    for group, row in zip(param_groups, values):
+        for column, value in zip(columns, row):
+            if value != value or column.key not in group:
+                continue
+            current = group[column.key]
+            if column.index is None:
+                group[column.key] = _written(current, value)
+            elif isinstance(current, (tuple, list)) and column.index < len(current):
+                element = _written(current[column.index], value)
+                if element is not current[column.index]:
+                    parts = list(current)
+                    parts[column.index] = element
+                    group[column.key] = type(current)(parts)
+
+
+def _written(current, value: float):
+    """`current` holding the recorded `value`: the same object when it already does (or is a tensor,
+    filled in place), else a number of its own type."""
+    if isinstance(current, torch.Tensor):
+        current.fill_(value)
+        return current
+    if current == value:
+        return current
+    if isinstance(current, int) and not isinstance(current, bool) and float(value).is_integer():
+        return int(value)
+    return float(value)
 
 
 def needs_closure(optimizer: torch.optim.Optimizer) -> bool:

@@ -89,6 +89,11 @@ class RowArrays:
         a[layout.LR][start:stop] = np.stack([r.lr for r in rows])
         a[layout.HEAVY][start:stop] = np.array([r.heavy for r in rows])
         a[layout.FINGERPRINT][start:stop] = np.stack([r.fingerprint for r in rows])
+        if layout.SETTINGS in a:                   # recordings that store settings (meta["settings"])
+            array = a[layout.SETTINGS]
+            missing = np.full(array.shape[1:], np.nan)
+            a[layout.SETTINGS][start:stop] = np.stack([missing if r.settings is None or r.settings.shape != missing.shape
+                                                      else r.settings for r in rows])
         summaries = np.stack([r.quantities for r in rows])                     # (rows, Q, T)
         for i, q in enumerate(self.meta["quantities"]):
             a[layout.series_array(q)][start:stop] = summaries[:, i]

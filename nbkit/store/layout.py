@@ -7,6 +7,8 @@ all take them from here. A recording directory holds
     committed.json        COMMITTED_FILE: rows safely on disk, published after the data
     keyframes/            KEYFRAME_DIR: <step>.safetensors + <step>.json
     step, loss, lr, heavy, fingerprint          one row per optimizer step (STEP_CHUNK rows a chunk)
+    settings              (steps, groups, settings) float64: every numeric group setting, in
+                          meta["settings"] order (tuples split: betas.0, betas.1; setting_name)
     q/<quantity>          (steps, tensors) float32 per-tensor series
     overview/<quantity>   (blocks, tensors, 2) min/max per OVERVIEW_BLOCK steps; overview/loss (blocks, 2)
     hist/<grad|update|gain>   (steps, tensors, bins + 2) uint32 (DETAIL_CHUNK rows a chunk)
@@ -38,6 +40,7 @@ KEYFRAMES_KEPT_RECENT = 4           # the newest keyframes are never thinned
 OPTIMIZER_ONLY_LAYER = "(optimizer only)"  # the layer of tensors the optimizer holds and the model does not
 HISTOGRAMS = ("grad", "update", "gain")     # the histogram arrays, in the order of Row.histograms
 STEP, LOSS, LR, HEAVY, FINGERPRINT = "step", "loss", "lr", "heavy", "fingerprint"
+SETTINGS = "settings"
 PROBE_INDEX = "probe_index"
 OVERVIEW_LOSS = "overview/loss"
 LOCAL_STEP, LOCAL_VALUES = "local/step", "local/values"
@@ -65,6 +68,32 @@ def probe_array(probe_field: str) -> str:
 
 
 @dataclass(frozen=True)
+class SettingColumn:
+    """One stored setting: its name (\"betas.0\"), the parameter-group key (\"betas\") and, for an
+    element of a tuple, its position (0); None for a plain number."""
+
+    name: str
+    key: str
+    index: int | None = None
+
+
+def setting_name(key: str, index: int | None = None) -> str:
+    """The stored name of a group setting: the key, or key.index for an element of a tuple."""
+    return key if index is None else f"{key}.{index}"
+
+
+def setting_columns(meta: dict) -> list[SettingColumn]:
+    """The recorded settings (meta["settings"]; none in recordings before they were stored), in the
+    order of the settings array's last axis. A name ending in .<digits> is an element of a tuple: the
+    recorder never records a plain key of that form (it is noted in meta["settings_not_replayed"])."""
+    columns = []
+    for name in meta.get("settings") or []:
+        key, _, tail = name.rpartition(".")
+        columns.append(SettingColumn(name, key, int(tail)) if key and tail.isdigit() else SettingColumn(name, name))
+    return columns
+
+
+@dataclass(frozen=True)
 class ArraySpec:
     """One stored array: the shape after the step axis, dtype, rows per chunk and fill value."""
 
@@ -84,6 +113,8 @@ def row_arrays(meta: dict, groups: int) -> dict[str, ArraySpec]:
         HEAVY: ArraySpec((), "bool", STEP_CHUNK, False),
         FINGERPRINT: ArraySpec((2, FINGERPRINT_WIDTH), "float64", STEP_CHUNK, np.nan),
     }
+    if meta.get("settings"):
+        specs[SETTINGS] = ArraySpec((groups, len(meta["settings"])), "float64", STEP_CHUNK, np.nan)
     for q in meta["quantities"]:
         specs[series_array(q)] = ArraySpec((T,), "float32", STEP_CHUNK, np.nan)
     for h in HISTOGRAMS:
@@ -135,34 +166,42 @@ class Row:
     histograms: np.ndarray              # (3, T, HISTOGRAM_BINS + 2) uint32, in HISTOGRAMS order
     probes: dict = field(default_factory=dict)   # probe field -> (T, probes) float32
     heavy: bool = False
+    settings: np.ndarray | None = None  # (G, S) float64 in meta["settings"] order; NaN: not a number now
 
     @classmethod
-    def light(cls, step: int, loss: float, lr: np.ndarray, fingerprint: np.ndarray, tensors: int) -> "Row":
+    def light(cls, step: int, loss: float, lr: np.ndarray, fingerprint: np.ndarray, tensors: int,
+              settings: np.ndarray | None = None) -> "Row":
         return cls(step, loss, lr, fingerprint,
                    np.full((len(QUANTITIES), tensors), np.nan, dtype=np.float32),
-                   np.zeros((len(HISTOGRAMS), tensors, HISTOGRAM_BINS + 2), dtype=np.uint32))
+                   np.zeros((len(HISTOGRAMS), tensors, HISTOGRAM_BINS + 2), dtype=np.uint32), settings=settings)
 
     def set_quantity(self, name: str, values) -> None:
         """Write one quantity for every tensor (a number or a (T,) array)."""
         self.quantities[QUANTITIES.index(name), :] = values
 
     def nbytes(self) -> int:
-        return 256 + self.quantities.nbytes + self.histograms.nbytes + sum(v.nbytes for v in self.probes.values())
+        settings = self.settings.nbytes if self.settings is not None else 0
+        return 256 + settings + self.quantities.nbytes + self.histograms.nbytes + sum(v.nbytes for v in self.probes.values())
 
 
 def new_meta(*, model_class: str, optimizer: dict, gain_applicable: bool, param_groups: list[dict],
-             tensors: list[dict], probes: int, options: dict, **extra) -> dict:
+             tensors: list[dict], probes: int, options: dict, settings: list[str] = (),
+             settings_not_replayed: dict | None = None, **extra) -> dict:
     """The metadata of a new recording (nbkit.json), the one schema every writer of recordings uses.
 
     optimizer: {"class", "module", "adapter", "defaults", "first_moment", "second_moment", "notes"};
     param_groups: each group's settings plus "params" (tensor names); tensors: one entry per tensor
     {"name", "shape", "dtype", "numel", "group", "layer", "probes", "sample_size"}; options: the
-    recording options (RecordOptions.as_meta()); extra: further entries (versions, statistics ...).
+    recording options (RecordOptions.as_meta()); settings: the names of the group settings stored each
+    step (setting_name; fixed at the start); settings_not_replayed: {key: why} for group keys that are
+    not numbers or tuples of numbers (their start values stay in param_groups); extra: further entries
+    (versions, statistics ...).
     """
     meta = {
         "format_version": FORMAT_VERSION, "nbkit_version": __version__, "model_class": model_class,
         "optimizer": optimizer, "gain_applicable": gain_applicable, "param_groups": param_groups,
-        "tensors": tensors, "orphans": [], "frozen": [], "quantities": list(QUANTITIES), "probes": probes,
+        "tensors": tensors, "settings": list(settings), "settings_not_replayed": dict(settings_not_replayed or {}),
+        "orphans": [], "frozen": [], "quantities": list(QUANTITIES), "probes": probes,
         "histogram_bins": HISTOGRAM_BINS, "histogram_low": dict(HISTOGRAM_LOW),
         "keyframe_retention": {"budget_bytes": KEYFRAME_BUDGET_BYTES, "kept_recent": KEYFRAMES_KEPT_RECENT,
                                "thinned": []},
@@ -187,7 +226,7 @@ def estimate_recording_bytes(meta: dict, expected_steps: int, *, state_copies: i
     T, P, Q = len(meta["tensors"]), meta["probes"], len(meta["quantities"])
     bins = meta["histogram_bins"] + 2
     G = len(meta.get("param_groups", [])) or 1
-    light = 8 + 8 + 8 * G + 1 + 2 * FINGERPRINT_WIDTH * 8
+    light = 8 + 8 + 8 * G * (1 + len(meta.get("settings", []))) + 1 + 2 * FINGERPRINT_WIDTH * 8
     fields = 2 + state_copies                              # grad, update, and the moments kept as probes
     heavy = 4 * T * (Q + 3 * bins + fields * P)
     every = max(1, int(meta.get("every", 1)))

@@ -178,6 +178,36 @@ class RecordingReader:
         return self._rows_of(layout.LR) if self._committed else np.zeros((0, len(self.meta.get("param_groups", []))))
 
     @property
+    def settings(self) -> dict[str, np.ndarray]:
+        """Each parameter-group setting that changed during the run: name -> (steps, groups) float64.
+
+        Names are the group keys, tuples split (betas.0, betas.1); meta["settings"] lists every stored
+        one, meta["param_groups"] their start values. A recording made before settings were stored
+        gives its learning rate alone, when it changed.
+        """
+        values = self.setting_values()                                   # (steps, groups, settings)
+        names = [c.name for c in layout.setting_columns(self.meta)]
+        if not names:
+            values, names = self.lr[:, :, None], ["lr"]
+        changed = {}
+        for s, name in enumerate(names):
+            column = values[:, :, s]
+            same = (column == column[:1]) | (np.isnan(column) & np.isnan(column[:1]))
+            if len(column) and not same.all():
+                changed[name] = column
+        return changed
+
+    def setting_values(self, *, rows: slice | None = None) -> np.ndarray:
+        """(steps, groups, settings) float64: every stored setting of every group, in meta["settings"]
+        order (nbkit.store.layout.setting_columns), over `rows` (None: every step); NaN where a group's
+        value was not a number. The last axis is empty for recordings made before settings were stored."""
+        groups, count = len(self.meta.get("param_groups", [])), len(self.meta.get("settings") or [])
+        if self._committed == 0 or count == 0:
+            steps = len(range(*_clip(rows, self._committed).indices(self._committed)))
+            return np.zeros((steps, groups, 0))
+        return self._read(layout.SETTINGS, (_clip(rows, self._committed),))
+
+    @property
     def heavy(self) -> np.ndarray:
         """True at steps whose per-tensor quantities were computed (every=N records 1 step in N)."""
         return self._rows_of(layout.HEAVY) if self._committed else np.zeros(0, dtype=bool)
@@ -302,9 +332,12 @@ def _check_entries(meta: dict, meta_path: Path) -> None:
             bad(f"tensor entry {str(t)[:60]!r}")
     if not all(isinstance(q, str) for q in meta["quantities"]):
         bad("'quantities' entry")
-    for key, kind in (("probe_fields", list), ("optimizer", dict), ("param_groups", list), ("distributed", dict)):
+    for key, kind in (("probe_fields", list), ("optimizer", dict), ("param_groups", list), ("distributed", dict),
+                      ("settings", list)):
         if key in meta and not isinstance(meta[key], kind):
             bad(f"{key!r} entry (expected {kind.__name__})")
+    if not all(isinstance(name, str) for name in meta.get("settings", [])):
+        bad("'settings' entry (expected setting names)")
 
 
 def _writer_alive(meta: dict) -> bool:

@@ -45,15 +45,20 @@ def coupled_decay(data, t) -> list[Finding]:
         return []
     out = []
     last = int(data.steps[-1]) if len(data.steps) else 0
+    scheduled = data.run.settings.get("weight_decay") if len(data.steps) else None    # (steps, groups)
     for g, group in enumerate(data.meta.get("param_groups", [])):
-        decay = coupled_weight_decay(name, group)
+        first, decay = 0, coupled_weight_decay(name, group)
+        if scheduled is not None:                      # a decay schedule: its largest value, from its first
+            values = np.array([coupled_weight_decay(name, {**group, "weight_decay": v}) for v in scheduled[:, g]])
+            on = np.flatnonzero(values > 0)
+            first, decay = (int(data.steps[on[0]]), float(values.max())) if len(on) else (0, 0.0)
         if decay > 0:
-            out.append(Finding("coupled-decay", list(group.get("params", [])), 0, last, "info",
+            out.append(Finding("coupled-decay", list(group.get("params", [])), first, last, "info",
                                {"group": g, "weight_decay": decay},
                                f"{name} adds weight_decay={decay:g} to the gradient, so the second moment rescales "
                                "it and heavily-updated weights decay less (L2 is not weight decay for Adam). "
                                "Use AdamW or decoupled_weight_decay=True; retune the decay. " +
-                               REPLAY_HINT.format(step=0) + ".",
+                               REPLAY_HINT.format(step=first) + ".",
                                "Loshchilov & Hutter 2019, Decoupled Weight Decay Regularization"))
     return out
 

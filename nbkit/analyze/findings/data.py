@@ -6,6 +6,8 @@ import warnings
 
 import numpy as np
 
+from nbkit.store.layout import setting_columns
+
 
 class FindingInputs:
     """The recording's arrays, read once: heavy rows for per-tensor series, all rows for loss.
@@ -22,6 +24,32 @@ class FindingInputs:
         self.heavy_steps = self.steps[self.heavy_rows]
         self.loss = np.asarray(run.loss, dtype=np.float64)
         self._series: dict = {}
+        self._changed: dict | None = None
+
+    def group_settings(self, row: int) -> list[dict]:
+        """Each parameter group's settings at `row`: its start values (meta["param_groups"]) with every
+        setting that changed during the run (run.settings; tuples such as betas reassembled) and the
+        learning rate (run.lr) at that row."""
+        if self._changed is None:
+            self._changed = self.run.settings if len(self.steps) else {}
+            self._lr = np.asarray(self.run.lr, dtype=np.float64)
+        columns = {c.name: c for c in setting_columns(self.meta)}
+        out = []
+        for g, start in enumerate(self.meta.get("param_groups", [])):
+            group = {k: list(v) if isinstance(v, (list, tuple)) else v for k, v in start.items() if k != "params"}
+            for name, values in self._changed.items():
+                column = columns.get(name)
+                value = float(values[row, g])
+                if column is None or not math.isfinite(value):
+                    continue
+                if column.index is None:
+                    group[column.key] = value
+                elif isinstance(group.get(column.key), list) and column.index < len(group[column.key]):
+                    group[column.key][column.index] = value
+            if g < self._lr.shape[1]:
+                group["lr"] = float(self._lr[row, g])
+            out.append(group)
+        return out
 
     def series(self, q) -> np.ndarray:
         """(heavy rows, tensors) float64; all NaN for a quantity the recording does not hold."""

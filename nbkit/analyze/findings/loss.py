@@ -56,9 +56,10 @@ def plateau(data, t) -> list[Finding]:
 
 
 def over_stability_limit(data, t) -> list[Finding]:
-    """over-stability-limit: recorded sharpness above t.stability_margin × the optimizer's stability limit at
-    its learning rate (nbkit.analyze.stability); consecutive such rows are one finding, with the loss rise
-    over the 10 steps after as evidence."""
+    """over-stability-limit: recorded sharpness above t.stability_margin × the optimizer's stability limit
+    (nbkit.analyze.stability) at that step's settings (learning rate, momentum, betas, ... of every group:
+    FindingInputs.group_settings; the lowest group limit counts); consecutive such rows are one finding,
+    with the loss rise over the 10 steps after as evidence."""
     sharp = np.asarray(data.run.series("sharpness"), dtype=np.float64) if "sharpness" in data.run.quantities else None
     if sharp is None or not len(sharp):
         return []
@@ -67,37 +68,45 @@ def over_stability_limit(data, t) -> list[Finding]:
         values = np.nanmax(sharp, axis=1)                                          # (steps,)
     rows = np.flatnonzero(np.isfinite(values))
     name = data.meta.get("optimizer", {}).get("class", "")
-    groups = data.meta.get("param_groups", [])
-    if not len(rows) or not groups:
+    if not len(rows) or not data.meta.get("param_groups"):
         return []
-    lr = np.asarray(data.run.lr, dtype=np.float64)
     hits = []
-    beta1 = float((groups[0].get("betas") or (0.9, 0.999))[0])
     for r in rows:
-        # Adam's analysis assumes a slowly changing preconditioner; in the bias-correction transient
-        # (1 − β1^t < 0.9: the first 22 steps at β1 = 0.9) it does not hold, so those rows are skipped
-        if name in ADAM_FAMILY and 1 - beta1 ** (data.steps[r] + 1) < 0.9:
-            continue
-        limit = stability_limit(name, {**groups[0], "lr": float(lr[r, 0])})
-        if limit is not None and values[r] > t.stability_margin * limit.limit:
-            hits.append((r, values[r], limit))
+        limits = []
+        for g, group in enumerate(data.group_settings(r)):
+            # Adam's analysis assumes a slowly changing preconditioner; in the bias-correction transient
+            # (1 − β1^t < 0.9: the first 22 steps at β1 = 0.9) it does not hold, so those rows are skipped
+            beta1 = float((group.get("betas") or (0.9, 0.999))[0])
+            if name in ADAM_FAMILY and 1 - beta1 ** (data.steps[r] + 1) < 0.9:
+                continue
+            limit = stability_limit(name, group)
+            if limit is not None:
+                limits.append((limit.limit, g, limit, float(group.get("lr", math.nan))))
+        if limits:
+            _, g, limit, lr = min(limits, key=lambda item: item[0])
+            if values[r] > t.stability_margin * limit.limit:
+                hits.append((r, values[r], limit, g, lr))
     out = []
-    for r, value, limit in hits:
+    for r, value, limit, g, lr in hits:
         if out and out[-1][1] == rows[max(0, np.searchsorted(rows, r) - 1)]:
-            out[-1] = (out[-1][0], r, max(out[-1][2], value / limit.limit), out[-1][3], out[-1][4])
+            out[-1] = (out[-1][0], r, max(out[-1][2], value / limit.limit), *out[-1][3:])
         else:
-            out.append((r, r, value / limit.limit, value, limit))
+            out.append((r, r, value / limit.limit, value, limit, g, lr))
     findings = []
-    for a, b, ratio, value, limit in out:
+    groups = len(data.meta["param_groups"])
+    for a, b, ratio, value, limit, g, lr in out:
         step = int(data.steps[a])
         after = data.loss[a:a + 11]
         rise = float(np.nanmax(after) / data.loss[a]) if np.isfinite(after).any() and data.loss[a] > 0 else math.nan
         kind = "preconditioned sharpness" if limit.preconditioned else "sharpness"
-        findings.append(Finding("over-stability-limit", [], step, int(data.steps[b]), "warning",
-                                {"sharpness": float(value), "limit": float(limit.limit), "max_ratio": float(ratio),
-                                 "lr": float(lr[a, 0]), "loss_rise_next_10_steps": rise},
+        where = f" (parameter group {g}, the lowest limit of {groups})" if groups > 1 else ""
+        evidence = {"sharpness": float(value), "limit": float(limit.limit), "max_ratio": float(ratio),
+                    "lr": lr, "loss_rise_next_10_steps": rise}
+        if groups > 1:
+            evidence["group"] = g
+        findings.append(Finding("over-stability-limit", [], step, int(data.steps[b]), "warning", evidence,
                                 f"The {kind} ({value:.4g}) is above the stability limit {limit.rule} = "
-                                f"{limit.limit:.4g} of {name} at lr={lr[a, 0]:.3g}: steps along the sharpest "
+                                f"{limit.limit:.4g} of {name} at lr={lr:.3g}{where}: steps along the sharpest "
                                 "direction grow instead of shrinking. Lower the learning rate (or add warm-up). " +
                                 REPLAY_HINT.format(step=step) + ".", limit.source))
     return findings
