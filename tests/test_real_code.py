@@ -89,10 +89,11 @@ def test_a_wrapped_optimizer_is_recorded_through_the_one_it_holds(tmp_path, wrap
 
 
 def test_accelerates_optimizer_is_unwrapped(tmp_path):
-    accelerate_optimizer = pytest.importorskip("accelerate.optimizer")
+    accelerate = pytest.importorskip("accelerate")
     model = make_model()
     inner = torch.optim.AdamW(model.parameters(), lr=1e-3)
-    wrapped = accelerate_optimizer.AcceleratedOptimizer(inner, device_placement=False)
+    wrapped = accelerate.Accelerator(cpu=True).prepare_optimizer(inner)     # what a Trainer steps
+    assert type(wrapped).__name__ == "AcceleratedOptimizer" and wrapped.optimizer is inner
     criterion = torch.nn.MSELoss()
     with nbkit.record(model, wrapped, tmp_path / "run", criterion=criterion) as rec:
         assert rec.optimizer is inner

@@ -4,17 +4,14 @@ The recorder only orchestrates: numbers come from nbkit.measure (through nbkit.r
 files from nbkit.store. It never draws from the global random generators (its sample of coordinates
 comes from a private torch.Generator), so a recorded run ends bit-identical to the same run unrecorded.
 
-Its public surface, in the manner of torch's hooks, is what estimates during recording, DDP, replays,
-the live view and the tests use: loss(), flush(wait), pause(), add_step_hook(fn) -> handle,
-report(what), note(**meta), last_batch(), observe_criterion(inputs, output), tensors,
-probe_coordinates(tensor), put_local_gradients(step, values), close().
+Its public surface, in the manner of torch's hooks (DEVELOPERS.md lists it), is all that estimates
+during recording, DDP, replays, the live view and the tests use.
 """
 from __future__ import annotations
 
 import collections
 import contextlib
 import functools
-import warnings
 import weakref
 from pathlib import Path
 
@@ -23,17 +20,17 @@ import torch
 from torch.utils.hooks import RemovableHandle
 
 from nbkit.analyze.model_copy import register_hook_owner
-from nbkit.errors import RecorderError, RecorderWarning
+from nbkit.errors import RecorderError
 from nbkit.measure.update_rules import adapter_for
 from nbkit.record import capture, lifetime, setup, wrappers
 from nbkit.record.estimates import estimates_for
 from nbkit.record.options import RecordOptions
 from nbkit.record.pacing import Pacer
+from nbkit.record.reporting import ProblemReports
 from nbkit.record.settings import SettingsReader
 from nbkit.record.step_inputs import NO_LOSS, StepInputs
 from nbkit.store import keyframes as kf
 from nbkit.store.layout import Row, setting_columns
-from nbkit.store.writer import RecordingWriter
 
 _recorder_of: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()   # optimizer -> its open Recorder
 
@@ -68,7 +65,7 @@ class Recorder:
         self.step = int(first_step)
         self.background = True              # statistics on a background thread (False: in the hook)
         self._closed = self._failed = self._paused = False
-        self._warned: set[str] = set()
+        self._reports = ProblemReports(self.recording_path)
         self._depth = 0                     # nesting of optimizer.step() (a subclass calling super().step())
         self._open_row: Row | None = None   # the last step's row, open for a rec.loss() after the step
         self._open_tasks: list = []         # ... and the statistics tasks that fill it in
@@ -86,24 +83,10 @@ class Recorder:
         meta = setup.recording_meta(model, optimizer, self.adapter, self._tensors, orphans, frozen, options,
                                     compiled=parts.compiled)
         meta.update(extra_meta or {})
-        setup.check_disk(meta, self.recording_path, options.expected_steps, self.adapter)  # before a replace
-        resume_plan = setup.prepare_path(self.recording_path, optimizer, options.overwrite, options.resume)
-        if resume_plan is not None:         # resume: steps continue, the old metadata is kept
-            try:
-                meta = resume_plan.merged_meta(meta)
-            except ValueError as exc:
-                raise RecorderError(f"Cannot resume the recording at {str(self.recording_path)!r}: {exc}. "
-                                    "Resume only with the same model, optimizer and settings, or record "
-                                    "into a new path") from None
-            self.step = resume_plan.next_step
-        self._settings = SettingsReader(setting_columns(meta))     # the stored keys: fixed at the start
-        try:
-            self._writer = RecordingWriter(self.recording_path, meta, commit_seconds=options.commit_seconds,
-                                           probe_index=setup.probe_index(self._tensors, self.probes),
-                                           resume=resume_plan)
-        except OSError as exc:
-            raise RecorderError(f"Cannot write a recording at {str(self.recording_path)!r} "
-                                f"({type(exc).__name__}: {exc}); choose a writable folder with free space") from exc
+        self._writer, next_step = setup.open_writer(self.recording_path, meta, options, optimizer, self.adapter,
+                                                    setup.probe_index(self._tensors, self.probes))
+        self.step = self.step if next_step is None else next_step     # resume: steps continue
+        self._settings = SettingsReader(setting_columns(self._writer.meta))   # the stored keys: fixed at the start
         try:
             self._take_keyframe(self.step)
         except Exception as exc:            # e.g. optimizer state a keyframe cannot hold: rows go on
@@ -127,25 +110,12 @@ class Recorder:
     def active(self) -> bool:
         return not (self._closed or self._failed or self._paused)
 
-    @property
-    def criterion(self):
-        return self.options.criterion
-
-    @property
-    def step_fn(self):
-        return self.options.step_fn
-
-    @property
-    def every(self) -> int:
-        return self.options.every
-
-    @property
-    def probes(self) -> int:
-        return self.options.probes
-
-    @property
-    def keyframe_every(self) -> int:
-        return self.options.keyframe_every
+    # the options, read-only (self.options holds them all)
+    criterion = property(lambda self: self.options.criterion)
+    step_fn = property(lambda self: self.options.step_fn)
+    every = property(lambda self: self.options.every)
+    probes = property(lambda self: self.options.probes)
+    keyframe_every = property(lambda self: self.options.keyframe_every)
 
     @property
     def tensors(self) -> list[str]:
@@ -261,7 +231,7 @@ class Recorder:
             self._closed = True
             self._writer.close()
             lifetime.forget(self)
-        if self._writer.error is not None and "writing the recording failed" not in self._warned:
+        if self._writer.error is not None and "writing the recording failed" not in self._reports.said:
             self._fail("writing the recording failed", self._writer.error)
 
     remove = close
@@ -280,14 +250,7 @@ class Recorder:
     # --- reporting ------------------------------------------------------------------------------
     def _fail(self, what: str, exc: BaseException | None = None, *, stop: bool = True):
         """Report a recorder problem once; stop recording unless `stop` is False; raise in strict mode."""
-        if self.strict:
-            raise RecorderError(f"nbkit recorder: {what}") from exc
-        if what not in self._warned:
-            self._warned.add(what)
-            cause = f": {type(exc).__name__}: {exc}" if exc is not None else ""
-            action = "recording stopped; training continues" if stop else "recording continues"
-            warnings.warn(f"nbkit recorder ({self.recording_path}): {what}{cause}; {action}. "
-                          "Pass strict=True to raise instead.", RecorderWarning, stacklevel=3)
+        self._reports.problem(what, exc, stop=stop, strict=self.strict)
         if stop:
             self._failed = True
             try:                     # the previous step's row is complete: keep it
@@ -295,17 +258,10 @@ class Recorder:
             except Exception:
                 pass
 
-    def _warn_once(self, message: str, key: str | None = None):
-        """A RecorderWarning about how the recorder is used, once per `key` (default: the message); never
-        raised, also with strict=True."""
-        if (key or message) not in self._warned:
-            self._warned.add(key or message)
-            warnings.warn(f"nbkit recorder ({self.recording_path}): {message}", RecorderWarning, stacklevel=4)
-
     def _check_writer(self):
         if self._writer.error is not None and not self._failed:
             self._fail("writing the recording failed", self._writer.error)
-        if self._writer.dropped_rows and "the writer fell behind" not in self._warned:
+        if self._writer.dropped_rows and "the writer fell behind" not in self._reports.said:
             self._fail("the writer fell behind", RuntimeError(
                 f"{self._writer.dropped_rows} rows were dropped because the disk is slower than training; "
                 "raise every= to record heavy rows less often"), stop=False)
@@ -346,7 +302,7 @@ class Recorder:
             return None                     # a subclass calling super().step(): record once
         try:
             if self._traced:
-                self._warn_once(wrappers.COMPILED_AFTER_RECORD)
+                self._reports.usage(wrappers.COMPILED_AFTER_RECORD)
             self._check_writer()
             self.pacer.step_started()
             self._finalize_rows()
@@ -399,7 +355,7 @@ class Recorder:
         statistics thread waits for a later hook unless `force` (flush, close)."""
         if self._open_row is not None:
             if self._inputs.without_loss:   # nothing gave this step a loss, also not a rec.loss() after it
-                self._warn_once(NO_LOSS.format(step=self._open_row.step), key=NO_LOSS)
+                self._reports.usage(NO_LOSS.format(step=self._open_row.step), key=NO_LOSS)
             self._waiting.append((self._open_row, self._open_tasks))
             self._open_row, self._open_tasks = None, []
         while self._waiting:

@@ -22,6 +22,7 @@ from nbkit.record.settings import setting_columns_of
 from nbkit.store.files import is_recording
 from nbkit.store.layout import OPTIMIZER_ONLY_LAYER, estimate_recording_bytes, new_meta
 from nbkit.store.resume import ResumePlan, plan_resume
+from nbkit.store.writer import RecordingWriter
 
 SAMPLE_SEED = 20251201  # the recorder's private generator's seed: the same coordinates in every recording
 
@@ -200,3 +201,24 @@ def prepare_path(path: Path, optimizer, overwrite: bool, resume) -> ResumePlan |
         raise RecorderError(f"Cannot create the recording folder {str(path)!r} ({type(exc).__name__}: {exc}); "
                             "choose a writable location") from exc
     return None
+
+
+def open_writer(path: Path, meta: dict, options: RecordOptions, optimizer, adapter: Adapter,
+                probe_index: np.ndarray) -> tuple[RecordingWriter, int | None]:
+    """(the writer of a new or resumed recording at `path`, the next step of a resumed one or None).
+    Checks the disk first (before an old recording may be replaced), then prepares the folder."""
+    check_disk(meta, path, options.expected_steps, adapter)
+    resume_plan = prepare_path(path, optimizer, options.overwrite, options.resume)
+    if resume_plan is not None:         # resume: the old metadata is kept
+        try:
+            meta = resume_plan.merged_meta(meta)
+        except ValueError as exc:
+            raise RecorderError(f"Cannot resume the recording at {str(path)!r}: {exc}. Resume only with the "
+                                "same model, optimizer and settings, or record into a new path") from None
+    try:
+        writer = RecordingWriter(path, meta, commit_seconds=options.commit_seconds, probe_index=probe_index,
+                                 resume=resume_plan)
+    except OSError as exc:
+        raise RecorderError(f"Cannot write a recording at {str(path)!r} ({type(exc).__name__}: {exc}); "
+                            "choose a writable folder with free space") from exc
+    return writer, resume_plan.next_step if resume_plan is not None else None
