@@ -1,8 +1,9 @@
 """nbkit: record a PyTorch training run, scrub through it, replay it with another optimizer.
 
 This module only re-exports the public API (DESIGN.md §3); DEVELOPERS.md maps where each part lives.
-The views (ipywidgets, matplotlib, ipympl) are re-exported on first use, so that a training script,
-a replay worker or a DDP rank that never draws does not pay for importing them.
+The views (ipywidgets, matplotlib, ipympl) and the trainer callbacks (transformers, lightning: optional
+extras) are re-exported on first use, so that a training script, a replay worker or a DDP rank that
+never draws does not pay for importing them.
 """
 import importlib
 from nbkit.analyze.curvature import sharpness
@@ -16,12 +17,15 @@ from nbkit.recording import Recording, load
 from nbkit.replay.replay import replay
 from nbkit.version import __version__
 
-VIEWS = {"explore": "nbkit.views.explorer", "compare": "nbkit.views.compare", "landscape": "nbkit.views.landscape"}
+# loaded on first use: the views, and the trainer callbacks with their optional frameworks
+LAZY = {"explore": "nbkit.views.explorer", "compare": "nbkit.views.compare", "landscape": "nbkit.views.landscape",
+        "transformers_callback": "nbkit.integrations.transformers_callback",
+        "lightning_callback": "nbkit.integrations.lightning_callback"}
 
 
 def __getattr__(name):
-    if name in VIEWS:
-        value = getattr(importlib.import_module(VIEWS[name]), name)
+    if name in LAZY:
+        value = getattr(importlib.import_module(LAZY[name]), name)
         globals()[name] = value
         return value
     raise AttributeError(f"module 'nbkit' has no attribute {name!r}")
@@ -31,6 +35,8 @@ __all__ = [
     "record", "Recorder", "RecordOptions", "load", "Recording", "record_local_gradients",
     # views
     "explore",
+    # inside the trainers practitioners use (extras nbkit[transformers], nbkit[lightning])
+    "transformers_callback", "lightning_callback",
     # replays and their comparison
     "replay", "compare", "landscape",
     # analysis

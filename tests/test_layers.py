@@ -20,6 +20,7 @@ LAYERS = [
     ("nbkit.record",),
     ("nbkit.replay",),
     ("nbkit.views",),
+    ("nbkit.integrations",),         # the trainer callbacks: optional frameworks, imported at their top
     ("nbkit.demo",),
     ("nbkit",),                      # the facade: nbkit/__init__.py
     ("nbkit.commands",),

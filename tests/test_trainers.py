@@ -1,0 +1,134 @@
+"""The trainer callbacks on code nobody here wrote: a tiny GPT-2 trained by transformers' Trainer, and
+a LightningModule trained by Lightning's Trainer. Oracles: each framework's own record of its loss
+(the Trainer's log_history; the module's own training_step results)."""
+from __future__ import annotations
+
+import inspect
+import json.decoder
+import warnings
+
+import numpy as np
+import pytest
+import torch
+
+import nbkit
+
+pytestmark = pytest.mark.slow
+
+
+def text_batches(length=64):
+    """Byte sequences of standard-library source text (ships with Python)."""
+    text = inspect.getsource(json.decoder).encode() + inspect.getsource(inspect).encode()
+    ids = torch.tensor(list(text[: (len(text) // length) * length]), dtype=torch.long).view(-1, length)
+    return [{"input_ids": row, "labels": row} for row in ids]
+
+
+def gpt2_trainer(tmp_path, callback, steps, **arguments):
+    transformers = pytest.importorskip("transformers")
+    torch.manual_seed(0)
+    config = transformers.GPT2Config(n_layer=2, n_embd=64, n_head=2, vocab_size=256, n_positions=64,
+                                     bos_token_id=0, eos_token_id=0)
+    model = transformers.GPT2LMHeadModel(config)
+    args = transformers.TrainingArguments(output_dir=str(tmp_path / "trainer"), max_steps=steps,
+                                          per_device_train_batch_size=8, logging_steps=1, report_to="none",
+                                          use_cpu=True, save_strategy="no", learning_rate=1e-3,
+                                          disable_tqdm=True, seed=0, **arguments)
+    return transformers.Trainer(model=model, args=args, train_dataset=text_batches(), callbacks=[callback])
+
+
+@pytest.mark.parametrize("smoothing, steps", [(0.0, 150), (0.1, 30)])
+def test_a_trainer_run_records_the_loss_the_trainer_logs(tmp_path, smoothing, steps):
+    callback = nbkit.transformers_callback(tmp_path / "gpt", keyframe_every=50)
+    trainer = gpt2_trainer(tmp_path, callback, steps, label_smoothing_factor=smoothing, max_grad_norm=1.0)
+    trainer.train()
+    run = nbkit.load(tmp_path / "gpt")
+    logged = np.array([entry["loss"] for entry in trainer.state.log_history if "loss" in entry])
+    assert len(run) == steps == len(logged)
+    # transformers rounds logged losses to 4 decimals (trainer.py, _maybe_log_save_evaluate): tolerance 5e-5
+    np.testing.assert_allclose(run.loss, logged, rtol=0, atol=5e-5 + 1e-6)
+    assert run.meta["clip"]["max_norm"] == 1.0 and "_orig_mod" not in " ".join(run.tensors)
+    assert run.meta["optimizer"]["class"] == "AdamW" and len(run.tensors) >= 20
+
+
+def test_a_bad_option_fails_when_the_callback_is_made(tmp_path):
+    with pytest.raises(nbkit.RecorderError, match="keyframes"):
+        nbkit.transformers_callback(tmp_path / "x", keyframes=10)
+    with pytest.raises(nbkit.RecorderError, match="every"):
+        nbkit.lightning_callback(tmp_path / "y", every=0)
+
+
+def digits_module(seen, hidden=32):
+    """A LightningModule on sklearn's load_digits that keeps its own record of its training losses."""
+    pl = pytest.importorskip("lightning.pytorch")
+
+    class Digits(pl.LightningModule):
+        def __init__(self):
+            super().__init__()
+            self.net = torch.nn.Sequential(torch.nn.Linear(64, hidden), torch.nn.ReLU(), torch.nn.Linear(hidden, 10))
+
+        def training_step(self, batch, batch_idx):
+            loss = torch.nn.functional.cross_entropy(self.net(batch[0]), batch[1])
+            seen.append(float(loss.detach()))
+            return loss
+
+        def configure_optimizers(self):
+            optimizer = torch.optim.AdamW(self.parameters(), lr=3e-3)
+            schedule = torch.optim.lr_scheduler.StepLR(optimizer, step_size=10, gamma=0.5)
+            return [optimizer], [{"scheduler": schedule, "interval": "step"}]
+
+    return Digits()
+
+
+def digits_loader():
+    from sklearn.datasets import load_digits
+
+    digits = load_digits()
+    x = torch.tensor(digits.data / 16.0, dtype=torch.float32)
+    dataset = torch.utils.data.TensorDataset(x[:640], torch.tensor(digits.target)[:640])
+    return torch.utils.data.DataLoader(dataset, batch_size=32)
+
+
+def fit(module, callback, epochs, **arguments):
+    pl = pytest.importorskip("lightning.pytorch")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")              # Lightning's advice on workers and loggers
+        trainer = pl.Trainer(max_epochs=epochs, callbacks=[callback], logger=False, enable_checkpointing=False,
+                             enable_progress_bar=False, enable_model_summary=False, accelerator="cpu", devices=1,
+                             **arguments)
+        trainer.fit(module, digits_loader())
+
+
+def test_a_lightning_run_with_accumulation_records_the_undivided_mean(tmp_path):
+    torch.manual_seed(0)
+    seen = []
+    callback = nbkit.lightning_callback(tmp_path / "digits", keyframe_every=10)
+    fit(digits_module(seen), callback, 2, accumulate_grad_batches=2, gradient_clip_val=0.5)
+    run = nbkit.load(tmp_path / "digits")
+    expected = np.array(seen).reshape(-1, 2).mean(axis=1)          # 20 micro-batches an epoch, 2 per step
+    assert len(run) == len(expected) == 20
+    np.testing.assert_allclose(run.loss, expected, rtol=1e-6)
+    assert run.meta["clip"]["max_norm"] == 0.5 and "undivided" in run.meta["loss_source"]
+    assert run.settings["lr"][:, 0].tolist()[9:11] == pytest.approx([3e-3, 1.5e-3])   # StepLR after 10 steps
+
+
+def test_a_second_fit_appends_and_another_model_is_refused(tmp_path):
+    torch.manual_seed(0)
+    module, callback = digits_module([]), nbkit.lightning_callback(tmp_path / "digits")
+    fit(module, callback, 1)
+    fit(module, callback, 1)                          # a new Trainer, the same module: steps continue
+    run = nbkit.load(tmp_path / "digits")
+    assert run.steps.tolist() == list(range(40)) and len(run.meta["resumes"]) == 1
+    with pytest.raises(nbkit.RecorderError, match="Cannot resume.*tensors differ"):
+        fit(digits_module([], hidden=16), callback, 1)
+    assert nbkit.load(tmp_path / "digits").steps.tolist() == list(range(40))     # nothing recorded is lost
+
+
+@pytest.mark.parametrize("name, library", [("transformers_callback", "transformers"), ("lightning_callback", "lightning")])
+def test_a_missing_framework_names_the_extra_to_install(name, library):
+    import subprocess
+    import sys
+
+    code = (f"import sys; sys.modules[{library!r}] = None\n"      # as if the library were not installed
+            f"import nbkit\ntry:\n    nbkit.{name}('x')\nexcept ImportError as e:\n    print(e)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert f"pip install 'nbkit[{library}]'" in out.stdout, out.stdout + out.stderr
