@@ -27,3 +27,25 @@ def test_your_model_template_runs_top_to_bottom(tmp_path):
     assert (recording / "nbkit.json").is_file()
     replays = list((tmp_path / "recordings" / "your-model.replays").iterdir())
     assert [p.name for p in replays] == ["sgd-momentum"]
+
+
+@pytest.mark.slow
+def test_the_transformers_notebook_records_the_trainers_loss(tmp_path):
+    import nbclient
+    import nbformat
+
+    pytest.importorskip("transformers")
+    shutil.copy(NOTEBOOKS / "03-transformers.ipynb", tmp_path)
+    nb = nbformat.read(tmp_path / "03-transformers.ipynb", as_version=4)
+    nbclient.NotebookClient(nb, timeout=600, kernel_name="python3", store_widget_state=True,
+                            resources={"metadata": {"path": str(tmp_path)}}).execute()
+    outputs = [o for cell in nb.cells if cell.cell_type == "code" for o in cell.outputs]
+    assert not [o for o in outputs if o.get("output_type") == "error"]
+    printed = "".join(o.get("text", "") for o in outputs if o.get("output_type") == "stream")
+    difference = float(printed.split("largest difference from the Trainer's log:")[1].split()[0])
+    assert difference <= 5e-5 + 1e-6                       # the log's 4 decimals
+    views = [o for o in outputs if o.get("data", {}).get("text/plain", "").startswith("Explorer(")]
+    assert len(views) == 1 and "image/png" in views[0]["data"]
+    import nbkit
+
+    assert len(nbkit.load(tmp_path / "recordings" / "gpt")) == 100
