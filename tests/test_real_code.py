@@ -208,6 +208,11 @@ def test_a_compiled_recording_replays_on_the_plain_model_and_says_compiled_vs_ea
     assert not any("differs from its parent" in str(w.message) for w in caught)
     assert child.steps.tolist() == list(range(6)) and not child.meta["replay"]["fidelity"]["identical"]
     np.testing.assert_allclose(child.loss, run.loss, rtol=1e-4)    # the same run, other rounding
+    # the compiled model itself may be given: it is replayed as its plain module, eagerly
+    with pytest.warns(UserWarning, match="differs: compiled vs eager numerics"):
+        again = nbkit.replay(run, torch.compile(make_model(), backend=GraphCounter()), step_fn, data, start=0,
+                             steps=6, to=tmp_path / "replays", progress=False)["recorded"]
+    np.testing.assert_array_equal(again.loss, child.loss)
 
 
 # --- a loss the model returns ---------------------------------------------------------------------

@@ -6,6 +6,7 @@ from __future__ import annotations
 import inspect
 import json.decoder
 import warnings
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -132,3 +133,33 @@ def test_a_missing_framework_names_the_extra_to_install(name, library):
             f"import nbkit\ntry:\n    nbkit.{name}('x')\nexcept ImportError as e:\n    print(e)\n")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert f"pip install 'nbkit[{library}]'" in out.stdout, out.stdout + out.stderr
+
+
+CRASHING_RUN = """
+import sys, transformers
+sys.path.insert(0, {tests!r})
+from test_trainers import gpt2_trainer
+import nbkit
+from pathlib import Path
+
+class Crash(transformers.TrainerCallback):
+    def on_step_end(self, args, state, control, **kwargs):
+        if state.global_step == 10:
+            raise RuntimeError("the training loop crashed")
+
+trainer = gpt2_trainer(Path({folder!r}), nbkit.transformers_callback(Path({folder!r}) / "gpt"), 50)
+trainer.add_callback(Crash())
+trainer.train()                                  # raises: on_train_end never runs
+"""
+
+
+def test_a_trainer_that_crashes_before_train_end_leaves_a_readable_recording(tmp_path):
+    import subprocess
+    import sys
+
+    pytest.importorskip("transformers")
+    script = CRASHING_RUN.format(tests=str(Path(__file__).parent), folder=str(tmp_path))
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=300)
+    assert done.returncode != 0 and "the training loop crashed" in done.stderr
+    run = nbkit.load(tmp_path / "gpt")              # closed by the recorder's exit hooks
+    assert run.closed_cleanly and run.steps.tolist() == list(range(10)) and np.isfinite(run.loss).all()

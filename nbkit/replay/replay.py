@@ -3,6 +3,7 @@ optimizers (the order of one replayed step: nbkit.replay.loop)."""
 from __future__ import annotations
 
 from nbkit.analyze.model_copy import copy_model
+from nbkit.record.wrappers import unwrap_model
 from nbkit.recording import Recording, load
 from nbkit.replay.loop import run_plan
 from nbkit.replay.plan import make_plan
@@ -13,7 +14,8 @@ def replay(run, model, step_fn, batches, optimizers=None, start=None, steps=None
            workers=1, progress=True, strict=True) -> dict:
     """Replay `run` from the keyframe at or before `start` on the same batches; see DESIGN.md §3.
 
-    run: a Recording (or its path). model: the recorded architecture (only copies are trained).
+    run: a Recording (or its path). model: the recorded architecture (only copies are trained); a
+    torch.compile'd or DDP-wrapped model is replayed as its plain module, eagerly.
     step_fn(model, batch) -> loss. batches: an iterable yielding the run's batches from step 0, or
     a callable batches(step) -> batch. optimizers=None: {"recorded": None}; otherwise name ->
     factory(groups) -> optimizer, where groups are the recorded parameter groups as [{"params": [...]}]
@@ -36,6 +38,7 @@ def replay(run, model, step_fn, batches, optimizers=None, start=None, steps=None
     target folder is replaced; any other recording there is left alone (an error says so).
     """
     run = run if isinstance(run, Recording) else load(run)
+    model = unwrap_model(model).plain      # a compiled (or DDP) model: its plain module, replayed eagerly
     plan = make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before_step, workers, strict)
     names = list(plan.factories)
     if workers > 1 and len(names) > 1:
