@@ -93,6 +93,18 @@ def record_run(path, steps=230, keyframe_every=50, schedule=False, clipping=Fals
     return nbkit.load(path)
 
 
+def train_recorded(model, optimizer, path, steps=10, after_step=None):
+    """`steps` steps of the standard batches, recorded into `path` (keyframes every 5 steps);
+    after_step() runs after each optimizer step (a scheduler)."""
+    with nbkit.record(model, optimizer, path, criterion=CRITERION, keyframe_every=5):
+        for step in range(steps):
+            optimizer.zero_grad()
+            step_fn(model, Batches()(step)).backward()
+            optimizer.step()
+            if after_step is not None:
+                after_step()
+
+
 def setup():
     """For `nbkit replay --setup replay_setup:setup`: (model, step_fn, batches)."""
     return make_model(), step_fn, Batches()

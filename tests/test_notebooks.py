@@ -8,17 +8,23 @@ import pytest
 NOTEBOOKS = Path(__file__).resolve().parents[1] / "notebooks"
 
 
-@pytest.mark.slow
-def test_your_model_template_runs_top_to_bottom(tmp_path):
+def execute(name, folder):
+    """Run a copy of notebooks/<name> in `folder` under nbclient; returns its code cells' outputs."""
     import nbclient
     import nbformat
 
-    shutil.copy(NOTEBOOKS / "02-your-model.ipynb", tmp_path)
-    nb = nbformat.read(tmp_path / "02-your-model.ipynb", as_version=4)
+    shutil.copy(NOTEBOOKS / name, folder)
+    nb = nbformat.read(folder / name, as_version=4)
     nbclient.NotebookClient(nb, timeout=600, kernel_name="python3", store_widget_state=True,
-                            resources={"metadata": {"path": str(tmp_path)}}).execute()
+                            resources={"metadata": {"path": str(folder)}}).execute()
     outputs = [o for cell in nb.cells if cell.cell_type == "code" for o in cell.outputs]
     assert not [o for o in outputs if o.get("output_type") == "error"]
+    return outputs
+
+
+@pytest.mark.slow
+def test_your_model_template_runs_top_to_bottom(tmp_path):
+    outputs = execute("02-your-model.ipynb", tmp_path)
     views = [o for o in outputs if o.get("data", {}).get("text/plain", "").startswith(("Explorer(", "Comparison("))]
     assert len(views) == 2                                   # the explorer and the comparison
     assert all("image/png" in v["data"] for v in views)      # static pictures for exported notebooks
@@ -31,16 +37,8 @@ def test_your_model_template_runs_top_to_bottom(tmp_path):
 
 @pytest.mark.slow
 def test_the_transformers_notebook_records_the_trainers_loss(tmp_path):
-    import nbclient
-    import nbformat
-
     pytest.importorskip("transformers")
-    shutil.copy(NOTEBOOKS / "03-transformers.ipynb", tmp_path)
-    nb = nbformat.read(tmp_path / "03-transformers.ipynb", as_version=4)
-    nbclient.NotebookClient(nb, timeout=600, kernel_name="python3", store_widget_state=True,
-                            resources={"metadata": {"path": str(tmp_path)}}).execute()
-    outputs = [o for cell in nb.cells if cell.cell_type == "code" for o in cell.outputs]
-    assert not [o for o in outputs if o.get("output_type") == "error"]
+    outputs = execute("03-transformers.ipynb", tmp_path)
     printed = "".join(o.get("text", "") for o in outputs if o.get("output_type") == "stream")
     difference = float(printed.split("largest difference from the Trainer's log:")[1].split()[0])
     assert difference <= 5e-5 + 1e-6                       # the log's 4 decimals

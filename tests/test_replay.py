@@ -269,11 +269,7 @@ def test_a_step_fn_that_runs_backward_itself_replays_exactly(tmp_path):
 def test_an_orphan_stays_an_orphan_in_the_factorys_groups(tmp_path):
     model = rs.make_model()
     optimizer = torch.optim.SGD(model[0].parameters(), lr=0.1)     # the last layer is in no group
-    with nbkit.record(model, optimizer, tmp_path / "run", criterion=rs.CRITERION, keyframe_every=5):
-        for step in range(10):
-            optimizer.zero_grad()
-            rs.step_fn(model, rs.Batches()(step)).backward()
-            optimizer.step()
+    rs.train_recorded(model, optimizer, tmp_path / "run")
     seen = []
 
     def factory(groups):

@@ -88,12 +88,7 @@ def test_a_zero_dim_tensor_setting_is_stored_and_other_values_are_noted(tmp_path
     optimizer.param_groups[0]["label"] = "all"                 # not a number: kept in param_groups, noted
     optimizer.param_groups[0]["scales"] = [1.0, 2.0]           # a list, not a tuple: noted
     scheduler = torch.optim.lr_scheduler.ExponentialLR(optimizer, gamma=0.9)
-    with nbkit.record(model, optimizer, tmp_path / "run", criterion=rs.CRITERION, keyframe_every=5):
-        for step in range(10):
-            optimizer.zero_grad()
-            rs.step_fn(model, rs.Batches()(step)).backward()
-            optimizer.step()
-            scheduler.step()
+    rs.train_recorded(model, optimizer, tmp_path / "run", after_step=scheduler.step)
     run = nbkit.load(tmp_path / "run")
     assert "lr" in run.meta["settings"] and "label" not in run.meta["settings"]
     assert set(run.meta["settings_not_replayed"]) == {"label", "scales"}
@@ -123,11 +118,7 @@ def no_decay_groups(model):
 def test_a_factory_keeps_the_no_decay_group_and_gets_no_betas(tmp_path):
     model = rs.make_model()
     optimizer = torch.optim.AdamW(no_decay_groups(model), lr=1e-2, weight_decay=0.01)
-    with nbkit.record(model, optimizer, tmp_path / "run", criterion=rs.CRITERION, keyframe_every=5):
-        for step in range(10):
-            optimizer.zero_grad()
-            rs.step_fn(model, rs.Batches()(step)).backward()
-            optimizer.step()
+    rs.train_recorded(model, optimizer, tmp_path / "run")
     seen = []
 
     def sgd(groups):
