@@ -175,7 +175,8 @@ class RecordingReader:
 
     @property
     def lr(self) -> np.ndarray:
-        return self._rows_of(layout.LR) if self._committed else np.zeros((0, len(self.meta.get("param_groups", []))))
+        """(steps, param_groups) float64 learning rates: learning_rates() over every step."""
+        return self.learning_rates()
 
     @property
     def settings(self) -> dict[str, np.ndarray]:
