@@ -35,11 +35,6 @@ def rank_and_world() -> tuple[int, int]:
     return 0, 1
 
 
-def unwrap(model):
-    """The module inside a DistributedDataParallel wrapper (its names have no "module." prefix)."""
-    return model.module if isinstance(model, DistributedDataParallel) else model
-
-
 def distributed_meta(recording_rank: int = 0) -> dict:
     """Rank metadata for the recording; empty outside torch.distributed."""
     rank, world = rank_and_world()
@@ -189,4 +184,4 @@ def record_local_gradients(ddp_model, recorder, process_group=None) -> None:
         recorder.note(distributed=meta)
 
 
-__all__ = ["InactiveRecorder", "distributed_meta", "rank_and_world", "record_local_gradients", "unwrap"]
+__all__ = ["InactiveRecorder", "distributed_meta", "rank_and_world", "record_local_gradients"]

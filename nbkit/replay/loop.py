@@ -20,7 +20,6 @@ from tqdm.auto import tqdm
 
 from nbkit.errors import ReplayError
 from nbkit.measure.fingerprint import combine, describe_difference, matches
-from nbkit.record.wrappers import is_compiled
 from nbkit.recording import load
 from nbkit.replay import restore
 from nbkit.replay.fidelity import compare_recordings
@@ -111,9 +110,9 @@ def _run(plan, run, model, step_fn, batches, names, progress, threads_note, posi
         update_meta(paths[lane.name], replay=replay_meta)
         fidelity = info.get("fidelity")
         if fidelity and not fidelity["identical"]:
-            # a recording of a compiled model replayed on the eager one: inductor's kernels round differently
+            # replays run eagerly (replay() unwraps a compiled model): inductor's kernels round differently
             differs = ("differs: compiled vs eager numerics (recorded through torch.compile, replayed eagerly); "
-                       if meta.get("compiled") and not is_compiled(model) else "differs from its parent: ")
+                       if meta.get("compiled") else "differs from its parent: ")
             warnings.warn(f"nbkit replay {lane.name!r} {differs}first difference at step "
                           f"{fidelity['first_step']}: {fidelity['first_difference']}; largest loss difference "
                           f"{fidelity['loss']:.3g}, probe {fidelity['probes']:.3g}, setting "
