@@ -1,9 +1,10 @@
 """nbkit.lightning_callback: record a Lightning Trainer run (extra: nbkit[lightning]).
 
-Under automatic optimisation Lightning runs training_step inside optimizer.step(closure) and hands
-on_train_batch_end the loss divided by accumulate_grad_batches (lightning/pytorch/loops/optimization/
-automatic.py, ClosureResult). The step's loss recorded here is the undivided mean over the step's
-micro-batches: each value is multiplied back by accumulate_grad_batches. The metadata says so.
+Under automatic optimisation Lightning runs training_step inside optimizer.step(closure) and divides its
+loss by accumulate_grad_batches before backward (lightning/pytorch/loops/optimization/automatic.py,
+ClosureResult). The callback keeps each training_step's arguments (the loader's batch and batch_idx)
+and hands its undivided loss to the recorder: the step's loss is the mean over its micro-batches, and a
+replay runs the module's training_step again on the kept arguments.
 """
 from __future__ import annotations
 
@@ -18,19 +19,11 @@ from nbkit.errors import RecorderWarning
 from nbkit.integrations.shared import RecordingSession
 
 
-def batch_loss(outputs) -> float | None:
-    """The loss in what on_train_batch_end receives: a tensor, or a dict's "loss"; None without one."""
-    loss = outputs.get("loss") if isinstance(outputs, dict) else outputs
-    return float(loss.detach()) if hasattr(loss, "detach") else None
-
-
 class RecordingCallback(pl.Callback):
     """Attaches nbkit.record(pl_module, trainer.optimizers[0], path, **options) when training starts."""
 
     def __init__(self, path, **options):
         self.session = RecordingSession(path, options)
-        self._pending: list[float] = []
-        self._steps_seen = 0
 
     @property
     def recorder(self):
@@ -41,27 +34,35 @@ class RecordingCallback(pl.Callback):
             warnings.warn(f"nbkit.lightning_callback records one optimizer; the module has "
                           f"{len(trainer.optimizers)}: the first is recorded", RecorderWarning, stacklevel=2)
         recorder = self.session.start(pl_module, trainer.optimizers[0])
-        self._steps_seen = recorder.step
         if trainer.gradient_clip_val:
-            recorder.note(clip={"max_norm": float(trainer.gradient_clip_val),
+            # Lightning clips the optimizer's parameters (precision plugin: clip_gradients, main_params)
+            recorder.note(clip={"max_norm": float(trainer.gradient_clip_val), "over": "optimizer",
                                 "algorithm": str(trainer.gradient_clip_algorithm or "norm"),
                                 "by": "lightning Trainer gradient_clip_val"})
+        self._wrap_training_step(pl_module)
         recorder.note(loss_source=f"LightningModule.training_step, undivided: the mean over the step's micro-"
                                   f"batches (Lightning divides by accumulate_grad_batches="
                                   f"{trainer.accumulate_grad_batches} before backward)")
 
-    def on_train_batch_end(self, trainer, pl_module, outputs, batch, batch_idx):
-        loss = batch_loss(outputs)
-        if loss is not None:
-            self._pending.append(loss * trainer.accumulate_grad_batches)
-        recorder = self.recorder
-        if recorder is not None and recorder.step != self._steps_seen:     # an optimizer step just ran
-            self._steps_seen = recorder.step
-            if self._pending:
-                recorder.loss(sum(self._pending) / len(self._pending))
-            self._pending = []
+    def _wrap_training_step(self, pl_module):
+        """An instance attribute around the class's training_step: each call's arguments are kept and its
+        loss observed (removed at train end; a replay calls the class's method)."""
+        session, step = self.session, type(pl_module).training_step
+
+        def training_step(*args, **kwargs):
+            recorder = session.recorder
+            if recorder is not None and pl_module.training:
+                recorder.keep_training_step(args, kwargs)
+            output = step(pl_module, *args, **kwargs)
+            loss = output.get("loss") if isinstance(output, dict) else output
+            if recorder is not None and pl_module.training and hasattr(loss, "requires_grad"):
+                recorder.observe_loss(loss)
+            return output
+
+        pl_module.__dict__["training_step"] = training_step
 
     def on_train_end(self, trainer, pl_module):
+        pl_module.__dict__.pop("training_step", None)
         self.session.stop()
 
 

@@ -1,9 +1,10 @@
 """nbkit.transformers_callback: record a transformers.Trainer run (extra: nbkit[transformers]).
 
-The step's loss is the one the Trainer back-propagated: the sum over the step's micro-batches of what
-Trainer.training_step returns (compute_loss with label smoothing, divided by the accumulation count or
-normalised by num_items_in_batch, as the Trainer does), which is the loss the Trainer logs with
-logging_steps=1 (transformers 5, trainer.py: training_step, _maybe_log_save_evaluate).
+The step's loss is the one the Trainer back-propagated: each micro-batch's loss as Trainer.compute_loss
+returns it (label smoothing and num_items_in_batch included), times the scale its backward used (divided
+by the accumulation count where the Trainer divides), summed over the step's micro-batches: the value the
+Trainer logs with logging_steps=1 (transformers 5, trainer.py: training_step, compute_loss). Each
+micro-batch is kept as the model's forward received it, so a replay runs model(**kwargs) again.
 """
 from __future__ import annotations
 
@@ -36,7 +37,6 @@ class RecordingCallback(transformers.TrainerCallback):
 
     def __init__(self, path, **options):
         self.session = RecordingSession(path, options)
-        self._micro_batch_losses: list = []
 
     @property
     def recorder(self):
@@ -46,23 +46,24 @@ class RecordingCallback(transformers.TrainerCallback):
         trainer = find_trainer(inspect.currentframe())
         recorder = self.session.start(model, optimizer)
         if args.max_grad_norm and args.max_grad_norm > 0:
-            recorder.note(clip={"max_norm": float(args.max_grad_norm), "by": "transformers.Trainer max_grad_norm"})
-        recorder.note(loss_source="transformers.Trainer.training_step (summed over the step's micro-batches)")
-        step = trainer.training_step
-        losses = self._micro_batch_losses
+            # Trainer clips with accelerator.clip_grad_norm_(model.parameters(), max_grad_norm)
+            recorder.note(clip={"max_norm": float(args.max_grad_norm), "over": "model",
+                                "by": "transformers.Trainer max_grad_norm"})
+        recorder.note(loss_source="transformers.Trainer.compute_loss × its back-propagated scale, summed over "
+                                  "the step's micro-batches")
+        recorder.set_loss_rule("backpropagated")
+        compute = trainer.compute_loss
+        session = self.session
 
-        def training_step(*arguments, **keywords):
-            loss = step(*arguments, **keywords)
-            losses.append(loss.detach())
-            return loss
+        def compute_loss(model, inputs, *arguments, **keywords):
+            result = compute(model, inputs, *arguments, **keywords)
+            loss = result[0] if isinstance(result, tuple) else result
+            if session.recorder is not None and model.training:
+                session.recorder.observe_loss(loss)
+            return result
 
-        trainer.training_step = training_step         # an instance attribute: the class is not changed
-        self._restore = lambda: trainer.__dict__.pop("training_step", None)
-
-    def on_pre_optimizer_step(self, args, state, control, **kwargs):
-        if self._micro_batch_losses and self.recorder is not None:
-            self.recorder.loss(sum(float(loss) for loss in self._micro_batch_losses))
-        self._micro_batch_losses.clear()
+        trainer.compute_loss = compute_loss           # an instance attribute: the class is not changed
+        self._restore = lambda: trainer.__dict__.pop("compute_loss", None)
 
     def on_train_end(self, args, state, control, **kwargs):
         self._restore()

@@ -57,6 +57,18 @@ class InactiveRecorder:
     def loss(self, value) -> None:
         pass
 
+    def keep(self, batch) -> None:
+        pass
+
+    def keep_training_step(self, args, kwargs) -> None:
+        pass
+
+    def observe_loss(self, loss) -> None:
+        pass
+
+    def set_loss_rule(self, rule: str) -> None:
+        pass
+
     def flush(self, wait: bool = True) -> None:
         pass
 

@@ -8,6 +8,7 @@ from typing import Callable
 import torch
 
 from nbkit.errors import RecorderError
+from nbkit.store.layout import KEPT_BATCH_BUDGET_BYTES
 
 SAMPLE_SIZE = 4096      # sampled coordinates per tensor for shares and histograms (all when smaller)
 
@@ -30,7 +31,16 @@ class RecordOptions:
     keyframe_every: int = option(100, "keyframe stride (plus step 0 and the final state at close())")
     criterion: torch.nn.Module | None = option(None, "an nn.Module loss; its training-mode outputs give each "
                                                      "step's loss")
-    step_fn: Callable | None = option(None, "step_fn(model, batch) -> loss, used for curvature and noise estimates")
+    step_fn: Callable | None = option(None, "step_fn(model, micro_batch) -> loss: the trained loss of one kept "
+                                            "micro-batch {\"args\", \"kwargs\", \"targets\"}; checked against "
+                                            "the recorded gradient, then used for curvature, noise and replays")
+    keep_batches: bool | int = option(True, "store each step's micro-batches with their random and autocast state, "
+                                            "so replays need no loader: True keeps up to 1 GiB (then the newest "
+                                            "windows after keyframes), an int is the budget in bytes, False "
+                                            "keeps none")
+    clip: float | None = option(None, "the max norm your loop clips gradients to (clip_grad_norm_ over "
+                                      "model.parameters()), so replays re-apply it; the trainer callbacks read it "
+                                      "from the trainer")
     curvature_every: int = option(0, "sharpness every N steps (0 = off)")
     noise_every: int = option(0, "gradient noise scale every N steps (0 = off)")
     commit_seconds: float = option(5.0, "rows are committed to disk at least this often: a crash loses at most "
@@ -47,6 +57,13 @@ class RecordOptions:
             value = getattr(self, name)
             if not isinstance(value, int) or isinstance(value, bool) or value < low:
                 raise RecorderError(f"Invalid {name}: {value!r}; expected an integer >= {low}")
+        if not isinstance(self.keep_batches, (bool, int)) or (type(self.keep_batches) is int and self.keep_batches < 0):
+            raise RecorderError(f"Invalid keep_batches: {self.keep_batches!r}; expected True, False or a byte budget "
+                                "(an integer >= 0)")
+        if self.clip is not None and (isinstance(self.clip, bool) or not isinstance(self.clip, (int, float))
+                                      or not self.clip > 0):
+            raise RecorderError(f"Invalid clip: {self.clip!r}; expected the positive max norm your loop passes to "
+                                "torch.nn.utils.clip_grad_norm_, or None")
         if self.probes > SAMPLE_SIZE:
             raise RecorderError(f"Invalid probes: {self.probes}; at most {SAMPLE_SIZE} probe coordinates per tensor")
         if not (isinstance(self.commit_seconds, (int, float)) and not isinstance(self.commit_seconds, bool)
@@ -60,6 +77,13 @@ class RecordOptions:
                                 f"{type(self.criterion).__name__}; for a loss function, call rec.loss(loss) instead")
         if self.step_fn is not None and not callable(self.step_fn):
             raise RecorderError(f"step_fn must be callable as step_fn(model, batch) -> loss, got {self.step_fn!r}")
+
+    @property
+    def batch_budget(self) -> int:
+        """Bytes of kept batches the recording may hold (0: none are kept)."""
+        if self.keep_batches is True:
+            return KEPT_BATCH_BUDGET_BYTES
+        return 0 if self.keep_batches is False else int(self.keep_batches)
 
     @classmethod
     def from_keywords(cls, **keywords) -> "RecordOptions":
@@ -87,7 +111,7 @@ class RecordOptions:
     def from_meta(cls, meta: dict, **overrides) -> "RecordOptions":
         """The options a recording's metadata states (as_meta's inverse, where it can be: a criterion and
         a step_fn are not stored), with `overrides`."""
-        stored = {f.name: meta[f.name] for f in fields(cls) if f.name in meta and f.name != "criterion"}
+        stored = {f.name: meta[f.name] for f in fields(cls) if f.name in meta and f.name not in ("criterion", "clip")}
         if "commit_seconds" not in meta and "flush_seconds" in meta:     # recordings before the rename
             stored["commit_seconds"] = meta["flush_seconds"]
         stored["probes"] = meta["probes"]
@@ -96,8 +120,8 @@ class RecordOptions:
     def as_meta(self) -> dict:
         """The options as the recording's metadata states them (the criterion by its class name)."""
         # a function cannot be stored; resume and overwrite describe the set-up, not the run; probes is
-        # a top-level entry of the layout
+        # a top-level entry of the layout; clip is meta["clip"], the rule a replay re-applies
         meta = {f.name: getattr(self, f.name) for f in fields(self)
-                if f.name not in ("step_fn", "resume", "overwrite", "probes")}
+                if f.name not in ("step_fn", "resume", "overwrite", "probes", "clip")}
         meta["criterion"] = type(self.criterion).__name__ if self.criterion is not None else None
         return meta

@@ -22,13 +22,15 @@ from torch.utils.hooks import RemovableHandle
 from nbkit.analyze.model_copy import register_hook_owner
 from nbkit.errors import RecorderError
 from nbkit.measure.update_rules import adapter_for
-from nbkit.record import capture, lifetime, setup, wrappers
+from nbkit.record import capture, lifetime, setup, trained_loss, wrappers
+from nbkit.record.backward import BackwardWatch
 from nbkit.record.estimates import estimates_for
 from nbkit.record.options import RecordOptions
 from nbkit.record.pacing import Pacer
 from nbkit.record.reporting import ProblemReports
 from nbkit.record.settings import SettingsReader
-from nbkit.record.step_inputs import NO_LOSS, StepInputs
+from nbkit.record.step_inputs import LOSS_RULES, NO_LOSS, StepInputs, StepTaken
+from nbkit.store import batches as kept
 from nbkit.store import keyframes as kf
 from nbkit.store.layout import Row, setting_columns
 
@@ -41,11 +43,12 @@ class Recorder:
     Created by nbkit.record(...) (options: nbkit.record.options.RecordOptions). Use as a context
     manager or call close(). Like torch's hook handles, close() (alias remove()) is safe to call twice.
     extra_meta: entries added to the recording's metadata (replays name their parent); first_step:
-    the number of the first recorded step (a replay keeps its parent's numbering).
+    the number of the first recorded step (a replay keeps its parent's numbering); check_loss=False:
+    no trained-loss check (a replay's recorder: the replay rebuilt the loss itself).
     """
 
     def __init__(self, model, optimizer, path, options: RecordOptions | None = None, *,
-                 extra_meta: dict | None = None, first_step: int = 0, **keywords):
+                 extra_meta: dict | None = None, first_step: int = 0, check_loss: bool = True, **keywords):
         if keywords:                        # Recorder(model, optimizer, path, every=2, ...), as nbkit.record
             if options is not None:
                 raise RecorderError("Pass the recording options either as RecordOptions or as keywords, not both")
@@ -75,7 +78,14 @@ class Recorder:
         self._last_keyframe = None
         self._step_hooks: collections.OrderedDict = collections.OrderedDict()   # weakref-able, as torch's
         estimates = estimates_for(options)             # raises when they cannot work
-        self._inputs = StepInputs(keep_batch=estimates is not None)   # the estimates rebuild the batch
+        self._inputs = StepInputs(on_backward=self._backward_seen)
+        self.loss_rebuildable: bool | None = None      # the trained-loss check's latest verdict (None: not yet)
+        self._loss_checks: list = []
+        self._check_pending = check_loss               # check the rebuilt loss at the first step
+        self._params_before = None                     # the parameters before a check step's update
+        self._kept_layout = None                       # layout signature of the last kept step
+        self._layout_changes: list = []
+        self._keeping = options.batch_budget > 0
         self._blocks = None                 # nbkit.record.capture.Block list, made at the first step
         self.pacer = Pacer()                # when the statistics run (tests set its thresholds)
         self._tensors, orphans, frozen = setup.tensor_table(
@@ -87,6 +97,8 @@ class Recorder:
                                                     setup.probe_index(self._tensors, self.probes))
         self.step = self.step if next_step is None else next_step     # resume: steps continue
         self._settings = SettingsReader(setting_columns(self._writer.meta))   # the stored keys: fixed at the start
+        self._backward = BackwardWatch(self._tensors, self.report_problem)
+        self._backward.want_probes = check_loss
         try:
             self._take_keyframe(self.step)
         except Exception as exc:            # e.g. optimizer state a keyframe cannot hold: rows go on
@@ -148,6 +160,38 @@ class Recorder:
             self._inputs.without_loss = False
         else:
             self._inputs.reported_loss = value
+
+    def keep(self, batch) -> None:
+        """Plain loops: what the loader yielded for the current micro-batch (call it once per micro-batch,
+        before or after the model's forward). The kept micro-batch is then {"args", "kwargs"} the model
+        received and "targets": the parts of `batch` the model did not receive, which is what a
+        step_fn(model, micro_batch) for a loss function needs."""
+        if self.active:
+            try:
+                self._inputs.keep(batch)
+            except Exception as exc:
+                self._fail("rec.keep() failed", exc, stop=False)
+
+    def keep_training_step(self, args: tuple, kwargs: dict) -> None:
+        """The arguments of a training-step method (a LightningModule's training_step) that computes one
+        micro-batch's loss: kept as they are, and rebuilt as model.training_step(*args, **kwargs)."""
+        if self.active:
+            self._inputs.keep_call(args, kwargs)
+
+    def observe_loss(self, loss) -> None:
+        """The loss of the current micro-batch as the training code computed it, before its backward (the
+        trainer callbacks pass it): its back-propagated scale is measured on it, and it wins over the
+        criterion's output and the loss the model returns."""
+        if self.active and isinstance(loss, torch.Tensor) and torch.is_grad_enabled():
+            self._inputs.observe_loss(loss)
+
+    def set_loss_rule(self, rule: str) -> None:
+        """How a step's loss combines its micro-batches' losses: "mean" (the default) or "backpropagated"
+        (Σ scale × loss, the objective the backward passes summed); stored as meta["loss_rule"]."""
+        if rule not in LOSS_RULES:
+            raise RecorderError(f"Unknown loss rule {rule!r}; expected one of {LOSS_RULES}")
+        self._inputs.rule = rule
+        self.note(loss_rule=rule)
 
     def observe_criterion(self, inputs: tuple, output) -> None:
         """A criterion call the recorder's own hook did not see (a replay's criterion object): its
@@ -222,6 +266,7 @@ class Recorder:
         try:
             for handle in self._handles:
                 handle.remove()
+            self._backward.remove()
             if not self._failed:
                 self._finalize_rows(force=True)
                 self._take_keyframe(self.step)
@@ -306,6 +351,8 @@ class Recorder:
             self._check_writer()
             self.pacer.step_started()
             self._finalize_rows()
+            if self._check_pending:
+                self._params_before = [t.param.detach().clone() for t in self._tensors]
             if self._heavy(self.step):
                 self._copy_before()
             elif self._blocks:
@@ -325,8 +372,14 @@ class Recorder:
                 self.step += 1
             return
         try:
-            row = self._light_row()
+            taken = self._inputs.take()
+            row = self._light_row(taken)
+            row.grad_norm, row.clip_factor = self._backward.step_ended()
+            row.rng_digest = taken.rng_digest
             tasks = self._heavy_row(row) if self._heavy(self.step) else []
+            if self._check_pending:
+                self._check_trained_loss(taken)
+            self._keep(taken)
             for hook in list(self._step_hooks.values()):
                 hook(row)
             self._open_row, self._open_tasks = row, tasks
@@ -343,11 +396,82 @@ class Recorder:
     def _heavy(self, step: int) -> bool:
         return step % self.every == 0
 
-    def _light_row(self) -> Row:
-        loss, prints = self._inputs.take()
+    def _light_row(self, taken: StepTaken) -> Row:
         groups = self.optimizer.param_groups
         lrs = np.array([float(g["lr"]) for g in groups], dtype=np.float64)
-        return Row.light(self.step, loss, lrs, prints, len(self._tensors), self._settings.read(groups))
+        return Row.light(self.step, taken.loss, lrs, taken.fingerprints, len(self._tensors),
+                         self._settings.read(groups))
+
+    # --- kept batches and the trained loss ------------------------------------------------------
+    def _backward_seen(self):
+        if self.active:
+            self._backward.seen()
+
+    def _keep(self, taken: StepTaken):
+        """Hand the step's micro-batches to the writer (packed here: the loop may reuse its tensors)."""
+        self._check_writer_kept()
+        if not self._keeping or not taken.micro_batches:
+            return
+        micro = taken.micro_batches
+        step = kept.KeptStep(
+            self.step, [m.as_kept() for m in micro], {"cpu": taken.rng_state} if taken.rng_state is not None else {},
+            taken.autocast, [m.loss().scale if m.loss() is not None else None for m in micro],
+            "training_step" if any(m.call is not None for m in micro) else "forward", {})
+        try:
+            packed = kept.pack_kept_step(step)
+        except kept.UnstorableLeaf as exc:
+            self._reports.usage(f"{exc}; later steps with such a leaf are not kept either (replays of them need "
+                                "batches=)", key="unstorable leaf")
+            return
+        layout = kept.layout_signature(packed.spec)
+        if self._kept_layout is not None and layout != self._kept_layout:
+            self._layout_changes.append(self.step)
+            self.note(kept_layout_changes=self._layout_changes[-100:])
+            self._reports.usage(f"the kept batch's structure changed at step {self.step} (keys, dtypes, ranks or "
+                                "the number of micro-batches); each step's structure is stored with it and the "
+                                "rebuilt loss is checked again", key="kept layout changed")
+            self._check_pending = True           # the forward's signature changed: check the next step
+            self._backward.want_probes = True
+        self._kept_layout = layout
+        self._writer.put_kept(self.step, packed)
+
+    def _check_writer_kept(self):
+        if self._keeping and self._writer.kept_error is not None:
+            self._keeping = False
+            self._fail("keeping batches stopped", self._writer.kept_error, stop=False)
+
+    def _check_trained_loss(self, taken: StepTaken):
+        """Rebuild this step's loss and compare gradients (nbkit.record.trained_loss); note the verdict."""
+        self._check_pending, self._backward.want_probes = False, False
+        before, self._params_before = self._params_before, None
+        probes, self._backward.probes = self._backward.probes, None
+        kind, how = trained_loss.rebuild_kind(taken.micro_batches, self.criterion, self.step_fn)
+        result = {"step": self.step, "rebuild": kind, "how": how, "verdict": None}
+        if kind is not None and before is not None and probes is not None and taken.rng_state is not None:
+            try:
+                result.update(trained_loss.check_step(self.model, self._tensors, before, probes, taken, kind,
+                                                      self.criterion, self.step_fn, self.pause))
+            except Exception as exc:
+                result.update(verdict=trained_loss.DIFFERENT, error=f"{type(exc).__name__}: {exc}")
+        elif kind is not None:
+            result["why"] = "no backward pass of the recorded tensors was seen at this step"
+        self._loss_checks = (self._loss_checks + [result])[-20:]
+        verdict = result["verdict"]
+        self.loss_rebuildable = verdict in (trained_loss.EXACT, trained_loss.CLOSE)
+        self.note(trained_loss={"rebuildable": self.loss_rebuildable, "rebuild": kind if self.loss_rebuildable
+                                else None, "checks": self._loss_checks})
+        if verdict == trained_loss.DIFFERENT:
+            detail = result.get("error") or (f"recorded probe-gradient norm {result['recorded_norm']:.6g}, rebuilt "
+                                             f"{result['rebuilt_norm']:.6g}")
+            fix = ("fix step_fn so it returns the loss your loop back-propagates for one micro-batch"
+                   if kind == "step_fn" else "pass step_fn=step_fn(model, micro_batch) -> loss to nbkit.record")
+            self.report_problem(f"the loss rebuilt at step {self.step} from {how} does not give the trained "
+                                f"gradient ({detail}); sharpness and noise estimates store NaN and replays need "
+                                f"a step_fn: {fix}")
+        elif verdict is None and self.options.curvature_every + self.options.noise_every > 0:
+            self.report_problem(f"the trained loss cannot be rebuilt at step {self.step}: "
+                                f"{result.get('why') or how}; sharpness and noise estimates store NaN. Pass "
+                                "step_fn=step_fn(model, micro_batch) -> loss to nbkit.record")
 
     def _finalize_rows(self, force: bool = False):
         """Hand finished rows to the writer, in step order. The open row (the last step's, kept for a

@@ -3,6 +3,7 @@ metadata, the disk-space check and the folder (fresh, replaced or resumed)."""
 from __future__ import annotations
 
 import datetime
+import inspect
 import math
 import os
 import random
@@ -130,6 +131,9 @@ def recording_meta(model, optimizer, adapter: Adapter, tensors: list[RecordedTen
                   "numel": t.param.numel(), "group": t.group, "layer": layer_of(t.name), "probes": t.probes,
                   "sample_size": len(t.index)} for t in tensors],
         probes=options.probes, options=options.as_meta(), orphans=orphans, frozen=frozen, compiled=compiled,
+        batch_budget_bytes=options.batch_budget, criterion_spec=criterion_spec(options.criterion),
+        **({"clip": {"max_norm": float(options.clip), "over": "model", "by": "nbkit.record(clip=...)"}}
+           if options.clip is not None else {}),
         settings=[c.name for c in columns], settings_not_replayed=not_replayed,
         created=datetime.datetime.now(datetime.timezone.utc).isoformat(),
         torch_version=torch.__version__, numpy_version=np.__version__, python_version=sys.version.split()[0],
@@ -138,6 +142,25 @@ def recording_meta(model, optimizer, adapter: Adapter, tensors: list[RecordedTen
                     "exact": EXACT_QUANTITIES, "sampled": SAMPLED_QUANTITIES,
                     "note": f"sampled quantities use a fixed seeded sample of {SAMPLE_SIZE} coordinates per "
                             "tensor (all coordinates of smaller tensors)"})
+
+
+def criterion_spec(criterion) -> dict | None:
+    """How a replay makes the same criterion again: a torch.nn loss class and its constructor arguments
+    (read back from the same-named attributes; tensors such as a class weight as lists); None for a
+    criterion of another kind (a replay then needs step_fn)."""
+    if criterion is None or not type(criterion).__module__.startswith("torch.nn.modules.loss"):
+        return None
+    arguments = {}
+    for name in inspect.signature(type(criterion).__init__).parameters:
+        if name in ("self", "size_average", "reduce") or not hasattr(criterion, name):
+            continue
+        value = getattr(criterion, name)
+        if isinstance(value, torch.Tensor):
+            value = {"tensor": value.tolist(), "dtype": str(value.dtype).removeprefix("torch.")}
+        elif not (value is None or isinstance(value, (bool, int, float, str))):
+            return None
+        arguments[name] = value
+    return {"class": type(criterion).__name__, "arguments": arguments}
 
 
 def keyframe_state(step: int, model, optimizer, tensors: list[RecordedTensor]) -> dict:

@@ -12,6 +12,7 @@ from nbkit.errors import ReplayError
 from nbkit.measure.fingerprint import fingerprint
 from nbkit.record.options import RecordOptions
 from nbkit.record.recorder import Recorder
+from nbkit.record.step_inputs import rng_digest
 from nbkit.replay import restore
 from nbkit.store.layout import OPTIMIZER_ONLY_LAYER
 
@@ -35,6 +36,7 @@ class Lane:
     rewatched: bool = False          # it had to be re-installed: it stays
     handles: list = field(default_factory=list)
     mismatches: list = field(default_factory=list)
+    rng_digest: float | None = None  # CRC32 of the CPU random state at this step's first training forward
 
 
 def optimizer_only_tensors(lane, meta) -> dict:
@@ -67,6 +69,8 @@ def make_lane(name, factory, model, meta, model_state, optimizer_state, extra_pa
 
     def collect(module, args, kwargs):
         if module.training and torch.is_grad_enabled():
+            if lane.rng_digest is None:
+                lane.rng_digest = rng_digest(torch.get_rng_state())
             lane.prints.append(fingerprint(args, kwargs))
 
     lane.handles.append(copy.register_forward_pre_hook(collect, with_kwargs=True))
@@ -119,7 +123,12 @@ def lane_recorder(lane, plan, meta, threads_note) -> Recorder:
               "threads": torch.get_num_threads(), "threads_note": threads_note}
     # strict: a replay whose recording fails stops with the recorder's error instead of leaving a
     # silently truncated recording behind
+    # a replay keeps no batches of its own: it is replayed from its parent's
     options = RecordOptions.from_meta(meta, strict=True, overwrite=True, resume=False, expected_steps=None,
-                                      curvature_every=0, noise_every=0)
-    return Recorder(lane.model, lane.optimizer, plan.targets[lane.name], options,
-                    extra_meta={"replay": parent, "criterion": meta.get("criterion")}, first_step=plan.start)
+                                      curvature_every=0, noise_every=0, keep_batches=False)
+    extra = {"replay": parent, "criterion": meta.get("criterion"), "criterion_spec": meta.get("criterion_spec"),
+             "loss_source": meta.get("loss_source"), **({"clip": meta["clip"]} if meta.get("clip") else {})}
+    recorder = Recorder(lane.model, lane.optimizer, plan.targets[lane.name], options, extra_meta=extra,
+                        first_step=plan.start, check_loss=False)
+    recorder.set_loss_rule(meta.get("loss_rule", "mean"))
+    return recorder

@@ -20,7 +20,9 @@ from tqdm.auto import tqdm
 
 from nbkit.errors import ReplayError
 from nbkit.measure.fingerprint import combine, describe_difference, matches
+from nbkit.record.trained_loss import autocast_context, clip_gradients, make_criterion, micro_batch_loss, scaled
 from nbkit.recording import load
+from nbkit.store.batches import KeptStep
 from nbkit.replay import restore
 from nbkit.replay.fidelity import compare_recordings
 from nbkit.replay.lanes import detach, lane_recorder, make_lane, optimizer_only_tensors
@@ -60,7 +62,12 @@ def _set_threads(recorded) -> str:
 def _run(plan, run, model, step_fn, batches, names, progress, threads_note, position=None) -> dict:
     meta = run.meta
     state = run.keyframe(plan.keyframe)
-    fetch = fetcher(batches, plan.keyframe)           # reaching the keyframe: batches are only fetched
+    if plan.kept:                                     # the recording's own kept steps
+        fetch = run.kept_step
+        step_fn = step_fn or micro_batch_loss(plan.rebuild, make_criterion(meta["criterion_spec"])
+                                              if plan.rebuild == "criterion" else None)
+    else:
+        fetch = fetcher(batches, plan.keyframe)       # reaching the keyframe: batches are only fetched
     restore.set_rng(restore.rng_from_keyframe(state["rng"]))
     recorded = RecordedSteps(run, plan.keyframe, plan.start + plan.steps)
     bar = _progress(progress, plan.start + plan.steps - plan.keyframe, names, position)
@@ -135,6 +142,9 @@ class RecordedSteps:
         keep = [s for s, c in enumerate(columns) if c.key != "lr"]     # lr comes from self.lr (old recordings too)
         self.setting_columns = [columns[s] for s in keep]
         self.settings = run.setting_values(rows=rows)[:, :, keep]      # (steps, groups, settings)
+        self.rng_digests = run.rng_digests[rows]
+        self.clip_factor = run.clip_factor[rows]
+        self.clip = run.meta.get("clip")
         self.first = first
 
     def row(self, step):
@@ -186,6 +196,7 @@ def _loop(lanes, recorded, step_fn, fetch, first, end, before_step, strict, bar)
                 restore.set_rng(lane.rng)
             _step(lane, step_fn, batch, before_step, step, recorded, row)
             _check_fingerprint(lane, recorded.fingerprints[row], step, strict)
+            _check_random_state(lane, recorded.rng_digests[row], step, strict)
             if several:
                 lane.rng = restore.get_rng()
         if bar is not None:
@@ -212,38 +223,66 @@ def _needs_backward(loss) -> bool:
 
 def _step(lane, step_fn, batch, before_step, step, recorded, row):
     model, optimizer = lane.model, lane.optimizer
-    lane.prints, lane.target_prints, lane.criterion_now = [], [], False
+    lane.prints, lane.target_prints, lane.criterion_now, lane.rng_digest = [], [], False, None
     lane.active = True
+    kept = isinstance(batch, KeptStep)
     try:
-        if lane.closure:
-            def closure():
-                optimizer.zero_grad()
-                loss = step_fn(model, batch)
-                if _needs_backward(loss):
-                    loss.backward()
-                return loss
+        def gradients():
+            optimizer.zero_grad()
+            return _kept_gradients(lane, step_fn, batch) if kept else _batch_gradients(lane, step_fn, batch)
 
-            if before_step is not None:
-                before_step(model, optimizer, step)
-            if lane.recorded:
-                _apply_settings(optimizer, recorded, row)
-            optimizer.step(closure)
+        if lane.closure:                    # LBFGS: before_step once, then step(closure)
+            _before_update(lane, before_step, step, recorded, row)
+            optimizer.step(gradients)
             return
-        optimizer.zero_grad()
-        loss = step_fn(model, batch)
-        if _needs_backward(loss):
-            loss.backward()
-        if not lane.criterion_now and lane.watch is None and lane.rewatch is not None:
-            lane.rewatch()                  # the criterion object found earlier was not used this step
-        if lane.recorder is not None and not lane.criterion_now:
-            lane.recorder.loss(loss)        # no criterion call seen: the step_fn's loss is the step's loss
-        if before_step is not None:
-            before_step(model, optimizer, step)
-        if lane.recorded:
-            _apply_settings(optimizer, recorded, row)
+        gradients()
+        _before_update(lane, before_step, step, recorded, row)
         optimizer.step()
     finally:
         lane.active = False
+
+
+def _batch_gradients(lane, step_fn, batch):
+    """A user's batch: loss = step_fn(model, batch), one backward (unless step_fn ran its own)."""
+    loss = step_fn(lane.model, batch)
+    if _needs_backward(loss):
+        loss.backward()
+    if not lane.criterion_now and lane.watch is None and lane.rewatch is not None:
+        lane.rewatch()                      # the criterion object found earlier was not used this step
+    if lane.recorder is not None and not lane.criterion_now and not lane.closure:
+        lane.recorder.loss(loss)            # no criterion call seen: the step_fn's loss is the step's loss
+    return loss
+
+
+def _kept_gradients(lane, loss_fn, kept: KeptStep):
+    """A kept step: the recorded random state, then per micro-batch its loss under the recorded autocast
+    state, back-propagated with its recorded scale (accumulation as the training loop did it)."""
+    if "cpu" in kept.rng:
+        torch.set_rng_state(kept.rng["cpu"])
+    rebuild = getattr(loss_fn, "rebuild", None)
+    total = 0.0
+    for micro_batch, scale in zip(kept.micro_batches, kept.scales):
+        if lane.recorder is not None and rebuild == "training_step":
+            lane.recorder.keep_training_step(micro_batch["args"], micro_batch["kwargs"])
+        with autocast_context(kept.autocast):
+            loss = loss_fn(lane.model, micro_batch)
+        if lane.recorder is not None and rebuild in ("training_step", None):
+            lane.recorder.observe_loss(loss)            # the step_fn's loss counts as the trained loss
+        if _needs_backward(loss):
+            scaled(loss, scale).backward()
+        total = total + (loss.detach() if isinstance(loss, torch.Tensor) else loss)
+    return total
+
+
+def _before_update(lane, before_step, step, recorded, row):
+    """Between the gradients and optimizer.step(): the user's before_step, or else the recorded clipping;
+    then, for the recorded optimizer, the recorded settings of the step."""
+    if before_step is not None:
+        before_step(lane.model, lane.optimizer, step)
+    else:
+        clip_gradients(lane.model, lane.optimizer, recorded.clip, float(recorded.clip_factor[row]))
+    if lane.recorded:
+        _apply_settings(lane.optimizer, recorded, row)
 
 
 def _apply_settings(optimizer, recorded, row):
@@ -255,6 +294,22 @@ def _apply_settings(optimizer, recorded, row):
             group["lr"] = float(lr)
     if recorded.setting_columns:
         restore.apply_settings(optimizer.param_groups, recorded.setting_columns, recorded.settings[row])
+
+
+def _check_random_state(lane, recorded, step, strict):
+    """The CPU random state at the step's first training forward must be the recorded one, or dropout
+    draws other masks."""
+    if lane.rng_digest is None or not np.isfinite(recorded) or lane.rng_digest == recorded:
+        return
+    message = (f"Replay {lane.name!r}: the random state at step {step}'s first training forward differs from the "
+               "recording (its dropout masks and other random draws would differ). Something drew from torch's "
+               "global generator that the recorded run did not (a data pipeline, step_fn or before_step); give "
+               "it its own torch.Generator. Pass strict=False to continue with a warning.")
+    if strict:
+        raise ReplayError(message)
+    if not lane.mismatches:
+        warnings.warn(message, stacklevel=4)
+    lane.mismatches.append(int(step))
 
 
 def _check_fingerprint(lane, recorded, step, strict):

@@ -32,6 +32,8 @@ class Plan:
     before_step: object = None
     strict: bool = True
     record: bool = True
+    kept: bool = False         # the batches come from the recording (no `batches` given)
+    rebuild: str | None = None     # how the loss is rebuilt without a step_fn (nbkit.record.trained_loss)
 
 
 def make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before_step, workers, strict,
@@ -53,12 +55,18 @@ def make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before
     keyframes = [k for k in run.keyframes if k <= start]
     if not keyframes:
         raise ReplayError(f"No keyframe at or before step {start} (keyframes: {run.keyframes}); pick a later start")
+    keyframe, kept = max(keyframes), batches is None
+    if kept:
+        keyframe = kept_keyframe(run, start, start + steps - 1)
     if not isinstance(model, torch.nn.Module):
         raise ReplayError(f"model must be a torch.nn.Module, got {type(model).__name__}")
     restore.check_model(run.meta, model)
-    if not callable(step_fn):
+    rebuild = None
+    if step_fn is None:
+        rebuild = recorded_rebuild(run, kept)
+    elif not callable(step_fn):
         raise ReplayError(f"step_fn must be callable as step_fn(model, batch) -> loss, got {step_fn!r}")
-    if not callable(batches) and not hasattr(batches, "__iter__"):
+    if not kept and not callable(batches) and not hasattr(batches, "__iter__"):
         raise ReplayError(f"batches must be an iterable of the run's batches from step 0 or a callable "
                           f"batches(step), got {type(batches).__name__}")
     if before_step is not None and not callable(before_step):
@@ -80,8 +88,44 @@ def make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before
     if record:
         for name, target in targets.items():
             check_target(Path(target), run.path)
-    return Plan(str(run.path), start, int(steps), max(keyframes), dict(factories), targets, before_step,
-                bool(strict), bool(record))
+    return Plan(str(run.path), start, int(steps), keyframe, dict(factories), targets, before_step,
+                bool(strict), bool(record), kept, rebuild)
+
+
+def kept_keyframe(run, first: int, last: int) -> int:
+    """The keyframe a replay of steps first..last on the kept batches starts from: the latest one whose
+    replayable window (nbkit.store.batches.windows) covers them."""
+    for start, end in sorted(run.replayable_windows, reverse=True):
+        if start <= first and last <= end:
+            return start
+    windows = ", ".join(f"{a}-{b}" for a, b in run.replayable_windows) or "none"
+    why = ("it was recorded with keep_batches=False" if run.meta.get("keep_batches") is False
+           else f"its replayable windows (kept steps from a keyframe on) are: {windows}")
+    raise ReplayError(f"Steps {first}-{last} of {str(run.path)!r} cannot be replayed without `batches`: {why}. "
+                      "Replay within a window, or pass batches= (" + DATALOADER_ADVICE + ")")
+
+
+def recorded_rebuild(run, kept: bool) -> str:
+    """How a replay without step_fn rebuilds the loss: what the recording verified (meta["trained_loss"])."""
+    checked = run.meta.get("trained_loss") or {}
+    kind = checked.get("rebuild") if checked.get("rebuildable") else None
+    if kind is None:
+        last = (checked.get("checks") or [{}])[-1]
+        why = last.get("how") if last.get("verdict") is None else (
+            f"the loss rebuilt from {last.get('how')} did not give the recorded gradient")
+        raise ReplayError(f"This recording's trained loss is not rebuildable ({why or 'it was not checked'}); "
+                          "pass step_fn=step_fn(model, micro_batch) -> loss (with kept batches it receives one "
+                          "micro-batch {'args', 'kwargs', 'targets'} at a time)")
+    if kind == "step_fn":
+        raise ReplayError("The recording verified the loss of the step_fn given to nbkit.record; functions are not "
+                          "stored, so pass the same step_fn= to nbkit.replay")
+    if kind == "criterion" and run.meta.get("criterion_spec") is None:
+        raise ReplayError(f"The recording's criterion ({run.meta.get('criterion')}) is not a torch.nn loss a replay "
+                          "can make again; pass step_fn=step_fn(model, micro_batch) -> loss")
+    if not kept:
+        raise ReplayError("Without step_fn a replay rebuilds the loss from kept micro-batches; with batches= also "
+                          "pass step_fn=step_fn(model, batch) -> loss")
+    return kind
 
 
 def check_target(path: Path, parent: Path) -> None:

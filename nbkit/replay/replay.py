@@ -10,7 +10,7 @@ from nbkit.replay.plan import make_plan
 from nbkit.replay.workers import in_workers
 
 
-def replay(run, model, step_fn, batches, optimizers=None, start=None, steps=None, to=None, before_step=None,
+def replay(run, model, step_fn=None, batches=None, optimizers=None, start=None, steps=None, to=None, before_step=None,
            workers=1, progress=True, strict=True) -> dict:
     """Replay `run` from the keyframe at or before `start` on the same batches; see DESIGN.md §3.
 

@@ -89,6 +89,9 @@ class RowArrays:
         a[layout.LR][start:stop] = np.stack([r.lr for r in rows])
         a[layout.HEAVY][start:stop] = np.array([r.heavy for r in rows])
         a[layout.FINGERPRINT][start:stop] = np.stack([r.fingerprint for r in rows])
+        if layout.GRAD_NORM in a:
+            for name in layout.BACKWARD_ARRAYS:
+                a[name][start:stop] = np.array([getattr(r, name) for r in rows], dtype=np.float64)
         if layout.SETTINGS in a:                   # recordings that store settings (meta["settings"])
             array = a[layout.SETTINGS]
             missing = np.full(array.shape[1:], np.nan)

@@ -7,6 +7,10 @@ all take them from here. A recording directory holds
     committed.json        COMMITTED_FILE: rows safely on disk, published after the data
     keyframes/            KEYFRAME_DIR: <step>.safetensors + <step>.json
     step, loss, lr, heavy, fingerprint          one row per optimizer step (STEP_CHUNK rows a chunk)
+    grad_norm, clip_factor, rng_digest          per step (meta["backward_stats"]): the pre-clip gradient
+                          norm, post-clip ÷ pre-clip norm, CRC32 of the CPU RNG state at the step's first
+                          training forward
+    batches/              kept steps (nbkit.store.batches): <step>.safetensors each
     settings              (steps, groups, settings) float64: every numeric group setting, in
                           meta["settings"] order (tuples split: betas.0, betas.1; setting_name)
     q/<quantity>          (steps, tensors) float32 per-tensor series
@@ -41,6 +45,9 @@ OPTIMIZER_ONLY_LAYER = "(optimizer only)"  # the layer of tensors the optimizer 
 HISTOGRAMS = ("grad", "update", "gain")     # the histogram arrays, in the order of Row.histograms
 STEP, LOSS, LR, HEAVY, FINGERPRINT = "step", "loss", "lr", "heavy", "fingerprint"
 SETTINGS = "settings"
+GRAD_NORM, CLIP_FACTOR, RNG_DIGEST = "grad_norm", "clip_factor", "rng_digest"
+BACKWARD_ARRAYS = (GRAD_NORM, CLIP_FACTOR, RNG_DIGEST)
+KEPT_BATCH_BUDGET_BYTES = 1 << 30   # kept batches above this: only the newest windows stay
 PROBE_INDEX = "probe_index"
 OVERVIEW_LOSS = "overview/loss"
 LOCAL_STEP, LOCAL_VALUES = "local/step", "local/values"
@@ -113,6 +120,9 @@ def row_arrays(meta: dict, groups: int) -> dict[str, ArraySpec]:
         HEAVY: ArraySpec((), "bool", STEP_CHUNK, False),
         FINGERPRINT: ArraySpec((2, FINGERPRINT_WIDTH), "float64", STEP_CHUNK, np.nan),
     }
+    if meta.get("backward_stats"):
+        for name in BACKWARD_ARRAYS:
+            specs[name] = ArraySpec((), "float64", STEP_CHUNK, np.nan)
     if meta.get("settings"):
         specs[SETTINGS] = ArraySpec((groups, len(meta["settings"])), "float64", STEP_CHUNK, np.nan)
     for q in meta["quantities"]:
@@ -167,6 +177,9 @@ class Row:
     probes: dict = field(default_factory=dict)   # probe field -> (T, probes) float32
     heavy: bool = False
     settings: np.ndarray | None = None  # (G, S) float64 in meta["settings"] order; NaN: not a number now
+    grad_norm: float = float("nan")     # pre-clip gradient norm over the recorded tensors
+    clip_factor: float = float("nan")   # post-clip ÷ pre-clip gradient norm (1: not clipped)
+    rng_digest: float = float("nan")    # CRC32 of the CPU RNG state at the step's first training forward
 
     @classmethod
     def light(cls, step: int, loss: float, lr: np.ndarray, fingerprint: np.ndarray, tensors: int,
@@ -205,7 +218,7 @@ def new_meta(*, model_class: str, optimizer: dict, gain_applicable: bool, param_
         "histogram_bins": HISTOGRAM_BINS, "histogram_low": dict(HISTOGRAM_LOW),
         "keyframe_retention": {"budget_bytes": KEYFRAME_BUDGET_BYTES, "kept_recent": KEYFRAMES_KEPT_RECENT,
                                "thinned": []},
-        "closed": False,
+        "backward_stats": True, "closed": False,
     }
     meta.update(options)
     meta.update(extra)

@@ -13,6 +13,7 @@ import numpy as np
 import zarr
 
 from nbkit.errors import RecordingError, RecordingWarning
+from nbkit.store import batches as kept
 from nbkit.store import keyframes as kf
 from nbkit.store import layout
 from nbkit.store.files import read_json
@@ -277,6 +278,50 @@ class RecordingReader:
     def keyframe(self, step: int) -> dict:
         """Everything stored at a keyframe: model, optimizer, rng, and orphan tensors."""
         return kf.read_keyframe(self.path, step)
+
+    # --- the backward pass and kept batches -------------------------------------------------------
+    def _backward_array(self, name: str) -> np.ndarray:
+        if not self.meta.get("backward_stats") or self._committed == 0:
+            return np.full(self._committed, np.nan)          # recordings before these were stored
+        return self._rows_of(name)
+
+    @property
+    def grad_norm(self) -> np.ndarray:
+        """(steps,) float64 gradient norm over the recorded tensors before clipping (NaN: not seen)."""
+        return self._backward_array(layout.GRAD_NORM)
+
+    @property
+    def clip_factor(self) -> np.ndarray:
+        """(steps,) float64 post-clip ÷ pre-clip gradient norm: 1 where nothing clipped, NaN: unknown."""
+        return self._backward_array(layout.CLIP_FACTOR)
+
+    @property
+    def rng_digests(self) -> np.ndarray:
+        """(steps,) CRC32 of the CPU random state at each step's first training forward (NaN: none)."""
+        return self._backward_array(layout.RNG_DIGEST)
+
+    @property
+    def kept_steps(self) -> list[int]:
+        """The steps whose batches are kept in the recording (record(keep_batches=...))."""
+        return kept.kept_steps(self.path)
+
+    @property
+    def replayable_windows(self) -> list[tuple[int, int]]:
+        """(first, last) step ranges a replay can run without `batches`: each starts at a keyframe and
+        every step in it is kept."""
+        return kept.windows(self.kept_steps, self.keyframes)
+
+    def batch(self, step: int) -> list[dict]:
+        """The kept step: a list of micro-batches {"args", "kwargs", "targets"}, as training saw them."""
+        return self.kept_step(step).micro_batches
+
+    def kept_step(self, step: int):
+        """Everything kept of one step (nbkit.store.batches.KeptStep): micro-batches, the random and
+        autocast state at its first forward, and each micro-batch's back-propagated loss scale."""
+        if self.meta.get("keep_batches") is False:
+            raise RecordingError(f"{str(self.path)!r} was recorded with keep_batches=False: no batch is kept; "
+                                 "record with keep_batches=True (the default) to replay without a loader")
+        return kept.read_kept_step(self.path, int(step))
 
     def state_at(self, step: int):
         """(model_state_dict, optimizer_state_dict) at keyframe `step`, ready for load_state_dict."""

@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 
+from nbkit.store import batches as kept
 from nbkit.store import keyframes as kf
 from nbkit.store.arrays import RowArrays
 from nbkit.store.files import write_json_atomic
@@ -39,6 +40,10 @@ class RecordingWriter:
         self.commit_seconds = commit_seconds
         self.error: BaseException | None = None
         self.dropped_rows = 0
+        self.kept_error: BaseException | None = None     # keeping batches failed (disk full): keeping stops
+        self.batch_budget = int(meta.get("batch_budget_bytes", 0))
+        self._kept_bytes = kept.kept_bytes(self.path) if resume is not None else 0
+        self._kept_dropped = 0
         self.max_write_seconds = 0.0
         self._probe_index = probe_index
         self._queue: queue.Queue = queue.Queue()
@@ -70,6 +75,11 @@ class RecordingWriter:
     def put_local(self, step: int, values: np.ndarray) -> None:
         """Per-rank local gradient statistics of one step (nbkit.record.distributed)."""
         self._queue.put(("local", (step, values)))
+
+    def put_kept(self, step: int, packed) -> None:
+        """One kept step (nbkit.store.batches.pack_kept_step), written off the training thread."""
+        if self.kept_error is None:
+            self._queue.put(("kept", (step, packed)))
 
     def put_keyframe(self, keyframe: kf.Keyframe) -> None:
         self._queue.put(("keyframe", keyframe))
@@ -118,6 +128,9 @@ class RecordingWriter:
             self._dequeued_bytes += size
             if self.error is None:
                 self._buffer.append(item)
+        elif kind == "kept":
+            if self.error is None and self.kept_error is None:
+                self._write_kept(*item)
         elif kind == "keyframe":
             if self.error is None:
                 self._write_keyframe(item)
@@ -135,6 +148,7 @@ class RecordingWriter:
             self._last_commit = time.monotonic()
         if kind == "close":
             if self.error is None:
+                self._note_kept()
                 self.meta["closed"] = True
                 write_json_atomic(self.path / META_FILE, self.meta)
                 self._publish(closed=True)
@@ -190,3 +204,39 @@ class RecordingWriter:
         if thinned:
             retention["thinned"] = sorted(retention["thinned"] + thinned)
             write_json_atomic(self.path / META_FILE, self.meta)
+
+    # --- kept batches ---------------------------------------------------------------------------
+    def _write_kept(self, step: int, packed) -> None:
+        try:
+            self._kept_bytes += kept.write_packed_step(self.path, step, packed)
+        except OSError as exc:                 # disk full: stop keeping, never stop the recording
+            self.kept_error = exc
+            self._note_kept(stopped=f"{type(exc).__name__}: {exc}")
+            return
+        if self._kept_bytes > self.batch_budget:
+            self._drop_oldest_window()
+
+    def _drop_oldest_window(self) -> None:
+        """Over the budget: delete the oldest kept steps up to the next keyframe after them, so what
+        stays still starts at a keyframe (DESIGN.md §5); repeat while over."""
+        steps = kept.kept_steps(self.path)
+        keyframes = kf.list_keyframes(self.path)
+        while self._kept_bytes > self.batch_budget and len(steps) > 1:
+            cut = next((k for k in keyframes if k > steps[0]), steps[-1])
+            doomed = [s for s in steps if s < cut] or steps[:1]
+            self._kept_bytes -= sum(kept.kept_step_path(self.path, s).stat().st_size for s in doomed)
+            kept.delete_kept_steps(self.path, doomed)
+            self._kept_dropped += len(doomed)
+            steps = steps[len(doomed):]
+        self._note_kept()
+
+    def _note_kept(self, stopped: str | None = None) -> None:
+        summary = dict(self.meta.get("kept_batches") or {})
+        steps = kept.kept_steps(self.path)
+        summary.update(budget_bytes=self.batch_budget, bytes=self._kept_bytes, steps=len(steps),
+                       dropped=self._kept_dropped,
+                       windows=[list(w) for w in kept.windows(steps, kf.list_keyframes(self.path))])
+        if stopped:
+            summary["stopped"] = stopped
+        self.meta["kept_batches"] = summary
+        write_json_atomic(self.path / META_FILE, self.meta)

@@ -1,0 +1,343 @@
+"""Kept steps: what one optimizer step fed the model, so a replay can run it without the data loader.
+
+A kept step is a list of micro-batches ({"args", "kwargs", "targets"}, nested tuples, lists and dicts
+of tensors, numpy arrays and plain scalars) plus RNG states, the autocast settings, one loss scale per
+micro-batch, a source and extra notes. The tree is split into a JSON spec and one flat buffer per
+dtype; each step is one safetensors file, with the JSON in its metadata. Reading never runs code from
+the files: safetensors holds raw tensors and the spec is plain JSON, decoded by the rules below.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+import re
+import tempfile
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import torch
+from safetensors import SafetensorError, safe_open
+from safetensors.torch import save_file
+
+from nbkit.errors import RecordingError
+
+BATCH_DIR = "batches"
+KEPT_FORMAT = 1
+_METADATA_KEY = "nbkit.kept_step"   # the one metadata entry: safetensors metadata is str -> str only
+
+# The leaf dtypes a kept step holds, and the dtype of the buffer that stores each. bfloat16 is kept
+# as its raw uint16 bits so readers without bfloat16 (numpy) can still load the file; bool as uint8
+# so every buffer is a plain number type.
+_STORED = {torch.float16: torch.float16, torch.float32: torch.float32, torch.float64: torch.float64,
+           torch.bfloat16: torch.uint16, torch.bool: torch.uint8, torch.int8: torch.int8,
+           torch.int16: torch.int16, torch.int32: torch.int32, torch.int64: torch.int64,
+           torch.uint8: torch.uint8}
+_DTYPES = {str(d).removeprefix("torch."): d for d in _STORED}
+_NONFINITE = {"nan", "inf", "-inf"}   # JSON has no NaN or infinity: these floats are kept as strings
+
+
+class UnstorableLeaf(ValueError):
+    """A leaf of a kept step that cannot be stored without pickle; the step is not kept."""
+
+    def __init__(self, path: str, what: str):
+        self.path, self.what = path, what
+        super().__init__(f"cannot keep the batch leaf at {path or 'the top level'} ({what}); this step is not kept")
+
+
+def encode(tree) -> tuple[dict, dict[str, torch.Tensor]]:
+    """Split `tree` into a JSON-able spec and one flat 1-D buffer per dtype tag (fresh copies).
+
+    A dense tensor (contiguous, channels_last, any permutation of a contiguous layout) is stored in its
+    memory order and decodes with the same strides. A tensor that is not dense (an expanded or sliced
+    view, a numpy array with negative strides) is stored compacted and decodes contiguous. Mappings
+    (OrderedDict, BatchEncoding) decode as plain dicts and tuple subclasses (namedtuples) as plain
+    tuples; their type names stay in the spec. Raises UnstorableLeaf for anything else.
+    """
+    pieces = _Pieces()
+    spec = _encode(tree, "", pieces)
+    return spec, pieces.join()
+
+
+class _Pieces:
+    """The flattened leaves of each dtype tag, in order, and where the next one starts."""
+
+    def __init__(self):
+        self.parts: dict[str, list[torch.Tensor]] = {}
+        self.ends: dict[str, int] = {}
+
+    def add(self, tag: str, flat: torch.Tensor) -> int:
+        offset = self.ends.get(tag, 0)
+        self.parts.setdefault(tag, []).append(flat)
+        self.ends[tag] = offset + flat.numel()
+        return offset
+
+    def join(self) -> dict[str, torch.Tensor]:
+        # torch.cat always allocates: the buffers are copies the training loop cannot change
+        return {tag: torch.cat(parts).view(_STORED[_DTYPES[tag]]) for tag, parts in self.parts.items()}
+
+
+def _encode(value, path: str, pieces: _Pieces) -> dict:
+    if isinstance(value, torch.Tensor):
+        return _tensor(value, path, pieces, "torch.Tensor")
+    if isinstance(value, (np.ndarray, np.generic)):
+        return _ndarray(value, path, pieces)
+    if isinstance(value, Mapping):
+        keys = [_scalar(k, f"{path}[{k!r}]", key=True) for k in value]
+        node = {"kind": "dict", "keys": keys,
+                "values": [_encode(v, f"{path}[{k!r}]", pieces) for k, v in value.items()]}
+        return node if type(value) is dict else {**node, "type": type(value).__name__}
+    if isinstance(value, (tuple, list)):
+        node = {"kind": "tuple" if isinstance(value, tuple) else "list",
+                "items": [_encode(v, f"{path}[{i}]", pieces) for i, v in enumerate(value)]}
+        return node if type(value) in (tuple, list) else {**node, "type": type(value).__name__}
+    return _scalar(value, path)
+
+
+def _scalar(value, path: str, key: bool = False) -> dict:
+    if value is None:
+        return {"kind": "none"}
+    if isinstance(value, bool):                 # before int: bool is an int subclass
+        return {"kind": "bool", "value": value}
+    if isinstance(value, int):
+        return {"kind": "int", "value": int(value)}
+    if isinstance(value, str):
+        return {"kind": "str", "value": str(value)}
+    if isinstance(value, float) and not key:
+        return {"kind": "float", "value": float(value) if math.isfinite(value) else str(value)}
+    raise UnstorableLeaf(path, f"a dict key of type {_type_name(value)}" if key else f"a {_type_name(value)}")
+
+
+def _type_name(value) -> str:
+    return f"{type(value).__module__}.{type(value).__qualname__}".removeprefix("builtins.")
+
+
+def _tensor(tensor: torch.Tensor, path: str, pieces: _Pieces, kind: str) -> dict:
+    what = (f"of layout {tensor.layout}" if tensor.layout != torch.strided else
+            "that is nested" if tensor.is_nested else
+            "that is quantized" if tensor.is_quantized else
+            "on the meta device (it holds no values)" if tensor.device.type == "meta" else
+            f"of dtype {tensor.dtype}" if tensor.dtype not in _STORED else None)
+    if what:
+        raise UnstorableLeaf(path, f"a {_type_name(tensor)} {what}")
+    tag = str(tensor.dtype).removeprefix("torch.")
+    values = tensor.detach().to("cpu")
+    order = _memory_order(values)
+    flat = (values.permute(order) if order is not None else values).reshape(-1)
+    return {"kind": "tensor", "type": kind, "dtype": tag, "buffer": tag, "offset": pieces.add(tag, flat),
+            "numel": flat.numel(), "shape": list(values.shape), "strides": list(values.stride()),
+            "dense": order is not None, "requires_grad": tensor.requires_grad, "device": str(tensor.device)}
+
+
+def _ndarray(value, path: str, pieces: _Pieces) -> dict:
+    array = np.asarray(value)
+    if not array.flags.writeable or any(s < 0 for s in array.strides):
+        array = array.copy()                    # torch.from_numpy refuses both; the copy is compact
+    try:
+        tensor = torch.from_numpy(array)
+    except (TypeError, ValueError):
+        tensor = None                           # object, string, non-native byte order ...
+    if tensor is None or tensor.dtype not in _STORED:
+        raise UnstorableLeaf(path, f"a numpy array of dtype {array.dtype}")
+    return _tensor(tensor, path, pieces, "numpy scalar" if isinstance(value, np.generic) else "numpy.ndarray")
+
+
+def _memory_order(tensor: torch.Tensor) -> list[int] | None:
+    """The dims from the largest stride to the smallest when that order is contiguous (the tensor is
+    dense and non-overlapping); None for views with gaps or repeats."""
+    order = sorted(range(tensor.dim()), key=lambda d: -tensor.stride(d))
+    return order if tensor.permute(order).is_contiguous() else None
+
+
+def decode(spec: dict, buffers: dict[str, torch.Tensor], device=None):
+    """The tree `encode` split into `spec` and `buffers`, tensors on CPU (or `device`; never on the
+    recorded device by itself). Every tensor is a fresh allocation: none aliases another or the
+    buffers, so each can be modified freely. Numpy leaves come back as numpy, always on CPU."""
+    kind = spec["kind"]
+    if kind == "tensor":
+        return _decode_tensor(spec, buffers, device)
+    if kind == "dict":
+        return {decode(k, buffers): decode(v, buffers, device) for k, v in zip(spec["keys"], spec["values"], strict=True)}
+    if kind in ("tuple", "list"):
+        items = [decode(v, buffers, device) for v in spec["items"]]
+        return tuple(items) if kind == "tuple" else items
+    if kind == "float":
+        value = spec["value"]
+        if isinstance(value, str) and value not in _NONFINITE:
+            raise ValueError(f"a float stored as {value!r}")
+        return float(value)
+    if kind == "none":
+        return None
+    types = {"bool": bool, "int": int, "str": str}
+    if kind not in types or type(spec["value"]) is not types[kind]:   # `is`: True is no int here
+        raise ValueError(f"a spec node {spec!r} that is no kept leaf")
+    return spec["value"]
+
+
+def _decode_tensor(spec: dict, buffers: dict, device) -> torch.Tensor | np.ndarray:
+    dtype, buffer = _DTYPES[spec["dtype"]], buffers[spec["buffer"]]
+    shape, offset, numel = [int(n) for n in spec["shape"]], int(spec["offset"]), int(spec["numel"])
+    if buffer.dtype != _STORED[dtype] or buffer.dim() != 1 or math.prod(shape) != numel or not 0 <= offset <= len(buffer) - numel:
+        raise ValueError(f"tensor {spec!r} does not fit buffer {spec['buffer']!r} ({buffer.dtype}, {buffer.numel()} values)")
+    numpy = spec["type"] != "torch.Tensor"
+    device = "cpu" if numpy or device is None else device
+    out = (torch.empty_strided(shape, spec["strides"], dtype=dtype, device=device) if spec["dense"]
+           else torch.empty(shape, dtype=dtype, device=device))
+    order = _memory_order(out) or list(range(len(shape)))
+    out.permute(order).copy_(buffer[offset:offset + numel].view(dtype).view([shape[d] for d in order]))
+    if spec["type"] == "numpy scalar":
+        return out.numpy()[()]
+    return out.numpy() if numpy else out.requires_grad_(bool(spec["requires_grad"]))
+
+
+def layout_signature(spec: dict) -> str:
+    """A short digest of what a replay's code sees: structure, keys, dtypes, ranks and scalar types.
+    Steps whose batches differ only in dim sizes (ragged sequence lengths) or values share it."""
+    return hashlib.sha256(json.dumps(_layout(spec), sort_keys=True).encode()).hexdigest()[:16]
+
+
+def _layout(node):
+    if isinstance(node, list):
+        return [_layout(n) for n in node]
+    if not isinstance(node, dict):
+        return node
+    if node.get("kind") == "tensor":
+        return {"kind": "tensor", "type": node["type"], "dtype": node["dtype"], "rank": node["shape"],
+                "requires_grad": node["requires_grad"], "device": node["device"]}
+    if node.get("kind") in ("none", "bool", "int", "float", "str"):
+        return {"kind": node["kind"]}
+    keys = node.get("keys")                     # dict keys are structure: their values stay
+    return {k: (keys if k == "keys" else _layout(v)) for k, v in node.items()}
+
+
+@dataclass
+class KeptStep:
+    """One optimizer step's inputs: micro-batches, RNG states (name -> uint8 CPU tensor), autocast
+    settings, one loss scale per micro-batch (None: unscaled), where the batches came from, notes."""
+
+    step: int
+    micro_batches: list
+    rng: dict = field(default_factory=dict)
+    autocast: dict = field(default_factory=dict)
+    scales: list = field(default_factory=list)
+    source: str = ""
+    extra: dict = field(default_factory=dict)
+
+    def pack(self) -> "PackedStep":
+        return pack_kept_step(self)
+
+
+@dataclass(frozen=True)
+class PackedStep:
+    """A kept step copied on the training thread, to be written later by the writer thread: the spec,
+    the buffers and RNG tensors (copies the training loop cannot change) and the metadata JSON."""
+
+    spec: dict
+    buffers: dict
+    rng: dict
+    metadata: str
+
+
+def pack_kept_step(kept: KeptStep) -> PackedStep:
+    """Copy everything `kept` holds; raises UnstorableLeaf, or ValueError for side data that is no JSON."""
+    if len(kept.scales) != len(kept.micro_batches):
+        raise ValueError(f"step {kept.step}: {len(kept.scales)} scales for {len(kept.micro_batches)} micro-batches")
+    for name, state in kept.rng.items():
+        if not (isinstance(name, str) and isinstance(state, torch.Tensor) and state.dtype == torch.uint8):
+            raise ValueError(f"step {kept.step}: RNG state {name!r} is not a uint8 tensor")
+    spec, buffers = encode(list(kept.micro_batches))
+    scales = [None if s is None else _scalar(float(s), "")["value"] for s in kept.scales]
+    try:
+        metadata = json.dumps({"kept_format": KEPT_FORMAT, "step": kept.step, "spec": spec, "autocast": kept.autocast,
+                               "scales": scales, "source": str(kept.source), "extra": kept.extra}, allow_nan=False)
+    except (TypeError, ValueError) as exc:
+        raise ValueError(f"step {kept.step}: autocast and extra must be plain JSON ({exc}); the step is not kept") from exc
+    rng = {name: state.detach().to("cpu", copy=True).contiguous() for name, state in kept.rng.items()}
+    return PackedStep(spec, buffers, rng, metadata)
+
+
+def kept_step_path(root: Path, step: int) -> Path:
+    return Path(root) / BATCH_DIR / f"{step:010d}.safetensors"
+
+
+def write_packed_step(root: Path, step: int, packed: PackedStep) -> int:
+    """Write to a temporary name in the same folder, then rename into place. Returns the file's bytes."""
+    path = kept_step_path(root, step)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    os.close(fd)
+    try:
+        tensors = {**{f"buffer.{t}": b for t, b in packed.buffers.items()}, **{f"rng.{n}": s for n, s in packed.rng.items()}}
+        save_file(tensors, tmp, metadata={_METADATA_KEY: packed.metadata})
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return path.stat().st_size
+
+
+def write_kept_step(root: Path, step: int, kept: KeptStep) -> int:
+    return write_packed_step(root, step, pack_kept_step(kept))
+
+
+def read_kept_step(root: Path, step: int) -> KeptStep:
+    """The step kept at `step`, tensors on CPU; RecordingError when it is missing or damaged."""
+    path = kept_step_path(root, step)
+    if not path.is_file():
+        steps = kept_steps(root)
+        held = f"{len(steps)} steps are kept, from step {steps[0]} to {steps[-1]}" if steps else "no steps are kept"
+        raise RecordingError(f"No kept batches for step {step}: {str(path)!r} does not exist; {held}")
+    try:
+        with safe_open(str(path), framework="pt") as handle:
+            side = json.loads((handle.metadata() or {})[_METADATA_KEY])
+            tensors = {name: handle.get_tensor(name) for name in handle.keys()}
+    except (SafetensorError, OSError, ValueError, KeyError, RuntimeError) as exc:
+        raise RecordingError(f"Kept batches of step {step} in {str(path)!r} are damaged ({exc!r}); "
+                             "nothing in it was executed. The step cannot be replayed from its batches.") from exc
+    try:
+        if side["kept_format"] != KEPT_FORMAT or side["step"] != step:
+            raise ValueError(f"format {side['kept_format']!r} of step {side['step']!r}")
+        buffers = {n.removeprefix("buffer."): t for n, t in tensors.items() if n.startswith("buffer.")}
+        return KeptStep(step, decode(side["spec"], buffers), {n.removeprefix("rng."): t for n, t in tensors.items()
+                                                             if n.startswith("rng.")},
+                        side["autocast"], [None if s is None else float(s) for s in side["scales"]],
+                        side["source"], side["extra"])
+    except (KeyError, TypeError, ValueError, RuntimeError, IndexError) as exc:
+        raise RecordingError(f"Kept batches of step {step} in {str(path)!r} do not match their spec ({exc!r}); "
+                             "nothing in it was executed.") from exc
+
+
+def kept_steps(root: Path) -> list[int]:
+    folder = Path(root) / BATCH_DIR
+    if not folder.is_dir():
+        return []
+    return sorted(int(m.group(1)) for e in os.listdir(folder) if (m := re.fullmatch(r"(\d{10})\.safetensors", e)))
+
+
+def kept_bytes(root: Path) -> int:
+    return sum(kept_step_path(root, s).stat().st_size for s in kept_steps(root))
+
+
+def delete_kept_steps(root: Path, steps) -> None:
+    for step in steps:
+        kept_step_path(root, step).unlink(missing_ok=True)
+
+
+def windows(steps: list[int], keyframes: list[int]) -> list[tuple[int, int]]:
+    """The replayable windows (first, last), inclusive: a replay starts at a keyframe k whose step is
+    kept and runs while the following steps are kept. Keyframes in one run of consecutive kept steps
+    give one window, from the first of them."""
+    kept, starts, found = set(steps), set(keyframes), []
+    for first in sorted(kept):
+        if first - 1 in kept:
+            continue                            # not the start of a consecutive run
+        last = first
+        while last + 1 in kept:
+            last += 1
+        keyed = [k for k in starts if first <= k <= last]
+        if keyed:
+            found.append((min(keyed), last))
+    return found
