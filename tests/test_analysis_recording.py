@@ -89,9 +89,9 @@ def test_step_fn_given_to_record_is_used_with_inputs_and_targets(tmp_path):
     x, y = torch.randn(16, 4), torch.randn(16, 1)
     calls = []
 
-    def step_fn(m, batch):
-        calls.append(len(batch))
-        inputs, targets = batch
+    def step_fn(m, micro_batch):                   # one kept micro-batch: what the model and criterion got
+        calls.append(sorted(micro_batch))
+        (inputs,), (targets,) = micro_batch["args"], micro_batch["targets"]
         return criterion(m(inputs), targets)
 
     with nbkit.record(model, optimizer, tmp_path / "s", criterion=criterion, step_fn=step_fn, curvature_every=2,
@@ -105,7 +105,8 @@ def test_step_fn_given_to_record_is_used_with_inputs_and_targets(tmp_path):
     # MSE Hessian of a linear model: 2·[X 1]ᵀ[X 1]/N (numpy.linalg.eigvalsh)
     expected = np.linalg.eigvalsh(2 * design.T @ design / 16)[-1]
     assert run.series("sharpness")[0, 0] == pytest.approx(expected, rel=1e-3)
-    assert calls and set(calls) == {2}
+    assert calls and all(keys == ["args", "kwargs", "targets"] for keys in calls)
+    assert run.meta["trained_loss"]["checks"][0]["verdict"] == "bit-exact"
     assert run.meta["noise_method"] == "per-example"
 
 
@@ -135,11 +136,24 @@ def test_curvature_fills_keyframes_after_the_fact(tmp_path):
     assert values[8] == pytest.approx(direct, rel=1e-4)
 
 
-def test_curvature_without_a_loss_source_is_refused(tmp_path):
+def test_curvature_without_a_rebuildable_loss_warns_and_stores_nan(tmp_path):
+    """A loss function (not a criterion module) and no step_fn: the recorder cannot rebuild the trained
+    loss, says so once and leaves the estimates NaN; training and the rest of the recording go on."""
+    torch.manual_seed(0)
     model = torch.nn.Linear(2, 1)
-    with pytest.raises(nbkit.RecorderError, match="criterion=.*step_fn="):
-        nbkit.record(model, torch.optim.SGD(model.parameters(), lr=0.1), tmp_path / "x", curvature_every=5)
-    assert not (tmp_path / "x").exists() or not any((tmp_path / "x").iterdir())
+    optimizer = torch.optim.SGD(model.parameters(), lr=0.1)
+    x, y = torch.randn(8, 2), torch.randn(8, 1)
+    with pytest.warns(nbkit.RecorderWarning, match="cannot be rebuilt.*step_fn="):
+        with nbkit.record(model, optimizer, tmp_path / "x", curvature_every=2) as rec:
+            for _ in range(4):
+                optimizer.zero_grad()
+                loss = torch.nn.functional.mse_loss(model(x), y)
+                loss.backward()
+                rec.loss(loss)
+                optimizer.step()
+    run = nbkit.load(tmp_path / "x")
+    assert len(run) == 4 and np.isnan(run.series("sharpness")).all() and np.isfinite(run.loss).all()
+    assert run.meta["trained_loss"]["rebuildable"] is False
     with pytest.raises(nbkit.RecorderError, match="curvature_every"):
         nbkit.record(model, torch.optim.SGD(model.parameters(), lr=0.1), tmp_path / "y", curvature_every=-1)
 

@@ -60,8 +60,9 @@ def test_non_keyframe_start_is_reached_with_the_recorded_optimizer(recorded, tmp
 
 
 def test_without_restoring_the_random_state_the_replay_differs(recorded, tmp_path, monkeypatch):
-    """The same replay with the keyframe's RNG state replaced by another one: dropout masks differ,
-    so the comparison above could fail."""
+    """The same replay with the keyframe's RNG state replaced by another one: the random-state digest
+    check stops it at its first step; with strict=False it runs on, and dropout masks differ, so the
+    comparison above could fail."""
     from nbkit.replay import restore
 
     def other_state(rng):
@@ -69,9 +70,12 @@ def test_without_restoring_the_random_state_the_replay_differs(recorded, tmp_pat
         return restore.get_rng()
 
     monkeypatch.setattr(restore, "rng_from_keyframe", other_state)
+    with pytest.raises(ReplayError, match="random state at step 50's first training forward differs"):
+        nbkit.replay(recorded, rs.make_model(), rs.step_fn, rs.Batches(), start=50, steps=20, to=tmp_path,
+                     progress=False)
     with pytest.warns(UserWarning, match="differs from its parent"):
         runs = nbkit.replay(recorded, rs.make_model(), rs.step_fn, rs.Batches(), start=50, steps=20,
-                            to=tmp_path, progress=False)
+                            to=tmp_path, progress=False, strict=False)
     fidelity = runs["recorded"].meta["replay"]["fidelity"]
     assert not fidelity["identical"] and fidelity["loss"] > 0 and fidelity["probes"] > 0
 

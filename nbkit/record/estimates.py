@@ -1,15 +1,13 @@
 """Sharpness and gradient noise scale estimated while recording (record(curvature_every=N, noise_every=M)).
 
 A step hook of the recorder (Recorder.add_step_hook) calls `after_step(recorder, row)` after the
-recorder's own statistics, using only the recorder's public surface. The
-estimate of step s uses step s's own batch, rebuilt from what the recorder observed: the positional and
-keyword arguments of the last training-mode forward and the criterion's target arguments, giving
-    loss = criterion(model(*args, **kwargs), *targets)
-or, with record(step_fn=...), step_fn(model, (*args, *targets)) (the forward's positional arguments
-followed by the criterion's targets, when a criterion was given). The post-hook runs after the update,
-so the estimate is at the parameters after step s's update, on step s's batch, with the optimizer's
-state after that step (for Adam's preconditioner); run.curvature() measures at keyframes, before the
-update.
+recorder's own statistics, using only the recorder's public surface. The estimate of step s uses the
+last micro-batch of step s, kept as {"args", "kwargs", "targets"}, and the trained loss as the recorder
+verified it (nbkit.record.trained_loss: the step_fn given to record, or the criterion, the model's
+returned loss or its training_step); where that check failed or could not be made the estimates store
+NaN. The post-hook runs after the update, so the estimate is at the parameters after step s's update,
+on step s's batch, with the optimizer's state after that step (for Adam's preconditioner);
+run.curvature() measures at keyframes, before the update.
 
 Training is not changed: every pass forks the RNG state and restores buffers (curvature.untouched),
 gradients come from torch.autograd.grad (p.grad is not touched), and the recorder's hooks are paused so
@@ -22,7 +20,6 @@ import math
 
 from nbkit.analyze.curvature import sharpness
 from nbkit.analyze.noise import RunningNoise, batch_size_of, noise_parts
-from nbkit.errors import RecorderError
 from nbkit.record.options import RecordOptions
 
 RECORDING_TOL = 1e-3        # Lanczos tolerance while recording: ample for a stability comparison
@@ -30,13 +27,10 @@ NOISE_AVERAGE_WEIGHT = 0.2  # weight of the newest estimate in the running avera
 
 
 def estimates_for(options: RecordOptions) -> "RecordingEstimates | None":
-    """The estimates the options ask for, or None when both strides are 0. Raises when they cannot work."""
+    """The estimates the options ask for, or None when both strides are 0 (they need the trained loss,
+    checked at the first step: without one they store NaN and the recorder warns)."""
     if not (options.curvature_every or options.noise_every):
         return None
-    if options.criterion is None and options.step_fn is None:
-        raise RecorderError(f"curvature_every={options.curvature_every} / noise_every={options.noise_every} need "
-                            "the loss of the step's batch: pass criterion=<the nn.Module loss you call> or "
-                            "step_fn=step_fn(model, batch) -> loss to nbkit.record")
     return RecordingEstimates(options.curvature_every, options.noise_every)
 
 
@@ -54,17 +48,17 @@ class RecordingEstimates:
         want_noise = self.noise_every and step % self.noise_every == 0
         if not (want_curvature or want_noise):
             return
-        observed = recorder.last_batch()
-        if observed is None:
-            recorder.report_problem("curvature/noise estimates found no training forward pass to rebuild the batch from")
-            return
-        step_fn, batch = self._rebuild(recorder, *observed)
+        rebuilt = recorder.trained_loss()
+        if rebuilt is None:
+            return                          # NaN: the recorder warned why (trained-loss check)
+        loss_fn, micro_batch = rebuilt
+        step_fn = self._mean_loss(recorder, loss_fn)
         with recorder.pause():
             if want_curvature:
                 self._estimate(recorder, row, "sharpness", lambda: sharpness(
-                    recorder.model, step_fn, batch, optimizer=recorder.optimizer, tol=RECORDING_TOL))
+                    recorder.model, step_fn, micro_batch, optimizer=recorder.optimizer, tol=RECORDING_TOL))
             if want_noise:
-                self._estimate(recorder, row, "noise_scale", lambda: self._noise(recorder, step_fn, batch))
+                self._estimate(recorder, row, "noise_scale", lambda: self._noise(recorder, step_fn, micro_batch))
 
     @staticmethod
     def _estimate(recorder, row, quantity, compute):
@@ -76,20 +70,11 @@ class RecordingEstimates:
         row.set_quantity(quantity, value if value is not None else math.nan)
 
     @staticmethod
-    def _rebuild(recorder, args, kwargs, targets):
-        if recorder.step_fn is not None:
-            return recorder.step_fn, (*args, *targets)
-        criterion = recorder.criterion
-        summed = getattr(criterion, "reduction", "mean") == "sum"
-
-        def step_fn(model, batch):
-            inputs, keywords, wanted = batch
-            loss = criterion(model(*inputs, **keywords), *wanted)
-            if summed:                      # the estimators need the mean loss of the batch
-                loss = loss / batch_size_of(batch)
-            return loss
-
-        return step_fn, (args, kwargs, targets)
+    def _mean_loss(recorder, loss_fn):
+        """The estimators need the mean loss of the batch: a sum-reduced criterion is divided."""
+        if getattr(recorder.criterion, "reduction", "mean") != "sum" or getattr(loss_fn, "rebuild", None) != "criterion":
+            return loss_fn
+        return lambda model, micro_batch: loss_fn(model, micro_batch) / batch_size_of(micro_batch)
 
     def _noise(self, recorder, step_fn, batch):
         held = {id(p) for g in recorder.optimizer.param_groups for p in g["params"]}

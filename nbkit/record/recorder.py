@@ -204,6 +204,17 @@ class Recorder:
         except Exception as exc:
             self._fail("the criterion hook failed", exc)
 
+    def trained_loss(self):
+        """(loss_fn(model, micro_batch) -> loss, the last micro-batch of the step just taken) when the
+        trained-loss check passed (nbkit.record.trained_loss), else None."""
+        last = self._inputs.last
+        if not self.loss_rebuildable or last is None or not last.micro_batches:
+            return None
+        kind = trained_loss.rebuild_kind(last.micro_batches, self.criterion, self.step_fn)[0]
+        if kind is None:
+            return None
+        return trained_loss.micro_batch_loss(kind, self.criterion, self.step_fn), last.micro_batches[-1].as_kept()
+
     def last_batch(self):
         """(args, kwargs, targets) of the last training forward pass and criterion call, when the
         recorder keeps them (curvature_every or noise_every set); None otherwise or before one."""
@@ -447,7 +458,11 @@ class Recorder:
         probes, self._backward.probes = self._backward.probes, None
         kind, how = trained_loss.rebuild_kind(taken.micro_batches, self.criterion, self.step_fn)
         result = {"step": self.step, "rebuild": kind, "how": how, "verdict": None}
-        if kind is not None and before is not None and probes is not None and taken.rng_state is not None:
+        if taken.closure_calls > 1:
+            kind, result["why"] = None, ("the optimizer evaluated its closure several times in one step (at other "
+                                         "parameters); replays of it need step_fn")
+            result["rebuild"] = None
+        elif kind is not None and before is not None and probes is not None and taken.rng_state is not None:
             try:
                 result.update(trained_loss.check_step(self.model, self._tensors, before, probes, taken, kind,
                                                       self.criterion, self.step_fn, self.pause))

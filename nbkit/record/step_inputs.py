@@ -107,6 +107,7 @@ class StepTaken:
     rng_state: torch.Tensor | None      # the CPU generator's state at the first training forward
     autocast: dict
     rng_digest: float
+    closure_calls: int = 0
 
 
 class StepInputs:
@@ -135,6 +136,7 @@ class StepInputs:
         self._target_prints: list = []
         self._rng_state = None
         self._autocast: dict = {}
+        self._closure_calls = 0             # evaluations of an optimizer closure (LBFGS) in this step
 
     def _first_input(self):
         if self._rng_state is None:
@@ -147,9 +149,16 @@ class StepInputs:
         return self._micro[-1]
 
     # --- what the hooks and the loop report -----------------------------------------------------
+    def _reevaluation(self) -> bool:
+        """A closure's second or later evaluation in one step (LBFGS): the same batch at other parameters,
+        not another micro-batch."""
+        return self._closure_calls > 1
+
     def forward(self, args, kwargs) -> None:
         self._first_input()
         self._input_prints.append(fingerprint(args, kwargs))
+        if self._reevaluation():
+            return
         current = self._micro[-1] if self._micro else None
         if current is None or current.forward is not None:
             current = MicroBatch()              # a forward opens a micro-batch, unless rec.keep() just did
@@ -171,6 +180,10 @@ class StepInputs:
         self._micro.append(MicroBatch(call=(tuple(args), dict(kwargs))))
 
     def criterion(self, inputs: tuple, output: torch.Tensor) -> None:
+        if self._reevaluation():
+            if len(inputs) > 1:
+                self._target_prints.append(fingerprint(inputs[1:]))
+            return
         current = self._current()
         current.criterion_calls += 1
         self._observe(current, "criterion", output)
@@ -182,12 +195,13 @@ class StepInputs:
     def model_output(self, output) -> None:
         """A training forward pass's output: the loss it carries, if any, counts towards the step's."""
         loss = returned_loss(output)
-        if loss is not None:
+        if loss is not None and not self._reevaluation():
             self._observe(self._current(), "returned", loss)
 
     def observe_loss(self, loss: torch.Tensor) -> None:
         """The loss of the current micro-batch as the training code computed it (wins over the others)."""
-        self._observe(self._current(), "observed", loss)
+        if not self._reevaluation():
+            self._observe(self._current(), "observed", loss)
 
     def _observe(self, micro: MicroBatch, kind: str, loss: torch.Tensor) -> None:
         record = ObservedLoss(loss.detach())
@@ -212,6 +226,7 @@ class StepInputs:
         self.closure_loss = None
 
         def recorded_closure():
+            self._closure_calls += 1
             loss = closure()
             if self.closure_loss is None and loss is not None:
                 self.closure_loss = loss.detach() if isinstance(loss, torch.Tensor) else loss
@@ -236,7 +251,7 @@ class StepInputs:
         prints = np.stack([combine(self._input_prints), combine(self._target_prints)])
         state = self._rng_state
         self.last = StepTaken(loss, prints, self._micro, state, self._autocast,
-                              rng_digest(state) if state is not None else math.nan)
+                              rng_digest(state) if state is not None else math.nan, self._closure_calls)
         self.closure_loss = None
         self._start()
         return self.last

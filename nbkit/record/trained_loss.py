@@ -20,6 +20,7 @@ from collections.abc import Mapping
 
 import torch
 
+from nbkit.analyze.model_copy import copy_model
 from nbkit.record.step_inputs import returned_loss
 
 EXACT, CLOSE, DIFFERENT = "bit-exact", "within 1e-5 relative", "different"
@@ -126,30 +127,27 @@ def compare_probes(recorded: list, rebuilt: list, probes: list) -> dict:
 def check_step(model, tensors, before: list, recorded_probes: list, taken, kind: str, criterion, step_fn,
                pause) -> dict:
     """Rebuild the step `taken` (nbkit.record.step_inputs.StepTaken) at the parameters `before` it and
-    compare its gradient with `recorded_probes` (BackwardWatch.probes). The model is left exactly as it
-    was: parameters, buffers (a BatchNorm's running statistics) and the global CPU random state are put
-    back; p.grad is not touched. pause(): the recorder's hooks ignore the extra passes."""
-    params = [t.param for t in tensors]
-    trainable = [k for k, p in enumerate(params) if p.requires_grad]
-    after = [p.detach().clone() for p in params]
-    buffers = [(b, b.detach().clone()) for b in model.buffers()]
-    rng = torch.get_rng_state()
+    compare its gradient with `recorded_probes` (BackwardWatch.probes). The rebuild runs on a copy of the
+    model (nbkit.analyze.model_copy: whatever the forward changes, a BatchNorm's statistics or a list the
+    model appends to, stays in the copy) and the global CPU random state is put back. pause(): the
+    recorder's hooks ignore the extra passes."""
+    copy = copy_model(model)
+    own = dict(copy.named_parameters(remove_duplicate=False))
+    params = [own.get(t.name) for t in tensors]               # None: an optimizer-only tensor
+    with torch.no_grad():
+        for p, value in zip(params, before):
+            if p is not None:
+                p.copy_(value)
+    trainable = [k for k, p in enumerate(params) if p is not None and p.requires_grad]
     loss_fn = micro_batch_loss(kind, criterion, step_fn)
     micro = [m.as_kept() for m in taken.micro_batches]
     scales = [m.loss().scale if m.loss() is not None else None for m in taken.micro_batches]
+    rng = torch.get_rng_state()
     try:
-        with torch.no_grad():
-            for p, value in zip(params, before):
-                p.copy_(value)
         torch.set_rng_state(taken.rng_state)
         with pause():
-            grads = rebuilt_gradient(model, [params[k] for k in trainable], micro, scales, loss_fn, taken.autocast)
+            grads = rebuilt_gradient(copy, [params[k] for k in trainable], micro, scales, loss_fn, taken.autocast)
     finally:
-        with torch.no_grad():
-            for p, value in zip(params, after):
-                p.copy_(value)
-            for b, value in buffers:
-                b.copy_(value)
         torch.set_rng_state(rng)
     full = [None] * len(params)
     for k, g in zip(trainable, grads):

@@ -27,17 +27,20 @@ from nbkit.errors import RecordingError
 
 BATCH_DIR = "batches"
 KEPT_FORMAT = 1
-_METADATA_KEY = "nbkit.kept_step"   # the one metadata entry: safetensors metadata is str -> str only
+# The one metadata entry: a safetensors header's __metadata__ maps strings to strings only
+# (safetensors format documentation), so all the JSON goes in one string.
+_METADATA_KEY = "nbkit.kept_step"
 
 # The leaf dtypes a kept step holds, and the dtype of the buffer that stores each. bfloat16 is kept
-# as its raw uint16 bits so readers without bfloat16 (numpy) can still load the file; bool as uint8
-# so every buffer is a plain number type.
+# as its raw uint16 bits so readers without bfloat16 can still load the file (safetensors.numpy maps
+# U16 to numpy but has no BF16: its _TYPES table); bool as uint8, so every buffer is a plain number.
 _STORED = {torch.float16: torch.float16, torch.float32: torch.float32, torch.float64: torch.float64,
            torch.bfloat16: torch.uint16, torch.bool: torch.uint8, torch.int8: torch.int8,
            torch.int16: torch.int16, torch.int32: torch.int32, torch.int64: torch.int64,
            torch.uint8: torch.uint8}
 _DTYPES = {str(d).removeprefix("torch."): d for d in _STORED}
-_NONFINITE = {"nan", "inf", "-inf"}   # JSON has no NaN or infinity: these floats are kept as strings
+# JSON numbers exclude NaN and Infinity (RFC 8259, section 6): these floats are kept as strings
+_NONFINITE = {"nan", "inf", "-inf"}
 
 
 class UnstorableLeaf(ValueError):
@@ -57,30 +60,19 @@ def encode(tree) -> tuple[dict, dict[str, torch.Tensor]]:
     (OrderedDict, BatchEncoding) decode as plain dicts and tuple subclasses (namedtuples) as plain
     tuples; their type names stay in the spec. Raises UnstorableLeaf for anything else.
     """
-    pieces = _Pieces()
+    pieces: dict[str, list] = {}                # tag -> [(spec node, flat values)]: offsets come last
     spec = _encode(tree, "", pieces)
-    return spec, pieces.join()
-
-
-class _Pieces:
-    """The flattened leaves of each dtype tag, in order, and where the next one starts."""
-
-    def __init__(self):
-        self.parts: dict[str, list[torch.Tensor]] = {}
-        self.ends: dict[str, int] = {}
-
-    def add(self, tag: str, flat: torch.Tensor) -> int:
-        offset = self.ends.get(tag, 0)
-        self.parts.setdefault(tag, []).append(flat)
-        self.ends[tag] = offset + flat.numel()
-        return offset
-
-    def join(self) -> dict[str, torch.Tensor]:
+    buffers = {}
+    for tag, leaves in pieces.items():
+        offset = 0
+        for node, flat in leaves:
+            node["offset"], offset = offset, offset + flat.numel()
         # torch.cat always allocates: the buffers are copies the training loop cannot change
-        return {tag: torch.cat(parts).view(_STORED[_DTYPES[tag]]) for tag, parts in self.parts.items()}
+        buffers[tag] = torch.cat([flat for _, flat in leaves]).view(_STORED[_DTYPES[tag]])
+    return spec, buffers
 
 
-def _encode(value, path: str, pieces: _Pieces) -> dict:
+def _encode(value, path: str, pieces: dict) -> dict:
     if isinstance(value, torch.Tensor):
         return _tensor(value, path, pieces, "torch.Tensor")
     if isinstance(value, (np.ndarray, np.generic)):
@@ -115,7 +107,7 @@ def _type_name(value) -> str:
     return f"{type(value).__module__}.{type(value).__qualname__}".removeprefix("builtins.")
 
 
-def _tensor(tensor: torch.Tensor, path: str, pieces: _Pieces, kind: str) -> dict:
+def _tensor(tensor: torch.Tensor, path: str, pieces: dict, kind: str) -> dict:
     what = (f"of layout {tensor.layout}" if tensor.layout != torch.strided else
             "that is nested" if tensor.is_nested else
             "that is quantized" if tensor.is_quantized else
@@ -124,18 +116,20 @@ def _tensor(tensor: torch.Tensor, path: str, pieces: _Pieces, kind: str) -> dict
     if what:
         raise UnstorableLeaf(path, f"a {_type_name(tensor)} {what}")
     tag = str(tensor.dtype).removeprefix("torch.")
+    order = _memory_order(tensor)               # of the original: a copy to the CPU may change strides
     values = tensor.detach().to("cpu")
-    order = _memory_order(values)
     flat = (values.permute(order) if order is not None else values).reshape(-1)
-    return {"kind": "tensor", "type": kind, "dtype": tag, "buffer": tag, "offset": pieces.add(tag, flat),
-            "numel": flat.numel(), "shape": list(values.shape), "strides": list(values.stride()),
-            "dense": order is not None, "requires_grad": tensor.requires_grad, "device": str(tensor.device)}
+    node = {"kind": "tensor", "type": kind, "dtype": tag, "buffer": tag, "offset": None, "numel": flat.numel(),
+            "shape": list(tensor.shape), "strides": list(tensor.stride()), "dense": order is not None,
+            "requires_grad": tensor.requires_grad, "device": str(tensor.device)}
+    pieces.setdefault(tag, []).append((node, flat))
+    return node
 
 
-def _ndarray(value, path: str, pieces: _Pieces) -> dict:
+def _ndarray(value, path: str, pieces: dict) -> dict:
     array = np.asarray(value)
     if not array.flags.writeable or any(s < 0 for s in array.strides):
-        array = array.copy()                    # torch.from_numpy refuses both; the copy is compact
+        array = array.copy()   # from_numpy refuses negative strides, warns on read-only; the copy is compact
     try:
         tensor = torch.from_numpy(array)
     except (TypeError, ValueError):
@@ -154,13 +148,15 @@ def _memory_order(tensor: torch.Tensor) -> list[int] | None:
 
 def decode(spec: dict, buffers: dict[str, torch.Tensor], device=None):
     """The tree `encode` split into `spec` and `buffers`, tensors on CPU (or `device`; never on the
-    recorded device by itself). Every tensor is a fresh allocation: none aliases another or the
-    buffers, so each can be modified freely. Numpy leaves come back as numpy, always on CPU."""
+    recorded device by itself). Every tensor is a fresh allocation, so none aliases another or the
+    buffers and each can be modified freely: views of the buffers would be cheaper, but they keep the
+    whole buffer alive and cannot take the recorded strides. Numpy leaves come back as numpy, on CPU."""
     kind = spec["kind"]
     if kind == "tensor":
         return _decode_tensor(spec, buffers, device)
     if kind == "dict":
-        return {decode(k, buffers): decode(v, buffers, device) for k, v in zip(spec["keys"], spec["values"], strict=True)}
+        pairs = zip(spec["keys"], spec["values"], strict=True)
+        return {decode(k, buffers): decode(v, buffers, device) for k, v in pairs}
     if kind in ("tuple", "list"):
         items = [decode(v, buffers, device) for v in spec["items"]]
         return tuple(items) if kind == "tuple" else items
@@ -180,8 +176,10 @@ def decode(spec: dict, buffers: dict[str, torch.Tensor], device=None):
 def _decode_tensor(spec: dict, buffers: dict, device) -> torch.Tensor | np.ndarray:
     dtype, buffer = _DTYPES[spec["dtype"]], buffers[spec["buffer"]]
     shape, offset, numel = [int(n) for n in spec["shape"]], int(spec["offset"]), int(spec["numel"])
-    if buffer.dtype != _STORED[dtype] or buffer.dim() != 1 or math.prod(shape) != numel or not 0 <= offset <= len(buffer) - numel:
-        raise ValueError(f"tensor {spec!r} does not fit buffer {spec['buffer']!r} ({buffer.dtype}, {buffer.numel()} values)")
+    if (buffer.dtype != _STORED[dtype] or buffer.dim() != 1 or math.prod(shape) != numel
+            or not 0 <= offset <= len(buffer) - numel):
+        raise ValueError(f"tensor {spec!r} does not fit buffer {spec['buffer']!r} "
+                         f"({buffer.dtype}, {buffer.numel()} values)")
     numpy = spec["type"] != "torch.Tensor"
     device = "cpu" if numpy or device is None else device
     out = (torch.empty_strided(shape, spec["strides"], dtype=dtype, device=device) if spec["dense"]
@@ -205,7 +203,7 @@ def _layout(node):
     if not isinstance(node, dict):
         return node
     if node.get("kind") == "tensor":
-        return {"kind": "tensor", "type": node["type"], "dtype": node["dtype"], "rank": node["shape"],
+        return {"kind": "tensor", "type": node["type"], "dtype": node["dtype"], "rank": len(node["shape"]),
                 "requires_grad": node["requires_grad"], "device": node["device"]}
     if node.get("kind") in ("none", "bool", "int", "float", "str"):
         return {"kind": node["kind"]}
@@ -254,7 +252,8 @@ def pack_kept_step(kept: KeptStep) -> PackedStep:
         metadata = json.dumps({"kept_format": KEPT_FORMAT, "step": kept.step, "spec": spec, "autocast": kept.autocast,
                                "scales": scales, "source": str(kept.source), "extra": kept.extra}, allow_nan=False)
     except (TypeError, ValueError) as exc:
-        raise ValueError(f"step {kept.step}: autocast and extra must be plain JSON ({exc}); the step is not kept") from exc
+        raise ValueError(f"step {kept.step}: autocast and extra must be plain JSON ({exc}); "
+                         "the step is not kept") from exc
     rng = {name: state.detach().to("cpu", copy=True).contiguous() for name, state in kept.rng.items()}
     return PackedStep(spec, buffers, rng, metadata)
 
@@ -270,7 +269,8 @@ def write_packed_step(root: Path, step: int, packed: PackedStep) -> int:
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     os.close(fd)
     try:
-        tensors = {**{f"buffer.{t}": b for t, b in packed.buffers.items()}, **{f"rng.{n}": s for n, s in packed.rng.items()}}
+        tensors = {f"buffer.{tag}": buffer for tag, buffer in packed.buffers.items()}
+        tensors.update({f"rng.{name}": state for name, state in packed.rng.items()})
         save_file(tensors, tmp, metadata={_METADATA_KEY: packed.metadata})
         os.replace(tmp, path)
     except BaseException:
@@ -300,10 +300,10 @@ def read_kept_step(root: Path, step: int) -> KeptStep:
     try:
         if side["kept_format"] != KEPT_FORMAT or side["step"] != step:
             raise ValueError(f"format {side['kept_format']!r} of step {side['step']!r}")
-        buffers = {n.removeprefix("buffer."): t for n, t in tensors.items() if n.startswith("buffer.")}
-        return KeptStep(step, decode(side["spec"], buffers), {n.removeprefix("rng."): t for n, t in tensors.items()
-                                                             if n.startswith("rng.")},
-                        side["autocast"], [None if s is None else float(s) for s in side["scales"]],
+        named = {prefix: {n.removeprefix(prefix): t for n, t in tensors.items() if n.startswith(prefix)}
+                 for prefix in ("buffer.", "rng.")}
+        scales = [None if s is None else float(s) for s in side["scales"]]
+        return KeptStep(step, decode(side["spec"], named["buffer."]), named["rng."], side["autocast"], scales,
                         side["source"], side["extra"])
     except (KeyError, TypeError, ValueError, RuntimeError, IndexError) as exc:
         raise RecordingError(f"Kept batches of step {step} in {str(path)!r} do not match their spec ({exc!r}); "
