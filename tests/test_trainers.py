@@ -24,17 +24,22 @@ def text_batches(length=64):
     return [{"input_ids": row, "labels": row} for row in ids]
 
 
-def gpt2_trainer(tmp_path, callback, steps, **arguments):
+def gpt2_model():
     transformers = pytest.importorskip("transformers")
     torch.manual_seed(0)
     config = transformers.GPT2Config(n_layer=2, n_embd=64, n_head=2, vocab_size=256, n_positions=64,
-                                     bos_token_id=0, eos_token_id=0)
-    model = transformers.GPT2LMHeadModel(config)
-    args = transformers.TrainingArguments(output_dir=str(tmp_path / "trainer"), max_steps=steps,
-                                          per_device_train_batch_size=8, logging_steps=1, report_to="none",
-                                          use_cpu=True, save_strategy="no", learning_rate=1e-3,
+                                     bos_token_id=0, eos_token_id=0)      # dropout 0.1 (GPT2Config's default)
+    return transformers.GPT2LMHeadModel(config)
+
+
+def gpt2_trainer(tmp_path, callback, steps, examples=None, **arguments):
+    transformers = pytest.importorskip("transformers")
+    model = gpt2_model()
+    arguments.setdefault("per_device_train_batch_size", 8)
+    args = transformers.TrainingArguments(output_dir=str(tmp_path / "trainer"), max_steps=steps, logging_steps=1,
+                                          report_to="none", use_cpu=True, save_strategy="no", learning_rate=1e-3,
                                           disable_tqdm=True, seed=0, **arguments)
-    return transformers.Trainer(model=model, args=args, train_dataset=text_batches(), callbacks=[callback])
+    return transformers.Trainer(model=model, args=args, train_dataset=text_batches()[:examples], callbacks=[callback])
 
 
 @pytest.mark.parametrize("smoothing, steps", [(0.0, 150), (0.1, 30)])
@@ -51,6 +56,29 @@ def test_a_trainer_run_records_the_loss_the_trainer_logs(tmp_path, smoothing, st
     assert run.meta["optimizer"]["class"] == "AdamW" and len(run.tensors) >= 20
 
 
+def test_a_trainer_run_self_replays_bit_exactly_from_its_kept_batches(tmp_path):
+    """Dropout on, 2 micro-batches a step, clipping, 40 examples (5 steps an epoch, so the run crosses two
+    epoch boundaries where the Trainer's loader reshuffles): the replay needs neither batches nor step_fn."""
+    callback = nbkit.transformers_callback(tmp_path / "gpt", keyframe_every=5)
+    trainer = gpt2_trainer(tmp_path, callback, 12, examples=40, per_device_train_batch_size=4,
+                           gradient_accumulation_steps=2, max_grad_norm=1.0, weight_decay=0.1)
+    trainer.train()
+    run = nbkit.load(tmp_path / "gpt")
+    logged = np.array([entry["loss"] for entry in trainer.state.log_history if "loss" in entry])
+    np.testing.assert_allclose(run.loss, logged, rtol=0, atol=5e-5 + 1e-6)    # logged to 4 decimals
+    assert run.meta["trained_loss"]["rebuild"] == "returned" and run.kept_steps == list(range(12))
+    assert all(len(run.batch(step)) == 2 for step in run.kept_steps)
+    assert (run.clip_factor <= 1.0).all() and (run.clip_factor < 1.0).any()
+    runs = nbkit.replay(run, gpt2_model(), start=3, progress=False)
+    fidelity = runs["recorded"].meta["replay"]["fidelity"]
+    assert fidelity["identical"] and fidelity["steps"] == 9, fidelity
+    # a swapped optimizer keeps the Trainer's groups: weight decay 0.1, and 0 for biases and LayerNorms
+    swapped = nbkit.replay(run, gpt2_model(), start=5, steps=3, progress=False,
+                           optimizers={"sgd": lambda groups: torch.optim.SGD(groups, lr=1e-3, momentum=0.9)})
+    decays = [group["weight_decay"] for group in swapped["sgd"].meta["param_groups"]]
+    assert sorted(decays) == [0.0, 0.1] and swapped["sgd"].meta["optimizer"]["class"] == "SGD"
+
+
 def test_a_bad_option_fails_when_the_callback_is_made(tmp_path):
     with pytest.raises(nbkit.RecorderError, match="keyframes"):
         nbkit.transformers_callback(tmp_path / "x", keyframes=10)
@@ -58,18 +86,20 @@ def test_a_bad_option_fails_when_the_callback_is_made(tmp_path):
         nbkit.lightning_callback(tmp_path / "y", every=0)
 
 
-def digits_module(seen, hidden=32):
+def digits_module(seen, hidden=32, dropout=0.0):
     """A LightningModule on sklearn's load_digits that keeps its own record of its training losses."""
     pl = pytest.importorskip("lightning.pytorch")
 
     class Digits(pl.LightningModule):
         def __init__(self):
             super().__init__()
-            self.net = torch.nn.Sequential(torch.nn.Linear(64, hidden), torch.nn.ReLU(), torch.nn.Linear(hidden, 10))
+            self.net = torch.nn.Sequential(torch.nn.Linear(64, hidden), torch.nn.ReLU(), torch.nn.Dropout(dropout),
+                                           torch.nn.Linear(hidden, 10))
 
         def training_step(self, batch, batch_idx):
             loss = torch.nn.functional.cross_entropy(self.net(batch[0]), batch[1])
-            seen.append(float(loss.detach()))
+            if self._trainer is not None:     # not the recorder's trained-loss check (a copy, no trainer)
+                seen.append(float(loss.detach()))
             return loss
 
         def configure_optimizers(self):
@@ -110,6 +140,22 @@ def test_a_lightning_run_with_accumulation_records_the_undivided_mean(tmp_path):
     np.testing.assert_allclose(run.loss, expected, rtol=1e-6)
     assert run.meta["clip"]["max_norm"] == 0.5 and "undivided" in run.meta["loss_source"]
     assert run.settings["lr"][:, 0].tolist()[9:11] == pytest.approx([3e-3, 1.5e-3])   # StepLR after 10 steps
+
+
+def test_a_lightning_run_self_replays_bit_exactly_from_its_kept_batches(tmp_path):
+    """Dropout on, 2 micro-batches a step, clipping, 2 epochs (10 steps each): the replay runs the module's
+    training_step on the kept (batch, batch_idx) with no batches and no step_fn, across the boundary."""
+    torch.manual_seed(0)
+    module = digits_module([], dropout=0.2)
+    callback = nbkit.lightning_callback(tmp_path / "digits", keyframe_every=5)
+    fit(module, callback, 2, accumulate_grad_batches=2, gradient_clip_val=0.5)
+    run = nbkit.load(tmp_path / "digits")
+    assert run.meta["trained_loss"]["rebuild"] == "training_step" and len(run.kept_steps) == 20
+    assert run.kept_step(0).scales == [0.5, 0.5]        # Lightning divides by accumulate_grad_batches
+    torch.manual_seed(1)
+    runs = nbkit.replay(run, digits_module([], dropout=0.2), start=6, progress=False)
+    fidelity = runs["recorded"].meta["replay"]["fidelity"]
+    assert fidelity["identical"] and fidelity["steps"] == 14, fidelity
 
 
 def test_a_second_fit_appends_and_another_model_is_refused(tmp_path):
