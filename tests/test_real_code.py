@@ -17,6 +17,7 @@ import pytest
 import torch
 
 import nbkit
+import nbkit.store.batches
 from nbkit.cli import main as cli
 from nbkit.errors import RecorderError, RecorderWarning
 
@@ -341,3 +342,38 @@ def test_a_loss_reported_after_every_step_gives_no_warning(tmp_path, capsys):
     assert not math.isnan(nbkit.load(tmp_path / "run").loss[-1])
     cli(["info", str(tmp_path / "run")])
     assert "without a loss" not in capsys.readouterr().out
+
+
+def test_an_autocast_step_is_kept_with_its_autocast_state_and_replays_bit_exactly(tmp_path):
+    """bfloat16 autocast on the CPU, dropout and a label-smoothed criterion: the kept step holds the
+    autocast state in force at its forward, the replay enters it again and remakes the criterion."""
+    def make():
+        torch.manual_seed(0)
+        return torch.nn.Sequential(torch.nn.Linear(16, 32), torch.nn.GELU(), torch.nn.Dropout(0.1),
+                                   torch.nn.Linear(32, 4))
+
+    model, criterion = make(), torch.nn.CrossEntropyLoss(label_smoothing=0.1)
+    optimizer = torch.optim.AdamW(model.parameters(), lr=1e-2)
+    generator = torch.Generator().manual_seed(1)
+    data = [(torch.randn(16, 16, generator=generator), torch.randint(0, 4, (16,), generator=generator))
+            for _ in range(12)]
+    with nbkit.record(model, optimizer, tmp_path / "run", criterion=criterion, keyframe_every=4):
+        for x, y in data:
+            optimizer.zero_grad()
+            with torch.autocast("cpu", dtype=torch.bfloat16):
+                loss = criterion(model(x), y)
+            loss.backward()
+            optimizer.step()
+    run = nbkit.load(tmp_path / "run")
+    assert run.kept_step(3).autocast["cpu"] == [True, "bfloat16"]
+    assert run.meta["criterion_spec"]["arguments"]["label_smoothing"] == 0.1
+    assert run.meta["trained_loss"]["checks"][0]["verdict"] == "bit-exact"
+    fidelity = nbkit.replay(run, make(), start=5, progress=False)["recorded"].meta["replay"]["fidelity"]
+    assert fidelity["identical"], fidelity
+    # without the autocast state the replay runs in float32 and differs: the check above could fail
+    for step in run.kept_steps:
+        kept = run.kept_step(step)
+        kept.autocast = {"cpu": [False, "bfloat16"]}
+        nbkit.store.batches.write_kept_step(run.path, step, kept)
+    fidelity = nbkit.replay(run, make(), start=5, progress=False, strict=False)["recorded"].meta["replay"]["fidelity"]
+    assert not fidelity["identical"]

@@ -423,13 +423,8 @@ class Recorder:
         self._check_writer_kept()
         if not self._keeping or not taken.micro_batches:
             return
-        micro = taken.micro_batches
-        step = kept.KeptStep(
-            self.step, [m.as_kept() for m in micro], {"cpu": taken.rng_state} if taken.rng_state is not None else {},
-            taken.autocast, [m.loss().scale if m.loss() is not None else None for m in micro],
-            "training_step" if any(m.call is not None for m in micro) else "forward", {})
         try:
-            packed = kept.pack_kept_step(step)
+            packed = kept.pack_kept_step(taken.kept_step(self.step))
         except kept.UnstorableLeaf as exc:
             self._reports.usage(f"{exc}; later steps with such a leaf are not kept either (replays of them need "
                                 "batches=)", key="unstorable leaf")
@@ -456,37 +451,15 @@ class Recorder:
         self._check_pending, self._backward.want_probes = False, False
         before, self._params_before = self._params_before, None
         probes, self._backward.probes = self._backward.probes, None
-        kind, how = trained_loss.rebuild_kind(taken.micro_batches, self.criterion, self.step_fn)
-        result = {"step": self.step, "rebuild": kind, "how": how, "verdict": None}
-        if taken.closure_calls > 1:
-            kind, result["why"] = None, ("the optimizer evaluated its closure several times in one step (at other "
-                                         "parameters); replays of it need step_fn")
-            result["rebuild"] = None
-        elif kind is not None and before is not None and probes is not None and taken.rng_state is not None:
-            try:
-                result.update(trained_loss.check_step(self.model, self._tensors, before, probes, taken, kind,
-                                                      self.criterion, self.step_fn, self.pause))
-            except Exception as exc:
-                result.update(verdict=trained_loss.DIFFERENT, error=f"{type(exc).__name__}: {exc}")
-        elif kind is not None:
-            result["why"] = "no backward pass of the recorded tensors was seen at this step"
+        result = trained_loss.verify(self.model, self._tensors, before, probes, taken, self.criterion, self.step_fn,
+                                     self.pause, self.step)
         self._loss_checks = (self._loss_checks + [result])[-20:]
-        verdict = result["verdict"]
-        self.loss_rebuildable = verdict in (trained_loss.EXACT, trained_loss.CLOSE)
-        self.note(trained_loss={"rebuildable": self.loss_rebuildable, "rebuild": kind if self.loss_rebuildable
-                                else None, "checks": self._loss_checks})
-        if verdict == trained_loss.DIFFERENT:
-            detail = result.get("error") or (f"recorded probe-gradient norm {result['recorded_norm']:.6g}, rebuilt "
-                                             f"{result['rebuilt_norm']:.6g}")
-            fix = ("fix step_fn so it returns the loss your loop back-propagates for one micro-batch"
-                   if kind == "step_fn" else "pass step_fn=step_fn(model, micro_batch) -> loss to nbkit.record")
-            self.report_problem(f"the loss rebuilt at step {self.step} from {how} does not give the trained "
-                                f"gradient ({detail}); sharpness and noise estimates store NaN and replays need "
-                                f"a step_fn: {fix}")
-        elif verdict is None and self.options.curvature_every + self.options.noise_every > 0:
-            self.report_problem(f"the trained loss cannot be rebuilt at step {self.step}: "
-                                f"{result.get('why') or how}; sharpness and noise estimates store NaN. Pass "
-                                "step_fn=step_fn(model, micro_batch) -> loss to nbkit.record")
+        self.loss_rebuildable = result["verdict"] in (trained_loss.EXACT, trained_loss.CLOSE)
+        self.note(trained_loss={"rebuildable": self.loss_rebuildable,
+                                "rebuild": result["rebuild"] if self.loss_rebuildable else None, "checks": self._loss_checks})
+        problem = trained_loss.problem(result, estimates=self.options.curvature_every + self.options.noise_every > 0)
+        if problem:
+            self.report_problem(problem)
 
     def _finalize_rows(self, force: bool = False):
         """Hand finished rows to the writer, in step order. The open row (the last step's, kept for a

@@ -12,6 +12,7 @@ import numpy as np
 import torch
 
 from nbkit.measure.fingerprint import combine, fingerprint
+from nbkit.store.batches import KeptStep
 
 NO_LOSS = ("step {step} has no loss: no criterion= was given, the model's output has no loss (an output.loss "
            "or a \"loss\" key), no closure returned one and rec.loss() was not called, so the loss is NaN for "
@@ -108,6 +109,14 @@ class StepTaken:
     autocast: dict
     rng_digest: float
     closure_calls: int = 0
+
+    def kept_step(self, step: int) -> KeptStep:
+        """The step as a recording keeps it (nbkit.store.batches)."""
+        micro = self.micro_batches
+        return KeptStep(step, [m.as_kept() for m in micro],
+                        {"cpu": self.rng_state} if self.rng_state is not None else {}, self.autocast,
+                        [m.loss().scale if m.loss() is not None else None for m in micro],
+                        "training_step" if any(m.call is not None for m in micro) else "forward", {})
 
 
 class StepInputs:

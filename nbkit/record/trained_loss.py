@@ -178,3 +178,38 @@ def clip_gradients(model, optimizer, clip: dict | None, factor: float) -> None:
         grads = [p.grad for group in optimizer.param_groups for p in group["params"] if p.grad is not None]
         if grads:
             torch._foreach_mul_(grads, factor)
+
+
+def verify(model, tensors, before, probes, taken, criterion, step_fn, pause, step: int) -> dict:
+    """The trained-loss check of step `step` (check_step), as the entry the metadata lists under
+    trained_loss.checks: rebuild, how, verdict (EXACT, CLOSE, DIFFERENT, or None: no check) and the norms."""
+    kind, how = rebuild_kind(taken.micro_batches, criterion, step_fn)
+    result = {"step": step, "rebuild": kind, "how": how, "verdict": None}
+    if taken.closure_calls > 1:
+        result.update(rebuild=None, why="the optimizer evaluated its closure several times in one step (at other "
+                                        "parameters); replays of it need step_fn")
+    elif kind is not None and before is not None and probes is not None and taken.rng_state is not None:
+        try:
+            result.update(check_step(model, tensors, before, probes, taken, kind, criterion, step_fn, pause))
+        except Exception as exc:           # the rebuild itself failed: it is not the trained loss
+            result.update(verdict=DIFFERENT, error=f"{type(exc).__name__}: {exc}")
+    elif kind is not None:
+        result["why"] = "no backward pass of the recorded tensors was seen at this step"
+    return result
+
+
+def problem(result: dict, estimates: bool) -> str | None:
+    """What to warn about a check (verify): a rebuild that gives another gradient always; no rebuild at
+    all only when estimates need one (replays say so themselves)."""
+    step, how = result["step"], result["how"]
+    if result["verdict"] == DIFFERENT:
+        detail = result.get("error") or (f"recorded probe-gradient norm {result['recorded_norm']:.6g}, rebuilt "
+                                         f"{result['rebuilt_norm']:.6g}")
+        fix = ("fix step_fn so it returns the loss your loop back-propagates for one micro-batch"
+               if result["rebuild"] == "step_fn" else "pass step_fn=step_fn(model, micro_batch) -> loss to nbkit.record")
+        return (f"the loss rebuilt at step {step} from {how} does not give the trained gradient ({detail}); "
+                f"sharpness and noise estimates store NaN and replays need a step_fn: {fix}")
+    if result["verdict"] is None and estimates:
+        return (f"the trained loss cannot be rebuilt at step {step}: {result.get('why') or how}; sharpness and "
+                "noise estimates store NaN. Pass step_fn=step_fn(model, micro_batch) -> loss to nbkit.record")
+    return None

@@ -12,12 +12,17 @@ from nbkit.replay.workers import in_workers
 
 def replay(run, model, step_fn=None, batches=None, optimizers=None, start=None, steps=None, to=None, before_step=None,
            workers=1, progress=True, strict=True) -> dict:
-    """Replay `run` from the keyframe at or before `start` on the same batches; see DESIGN.md §3.
+    """Replay `run` from the keyframe at or before `start` on the same batches (README: Replays).
 
     run: a Recording (or its path). model: the recorded architecture (only copies are trained); a
     torch.compile'd or DDP-wrapped model is replayed as its plain module, eagerly.
-    step_fn(model, batch) -> loss. batches: an iterable yielding the run's batches from step 0, or
-    a callable batches(step) -> batch. optimizers=None: {"recorded": None}; otherwise name ->
+    step_fn and batches: both optional when the recording kept the window's batches (run.replayable_windows)
+    and verified its trained loss (run.meta["trained_loss"]); then each kept micro-batch
+    {"args", "kwargs", "targets"} is run again with its recorded random and autocast state, its loss
+    rebuilt as verified (or by step_fn(model, micro_batch) -> loss) and back-propagated with its recorded
+    scale, and the recorded clipping re-applied unless before_step is given. With batches:
+    step_fn(model, batch) -> loss per step; batches an iterable yielding the run's batches from step 0,
+    or a callable batches(step) -> batch. optimizers=None: {"recorded": None}; otherwise name ->
     factory(groups) -> optimizer, where groups are the recorded parameter groups as [{"params": [...]}]
     plus the settings that stay constant over the run, differ between groups and the target optimizer
     knows (e.g. a no-decay group's weight_decay=0; never lr; nbkit.replay.restore.factory_optimizer,
