@@ -30,7 +30,7 @@ def run(args) -> int:
               f"optimizer {meta['optimizer']['class']}, keyframes {recording.keyframes}")
         print(f"  size {size['total'] / 1e6:.1f} MB (rows {size['rows'] / 1e6:.1f} MB"
               + (f", {per_step:,.0f} bytes per step" if per_step == per_step else "")
-              + f"; keyframes {size['keyframes'] / 1e6:.1f} MB)")
+              + f"; keyframes {size['keyframes'] / 1e6:.1f} MB; kept batches {size['batches'] / 1e6:.1f} MB)")
         print("  " + ("closed cleanly" if recording.closed_cleanly else
                       "not closed cleanly: still being written, or the process stopped before close()"))
         without_loss = int(np.isnan(recording.loss).sum())
@@ -39,4 +39,19 @@ def run(args) -> int:
                   "closure or rec.loss() gave one)")
         if replay:
             print(f"  replay of {replay.get('parent')} from step {replay.get('start')}")
+        elif meta.get("keep_batches") is False:
+            print("  batches not kept (keep_batches=False): replays need batches= and step_fn=")
+        else:
+            kept = recording.kept_steps
+            windows = ", ".join(f"{a}..{b}" for a, b in recording.replayable_windows) or "none"
+            stopped = (meta.get("kept_batches") or {}).get("stopped")
+            print(f"  kept batches: {len(kept)} steps, replayable without a loader over {windows}"
+                  + (f" (keeping stopped: {stopped})" if stopped else ""))
+        checked = meta.get("trained_loss")
+        if checked and not replay:
+            last = checked["checks"][-1]
+            print("  trained loss: " + (f"rebuilt from {last['how']}, {last['verdict']} at step {last['step']}"
+                                        if checked["rebuildable"] else
+                                        f"not rebuildable ({last.get('error') or last.get('why') or last['how']}): "
+                                        "replays need step_fn="))
     return status

@@ -25,6 +25,7 @@ class BackwardWatch:
         self._norms = None                  # (indices of tensors with a gradient, their float32 norms)
         self._queued = False
         self._handle = None
+        self._by_size = sorted(range(len(tensors)), key=lambda i: tensors[i].param.numel())   # clip reference order
         sentinel = next((t.param for t in tensors if t.param.requires_grad), None)
         if sentinel is not None:
             self._handle = sentinel.register_post_accumulate_grad_hook(lambda _param: self.seen())
@@ -70,11 +71,12 @@ class BackwardWatch:
         present, values = norms
         pre = torch.stack(values).double()
         total = float(pre.norm())
-        candidates = [(self.tensors[i].param.numel(), k, i) for k, i in enumerate(present) if pre[k] > 0]
-        if not candidates:
+        nonzero = dict(zip(present, range(len(present))))
+        flags = (pre > 0).tolist()
+        k = next((nonzero[i] for i in self._by_size if i in nonzero and flags[nonzero[i]]), None)
+        if k is None:
             return total, math.nan
-        _, k, i = min(candidates)
-        grad = self.tensors[i].param.grad
+        grad = self.tensors[present[k]].param.grad
         if grad is None or grad.is_sparse:
             return total, math.nan
         post = torch._foreach_norm([grad])[0]

@@ -289,6 +289,7 @@ class Recorder:
             lifetime.forget(self)
         if self._writer.error is not None and "writing the recording failed" not in self._reports.said:
             self._fail("writing the recording failed", self._writer.error)
+        self._check_writer_kept()             # a disk that filled up during the last steps
 
     remove = close
 

@@ -63,8 +63,11 @@ def compare_recordings(parent, child) -> dict:
             firsts.append((int(common[row]), precedence, len(firsts), what))
 
     if len(common):
-        out["loss"] = _largest(parent.loss[parent_rows], child.loss[child_rows])
-        note(first_differing_row(parent.loss[parent_rows], child.loss[child_rows]), 3, "the loss")
+        # a step whose loss the parent never knew (no loss source) cannot differ: the replay's own is kept
+        parent_loss, child_loss = parent.loss[parent_rows], child.loss[child_rows].copy()
+        child_loss[np.isnan(parent_loss)] = np.nan
+        out["loss"] = _largest(parent_loss, child_loss)
+        note(first_differing_row(parent_loss, child_loss), 3, "the loss")
         a, b = _settings(parent), _settings(child)
         for name in [n for n in a if n in b]:
             x, y = a[name][parent_rows], b[name][child_rows]

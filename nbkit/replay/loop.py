@@ -197,7 +197,7 @@ def _loop(lanes, recorded, step_fn, fetch, first, end, before_step, strict, bar)
             if several:
                 restore.set_rng(lane.rng)
             _step(lane, step_fn, batch, before_step, step, recorded, row)
-            _check_fingerprint(lane, recorded.fingerprints[row], step, strict)
+            _check_fingerprint(lane, recorded.fingerprints[row], step, strict, isinstance(batch, KeptStep))
             _check_random_state(lane, recorded.rng_digests[row], step, strict)
             if several:
                 lane.rng = restore.get_rng()
@@ -314,7 +314,11 @@ def _check_random_state(lane, recorded, step, strict):
     lane.mismatches.append(int(step))
 
 
-def _check_fingerprint(lane, recorded, step, strict):
+KEPT_ADVICE = ("The kept batch in the recording's batches/ folder no longer matches the fingerprint recorded with "
+               "it: the file was changed or damaged")
+
+
+def _check_fingerprint(lane, recorded, step, strict, kept=False):
     ok = matches(recorded[0], lane.prints)
     if ok and lane.target_prints:
         ok = matches(recorded[1], lane.target_prints)
@@ -324,7 +328,7 @@ def _check_fingerprint(lane, recorded, step, strict):
     which = 0 if not matches(recorded[0], lane.prints) else 1
     part = "model inputs" if which == 0 else "targets given to the criterion"
     message = (f"Replay {lane.name!r}: the batch at step {step} differs from the recording ({part}: "
-               f"{describe_difference(recorded[which], seen[which])}). " + DATALOADER_ADVICE +
+               f"{describe_difference(recorded[which], seen[which])}). " + (KEPT_ADVICE if kept else DATALOADER_ADVICE) +
                ". Pass strict=False to continue with a warning.")
     if strict:
         raise ReplayError(message)

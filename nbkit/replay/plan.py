@@ -97,7 +97,7 @@ def kept_keyframe(run, first: int, last: int) -> int:
     replayable window (nbkit.store.batches.windows) covers them."""
     for start, end in sorted(run.replayable_windows, reverse=True):
         if start <= first and last <= end:
-            return start
+            return max(k for k in run.keyframes if start <= k <= first)
     windows = ", ".join(f"{a}-{b}" for a, b in run.replayable_windows) or "none"
     why = ("it was recorded with keep_batches=False" if run.meta.get("keep_batches") is False
            else f"its replayable windows (kept steps from a keyframe on) are: {windows}")

@@ -100,7 +100,7 @@ def _scalar(value, path: str, key: bool = False) -> dict:
         return {"kind": "str", "value": str(value)}
     if isinstance(value, float) and not key:
         return {"kind": "float", "value": float(value) if math.isfinite(value) else str(value)}
-    raise UnstorableLeaf(path, f"a dict key of type {_type_name(value)}" if key else f"a {_type_name(value)}")
+    raise UnstorableLeaf(path, f"a dict key of type {_type_name(value)}" if key else f"a value of type {_type_name(value)}")
 
 
 def _type_name(value) -> str:
@@ -114,7 +114,7 @@ def _tensor(tensor: torch.Tensor, path: str, pieces: dict, kind: str) -> dict:
             "on the meta device (it holds no values)" if tensor.device.type == "meta" else
             f"of dtype {tensor.dtype}" if tensor.dtype not in _STORED else None)
     if what:
-        raise UnstorableLeaf(path, f"a {_type_name(tensor)} {what}")
+        raise UnstorableLeaf(path, f"a tensor of type {_type_name(tensor)} {what}")
     tag = str(tensor.dtype).removeprefix("torch.")
     order = _memory_order(tensor)               # of the original: a copy to the CPU may change strides
     values = tensor.detach().to("cpu")

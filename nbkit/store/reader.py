@@ -334,12 +334,14 @@ class RecordingReader:
         return slice(int(np.searchsorted(steps, first)), int(np.searchsorted(steps, last, side="right")))
 
     def size_report(self) -> dict:
-        """Bytes on disk by part ("rows": step arrays, "keyframes", "metadata", "total") and per step."""
-        parts = {"rows": 0, "keyframes": 0, "metadata": 0}
+        """Bytes on disk by part ("rows": step arrays, "keyframes", "batches": kept steps, "metadata",
+        "total") and per step."""
+        parts = {"rows": 0, "keyframes": 0, "batches": 0, "metadata": 0}
         for f in self.path.rglob("*"):
             if f.is_file():
                 top = f.relative_to(self.path).parts[0]
-                part = "keyframes" if top == layout.KEYFRAME_DIR else "metadata" if len(f.relative_to(self.path).parts) == 1 else "rows"
+                part = ("keyframes" if top == layout.KEYFRAME_DIR else "batches" if top == kept.BATCH_DIR
+                        else "metadata" if len(f.relative_to(self.path).parts) == 1 else "rows")
                 parts[part] += f.stat().st_size
         parts["total"] = sum(parts.values())
         parts["steps"] = self._committed

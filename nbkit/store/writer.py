@@ -44,6 +44,7 @@ class RecordingWriter:
         self.batch_budget = int(meta.get("batch_budget_bytes", 0))
         self._kept_bytes = kept.kept_bytes(self.path) if resume is not None else 0
         self._kept_dropped = 0
+        self._kept_full_until = None          # set while the window being written fills the budget
         self.max_write_seconds = 0.0
         self._probe_index = probe_index
         self._queue: queue.Queue = queue.Queue()
@@ -207,6 +208,11 @@ class RecordingWriter:
 
     # --- kept batches ---------------------------------------------------------------------------
     def _write_kept(self, step: int, packed) -> None:
+        keyframes = kf.list_keyframes(self.path)
+        if self._kept_full_until is not None:       # the current window already fills the budget
+            if step not in keyframes:
+                return
+            self._kept_full_until = None             # a new window begins at this keyframe
         try:
             self._kept_bytes += kept.write_packed_step(self.path, step, packed)
         except OSError as exc:                 # disk full: stop keeping, never stop the recording
@@ -214,20 +220,24 @@ class RecordingWriter:
             self._note_kept(stopped=f"{type(exc).__name__}: {exc}")
             return
         if self._kept_bytes > self.batch_budget:
-            self._drop_oldest_window()
+            self._drop_older_windows(step, keyframes)
 
-    def _drop_oldest_window(self) -> None:
+    def _drop_older_windows(self, step: int, keyframes: list[int]) -> None:
         """Over the budget: delete the oldest kept steps up to the next keyframe after them, so what
-        stays still starts at a keyframe (DESIGN.md §5); repeat while over."""
+        stays still starts at a keyframe (DESIGN.md §5), while older windows exist. The window being
+        written (from the last keyframe at or before `step`) is never cut: when it alone fills the
+        budget, no step is kept until the next keyframe starts a new one."""
+        current = max((k for k in keyframes if k <= step), default=step)
         steps = kept.kept_steps(self.path)
-        keyframes = kf.list_keyframes(self.path)
-        while self._kept_bytes > self.batch_budget and len(steps) > 1:
-            cut = next((k for k in keyframes if k > steps[0]), steps[-1])
-            doomed = [s for s in steps if s < cut] or steps[:1]
+        while self._kept_bytes > self.batch_budget and steps and steps[0] < current:
+            cut = min(next((k for k in keyframes if k > steps[0]), current), current)
+            doomed = [s for s in steps if s < cut]
             self._kept_bytes -= sum(kept.kept_step_path(self.path, s).stat().st_size for s in doomed)
             kept.delete_kept_steps(self.path, doomed)
             self._kept_dropped += len(doomed)
             steps = steps[len(doomed):]
+        if self._kept_bytes > self.batch_budget:
+            self._kept_full_until = current
         self._note_kept()
 
     def _note_kept(self, stopped: str | None = None) -> None:
