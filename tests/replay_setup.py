@@ -78,7 +78,8 @@ def record_run(path, steps=230, keyframe_every=50, schedule=False, clipping=Fals
     optimizer = torch.optim.Adam(model.parameters(), lr=1e-2)
     scheduler = torch.optim.lr_scheduler.StepLR(optimizer, step_size=40, gamma=0.5) if schedule else None
     batches = Batches(seed)
-    with nbkit.record(model, optimizer, path, criterion=CRITERION, keyframe_every=keyframe_every, probes=16):
+    with nbkit.record(model, optimizer, path, criterion=CRITERION, keyframe_every=keyframe_every, probes=16,
+                      every=1):                      # replay tests compare probes at every step
         for step in range(steps):
             optimizer.zero_grad()
             if accumulate:

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
 import torch
 
 
@@ -59,25 +60,28 @@ class BackwardWatch:
         except Exception as exc:            # never into the user's backward()
             self.report("the end-of-backward statistics failed", exc)
 
-    def step_ended(self) -> tuple[float, float]:
-        """(pre-clip gradient norm, clip factor) of the step just taken; NaN where no backward was seen.
+    def step_ended(self) -> tuple[float, float, np.ndarray | None]:
+        """(pre-clip gradient norm, clip factor, per-tensor pre-clip norms) of the step just taken; NaN
+        (None for the norms) where no backward was seen.
 
         The factor is post-clip ÷ pre-clip norm of the smallest tensor with a non-zero gradient, both
         with the same kernel, so an unclipped step gives exactly 1 and clip_grad_norm_'s one common
         coefficient is measured to float32 rounding."""
         norms, self._norms = self._norms, None
         if norms is None:
-            return math.nan, math.nan
+            return math.nan, math.nan, None
         present, values = norms
         pre = torch.stack(values).double()
         total = float(pre.norm())
+        per_tensor = np.full(len(self.tensors), np.nan, dtype=np.float32)
+        per_tensor[present] = pre.numpy()
         nonzero = dict(zip(present, range(len(present))))
         flags = (pre > 0).tolist()
         k = next((nonzero[i] for i in self._by_size if i in nonzero and flags[nonzero[i]]), None)
         if k is None:
-            return total, math.nan
+            return total, math.nan, per_tensor
         grad = self.tensors[present[k]].param.grad
         if grad is None or grad.is_sparse:
-            return total, math.nan
+            return total, math.nan, per_tensor
         post = torch._foreach_norm([grad])[0]
-        return total, float(post.double() / values[k].double())
+        return total, float(post.double() / values[k].double()), per_tensor

@@ -315,16 +315,22 @@ def deliver(row: Row, ks: list, probe_counts: list, n_probes: int, results: Bloc
                 block_values[ks[r], count:] = np.nan
 
 
-def prepare_step(blocks: list[Block], row: Row, optimizer, adapter: Adapter, probes: int, *, report) -> list[BlockJob]:
+def prepare_step(blocks: list[Block], row: Row, optimizer, adapter: Adapter, probes: int, *, report,
+                 consecutive: bool = True) -> list[BlockJob]:
     """Post-step, on the training thread: mark `row` heavy and prepare the statistics of every block
     copied before this step (tensors with a dense gradient); the jobs' results fill in `row`.
-    report(what): how a sparse gradient is reported (it is not recorded)."""
+    report(what): how a sparse gradient is reported (it is not recorded). consecutive=False: the
+    previous heavy step was not the step before, so grad_cosine and sign_flip, which compare
+    neighbouring steps, stay NaN."""
     row.heavy = True
     jobs = []
     for block in blocks:
         if not block.copied:
             continue
         block.copied = False
+        if not consecutive:
+            for r in range(len(block.tensors)):
+                forget_gradient(block, r)
         members = []
         for r, (t, k) in enumerate(zip(block.tensors, block.positions)):
             if t.stopped:

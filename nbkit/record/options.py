@@ -25,8 +25,10 @@ def option(default, help: str):
 class RecordOptions:
     """Every keyword of nbkit.record after model, optimizer and path, with its default."""
 
-    every: int = option(1, "heavy per-tensor quantities every N steps (loss, learning rates and "
-                           "fingerprints every step)")
+    every: int | str = option("auto", "heavy per-tensor quantities every N steps, or \"auto\": the stride (in "
+                                      "pairs of neighbouring steps, the first 50 steps in full) that keeps the "
+                                      "recorder's measured cost within 5 % of the training step; loss, settings, "
+                                      "fingerprints, kept batches and gradient norms every step")
     probes: int = option(64, "probe coordinates per tensor, kept in full every heavy step")
     keyframe_every: int = option(100, "keyframe stride (plus step 0 and the final state at close())")
     criterion: torch.nn.Module | None = option(None, "an nn.Module loss; its training-mode outputs give each "
@@ -52,7 +54,10 @@ class RecordOptions:
     overwrite: bool = option(False, "True: replace an existing recording at the path")
 
     def __post_init__(self):
-        for name, low in (("every", 1), ("probes", 0), ("keyframe_every", 1), ("curvature_every", 0),
+        if self.every != "auto" and (not isinstance(self.every, int) or isinstance(self.every, bool) or self.every < 1):
+            raise RecorderError(f"Invalid every: {self.every!r}; expected \"auto\" (the default: within 5 % of the "
+                                "training step) or a positive integer (1: every step in full)")
+        for name, low in (("probes", 0), ("keyframe_every", 1), ("curvature_every", 0),
                           ("noise_every", 0)):
             value = getattr(self, name)
             if not isinstance(value, int) or isinstance(value, bool) or value < low:

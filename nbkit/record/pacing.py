@@ -78,6 +78,7 @@ class Pacer:
         self.statistics_seconds: float | None = None
         self.backward_seconds: float | None = None       # forward's end to the next optimizer step
         self._forward_end: float | None = None
+        self.cpu_seconds = 0.0          # CPU time of this recorder's statistics so far (every="auto")
 
     def submit(self, jobs: list[BlockJob], background: bool = True) -> StatisticsTask:
         task = StatisticsTask(jobs, self)
@@ -120,8 +121,10 @@ def run_statistics(jobs: list[BlockJob], pacer: Pacer | None = None) -> None:
             except Exception as exc:             # noqa: BLE001 - raised below, after the other blocks
                 error = error or exc
     finally:
-        BACKGROUND_CPU[0] += time.thread_time() - started
+        cpu = time.thread_time() - started
+        BACKGROUND_CPU[0] += cpu
         if pacer is not None:
+            pacer.cpu_seconds += cpu
             pacer.statistics_took(time.perf_counter() - started_wall)
     if error is not None:
         raise error

@@ -12,6 +12,7 @@ from __future__ import annotations
 import collections
 import contextlib
 import functools
+import time
 import weakref
 from pathlib import Path
 
@@ -24,6 +25,7 @@ from nbkit.errors import RecorderError
 from nbkit.measure.update_rules import adapter_for
 from nbkit.record import capture, lifetime, setup, trained_loss, wrappers
 from nbkit.record.backward import BackwardWatch
+from nbkit.record.budget import StrideBudget
 from nbkit.record.estimates import estimates_for
 from nbkit.record.options import RecordOptions
 from nbkit.record.pacing import Pacer
@@ -86,6 +88,11 @@ class Recorder:
         self._kept_layout = None                       # layout signature of the last kept step
         self._layout_changes: list = []
         self._keeping = options.batch_budget > 0
+        self._budget = StrideBudget() if options.every == "auto" else None
+        self._stride = 1 if self._budget is not None else options.every
+        self._last_heavy = None                        # the last heavy step (neighbour comparisons need step - 1)
+        self._spent = [0.0, 0.0]                       # this step's training-thread seconds: light, heavy extras
+        self._background_seen = (0.0, 0.0)             # statistics and writer CPU seconds measured so far
         self._blocks = None                 # nbkit.record.capture.Block list, made at the first step
         self.pacer = Pacer()                # when the statistics run (tests set its thresholds)
         self._tensors, orphans, frozen = setup.tensor_table(
@@ -96,6 +103,8 @@ class Recorder:
         self._writer, next_step = setup.open_writer(self.recording_path, meta, options, optimizer, self.adapter,
                                                     setup.probe_index(self._tensors, self.probes))
         self.step = self.step if next_step is None else next_step     # resume: steps continue
+        self._strides = [[self.step, self._stride]]
+        self._writer.update_meta(strides=self._strides)
         self._settings = SettingsReader(setting_columns(self._writer.meta))   # the stored keys: fixed at the start
         self._backward = BackwardWatch(self._tensors, self.report_problem)
         self._backward.want_probes = check_loss
@@ -330,6 +339,7 @@ class Recorder:
             return None
         if not self.active:
             return None
+        started = time.perf_counter()
         try:
             self._finalize_rows()
             if self.model.training and torch.is_grad_enabled():
@@ -337,6 +347,7 @@ class Recorder:
                 self._forward_since_step = True
         except Exception as exc:
             self._fail("a forward pre-hook failed", exc)
+        self._spent[0] += time.perf_counter() - started
         return None
 
     def _after_forward(self, module, args, output):
@@ -357,6 +368,9 @@ class Recorder:
         self._depth += 1
         if self._depth > 1 or not self.active:
             return None                     # a subclass calling super().step(): record once
+        started = time.perf_counter()
+        if self._budget is not None:
+            self._budget.step_started(started)
         try:
             if self._traced:
                 self._reports.usage(wrappers.COMPILED_AFTER_RECORD)
@@ -365,10 +379,14 @@ class Recorder:
             self._finalize_rows()
             if self._check_pending:
                 self._params_before = [t.param.detach().clone() for t in self._tensors]
+            heavy_started = time.perf_counter()
             if self._heavy(self.step):
                 self._copy_before()
             elif self._blocks:
                 capture.wait_all(self._blocks)   # the statistics thread reads the optimizer state
+            heavy_seconds = time.perf_counter() - heavy_started
+            self._spent[1] += heavy_seconds
+            self._spent[0] += heavy_started - started
             # args holds the optimizer itself first, then step()'s own arguments
             closure = kwargs.get("closure", args[1] if len(args) > 1 else None)
             if closure is not None:                  # its loss is the step's loss when nothing else gives one
@@ -383,21 +401,28 @@ class Recorder:
             if self._depth <= 0 and not self.active:
                 self.step += 1
             return
+        started = time.perf_counter()
         try:
             taken = self._inputs.take()
             row = self._light_row(taken)
-            row.grad_norm, row.clip_factor = self._backward.step_ended()
+            row.grad_norm, row.clip_factor, row.tensor_grad_norm = self._backward.step_ended()
             row.rng_digest = taken.rng_digest
-            tasks = self._heavy_row(row) if self._heavy(self.step) else []
+            heavy = self._heavy(self.step)
+            heavy_started = time.perf_counter()
+            tasks = self._heavy_row(row) if heavy else []
+            heavy_seconds = time.perf_counter() - heavy_started
             if self._check_pending:
-                self._check_trained_loss(taken)
+                self._check_trained_loss(taken)     # once: not counted in the budget
+                started = time.perf_counter() - (heavy_started - started) - heavy_seconds
             self._keep(taken)
             for hook in list(self._step_hooks.values()):
                 hook(row)
             self._open_row, self._open_tasks = row, tasks
             self._forward_since_step = False
+            self._spend(time.perf_counter() - started - heavy_seconds, heavy_seconds, heavy)
             if (self.step + 1) % self.keyframe_every == 0:
                 self._take_keyframe(self.step + 1)
+                self._choose_stride(self.step + 1)
         except Exception as exc:
             self._fail(f"recording step {self.step} failed", exc)
         finally:
@@ -406,7 +431,29 @@ class Recorder:
 
     # --- rows -----------------------------------------------------------------------------------
     def _heavy(self, step: int) -> bool:
-        return step % self.every == 0
+        if self._budget is not None:
+            return StrideBudget.heavy(step, self._stride)
+        return step % self._stride == 0
+
+    def _spend(self, light: float, extra: float, heavy: bool) -> None:
+        """This step's own cost into the budget (every="auto"), with the background threads' CPU time."""
+        spent, self._spent = self._spent, [0.0, 0.0]
+        if self._budget is None:
+            return
+        self._budget.measured(spent[0] + light, spent[1] + extra, heavy)
+        background = (self.pacer.cpu_seconds, self._writer.cpu_seconds)
+        seen, self._background_seen = self._background_seen, background
+        self._budget.background(background[0] - seen[0], background[1] - seen[1])
+
+    def _choose_stride(self, step: int) -> None:
+        """every="auto": the stride from keyframe `step` on; stored in the metadata when it changes."""
+        if self._budget is None:
+            return
+        stride = self._budget.stride_at(step)
+        if stride != self._stride:
+            self._stride = stride
+            self._strides.append([step, stride])
+        self.note(strides=self._strides[-1000:], budget=self._budget.report())
 
     def _light_row(self, taken: StepTaken) -> Row:
         groups = self.optimizer.param_groups
@@ -493,8 +540,9 @@ class Recorder:
     def _heavy_row(self, row: Row) -> list:
         """Post-step: start the per-tensor quantities, histograms and probes of `row`; returns the
         statistics tasks that fill them in."""
+        consecutive, self._last_heavy = self._last_heavy == self.step - 1, self.step
         jobs = capture.prepare_step(self._blocks or (), row, self.optimizer, self.adapter, self.probes,
-                                    report=self.report_problem)
+                                    report=self.report_problem, consecutive=consecutive)
         return [self.pacer.submit(jobs, background=self.background)] if jobs else []
 
     # --- keyframes ------------------------------------------------------------------------------

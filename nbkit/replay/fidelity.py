@@ -78,15 +78,19 @@ def compare_recordings(parent, child) -> dict:
             if row is not None:
                 group = int(np.flatnonzero(~((x[row] == y[row]) | (np.isnan(x[row]) & np.isnan(y[row]))))[0])
                 note(row, 0, f"setting {name!r} of group {group}")
+        # probes exist on heavy rows only: a thinned parent (every="auto") is compared where both have them
+        heavy = np.flatnonzero(parent.heavy[parent_rows] & child.heavy[child_rows])
+        out["probe_steps"] = int(len(heavy))
         for tensor in child.tensors:
             if tensor not in parent.tensors:
                 continue
             a, b = parent.probes(tensor), child.probes(tensor)
             fields = set(a) & set(b) - {"index"}
             for field in sorted(fields, key=lambda f: (FIELD_ORDER.index(f) if f in FIELD_ORDER else len(FIELD_ORDER), f)):
-                out["probes"] = max(out["probes"], _largest(a[field][parent_rows], b[field][child_rows]))
-                note(first_differing_row(a[field][parent_rows], b[field][child_rows]), 1,
-                     f"tensor {tensor!r} (probe {field})")
+                x, y = a[field][parent_rows[heavy]], b[field][child_rows[heavy]]
+                out["probes"] = max(out["probes"], _largest(x, y))
+                row = first_differing_row(x, y)
+                note(None if row is None else int(heavy[row]), 1, f"tensor {tensor!r} (probe {field})")
     for step in sorted(set(parent.keyframes) & set(child.keyframes)):
         a, b = parent.keyframe(step)["model"], child.keyframe(step)["model"]
         for name in sorted(a.keys() & b.keys()):

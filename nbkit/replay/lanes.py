@@ -125,7 +125,7 @@ def lane_recorder(lane, plan, meta, threads_note) -> Recorder:
     # silently truncated recording behind
     # a replay keeps no batches of its own: it is replayed from its parent's
     options = RecordOptions.from_meta(meta, strict=True, overwrite=True, resume=False, expected_steps=None,
-                                      curvature_every=0, noise_every=0, keep_batches=False)
+                                      curvature_every=0, noise_every=0, keep_batches=False, every=plan.every)
     extra = {"replay": parent, "criterion": meta.get("criterion"), "criterion_spec": meta.get("criterion_spec"),
              "loss_source": meta.get("loss_source"), **({"clip": meta["clip"]} if meta.get("clip") else {})}
     recorder = Recorder(lane.model, lane.optimizer, plan.targets[lane.name], options, extra_meta=extra,

@@ -32,12 +32,13 @@ class Plan:
     before_step: object = None
     strict: bool = True
     record: bool = True
+    every: object = 1          # the replays' recording stride
     kept: bool = False         # the batches come from the recording (no `batches` given)
     rebuild: str | None = None     # how the loss is rebuilt without a step_fn (nbkit.record.trained_loss)
 
 
 def make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before_step, workers, strict,
-              record=True) -> Plan:
+              record=True, every=None) -> Plan:
     """Validate the arguments of replay() up front and say what to fix."""
     if len(run) == 0:
         raise ReplayError(f"The recording {str(run.path)!r} holds no steps yet; record some steps first")
@@ -74,7 +75,10 @@ def make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before
                           f"got {before_step!r}")
     if not isinstance(workers, int) or isinstance(workers, bool) or workers < 1:
         raise ReplayError(f"Invalid workers: {workers!r}; expected a positive integer")
-    factories = {RECORDED: None} if optimizers is None else optimizers
+    if every is not None and every != "auto" and (not isinstance(every, int) or isinstance(every, bool) or every < 1):
+        raise ReplayError(f"Invalid every: {every!r}; expected None, \"auto\" or a positive integer (1: every step in full)")
+    detail = every == 1 and optimizers is None
+    factories = {f"full-{start}-{start + steps - 1}" if detail else RECORDED: None} if optimizers is None else optimizers
     if not isinstance(factories, dict) or not factories:
         raise ReplayError(f"optimizers must be None or a non-empty dict name -> factory(groups) -> optimizer, "
                           f"got {optimizers!r}")
@@ -89,7 +93,7 @@ def make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before
         for name, target in targets.items():
             check_target(Path(target), run.path)
     return Plan(str(run.path), start, int(steps), keyframe, dict(factories), targets, before_step,
-                bool(strict), bool(record), kept, rebuild)
+                bool(strict), bool(record), 1 if every is None else every, kept, rebuild)
 
 
 def kept_keyframe(run, first: int, last: int) -> int:

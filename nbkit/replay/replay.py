@@ -11,7 +11,7 @@ from nbkit.replay.workers import in_workers
 
 
 def replay(run, model, step_fn=None, batches=None, optimizers=None, start=None, steps=None, to=None, before_step=None,
-           workers=1, progress=True, strict=True) -> dict:
+           every=None, workers=1, progress=True, strict=True) -> dict:
     """Replay `run` from the keyframe at or before `start` on the same batches (README: Replays).
 
     run: a Recording (or its path). model: the recorded architecture (only copies are trained); a
@@ -29,7 +29,10 @@ def replay(run, model, step_fn=None, batches=None, optimizers=None, start=None, 
     which may call the factory twice to learn what the target knows); a value None stands for the
     recorded optimizer. start=None: the run's first step. steps=None: to
     the run's last step. to=None: "<run path>.replays/<name>"; otherwise a folder holding <name>.
-    before_step=None: before_step(model, optimizer, step) before every optimizer.step(). workers=1:
+    before_step=None: before_step(model, optimizer, step) before every optimizer.step(). every: the
+    replays' recording stride (None: 1, every step in full); every=1 given with optimizers=None is a
+    detail window of a thinned recording: the recorded optimizer re-records steps start..end in full,
+    bit-exactly, under the name "full-<start>-<end>" (so windows do not overwrite each other). workers=1:
     replays run in this many spawned processes. progress=True: a tqdm.auto bar. strict=True: a batch
     whose fingerprint differs from the recording stops the replay (False: a warning, listed in meta).
     Returns {name: Recording}; each replay's meta["replay"] holds its parent, start, process id,
@@ -44,7 +47,8 @@ def replay(run, model, step_fn=None, batches=None, optimizers=None, start=None, 
     """
     run = run if isinstance(run, Recording) else load(run)
     model = unwrap_model(model).plain      # a compiled (or DDP) model: its plain module, replayed eagerly
-    plan = make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before_step, workers, strict)
+    plan = make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before_step, workers, strict,
+                     every=every)
     names = list(plan.factories)
     if workers > 1 and len(names) > 1:
         paths = in_workers(plan, copy_model(model), step_fn, batches, workers, progress)

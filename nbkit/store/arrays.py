@@ -92,6 +92,9 @@ class RowArrays:
         if layout.GRAD_NORM in a:
             for name in layout.BACKWARD_ARRAYS:
                 a[name][start:stop] = np.array([getattr(r, name) for r in rows], dtype=np.float64)
+            missing = np.full(len(self.meta["tensors"]), np.nan, dtype=np.float32)
+            a[layout.TENSOR_GRAD_NORMS][start:stop] = np.stack(
+                [missing if r.tensor_grad_norm is None else r.tensor_grad_norm for r in rows])
         if layout.SETTINGS in a:                   # recordings that store settings (meta["settings"])
             array = a[layout.SETTINGS]
             missing = np.full(array.shape[1:], np.nan)

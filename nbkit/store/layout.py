@@ -9,7 +9,7 @@ all take them from here. A recording directory holds
     step, loss, lr, heavy, fingerprint          one row per optimizer step (STEP_CHUNK rows a chunk)
     grad_norm, clip_factor, rng_digest          per step (meta["backward_stats"]): the pre-clip gradient
                           norm, post-clip ÷ pre-clip norm, CRC32 of the CPU RNG state at the step's first
-                          training forward
+                          training forward; tensor_grad_norm (steps, tensors) the pre-clip norm per tensor
     batches/              kept steps (nbkit.store.batches): <step>.safetensors each
     settings              (steps, groups, settings) float64: every numeric group setting, in
                           meta["settings"] order (tuples split: betas.0, betas.1; setting_name)
@@ -47,6 +47,7 @@ STEP, LOSS, LR, HEAVY, FINGERPRINT = "step", "loss", "lr", "heavy", "fingerprint
 SETTINGS = "settings"
 GRAD_NORM, CLIP_FACTOR, RNG_DIGEST = "grad_norm", "clip_factor", "rng_digest"
 BACKWARD_ARRAYS = (GRAD_NORM, CLIP_FACTOR, RNG_DIGEST)
+TENSOR_GRAD_NORMS = "tensor_grad_norm"       # (steps, tensors) float32 pre-clip gradient norm, every step
 KEPT_BATCH_BUDGET_BYTES = 1 << 30   # kept batches above this: only the newest windows stay
 PROBE_INDEX = "probe_index"
 OVERVIEW_LOSS = "overview/loss"
@@ -123,6 +124,7 @@ def row_arrays(meta: dict, groups: int) -> dict[str, ArraySpec]:
     if meta.get("backward_stats"):
         for name in BACKWARD_ARRAYS:
             specs[name] = ArraySpec((), "float64", STEP_CHUNK, np.nan)
+        specs[TENSOR_GRAD_NORMS] = ArraySpec((T,), "float32", STEP_CHUNK, np.nan)
     if meta.get("settings"):
         specs[SETTINGS] = ArraySpec((groups, len(meta["settings"])), "float64", STEP_CHUNK, np.nan)
     for q in meta["quantities"]:
@@ -180,6 +182,7 @@ class Row:
     grad_norm: float = float("nan")     # pre-clip gradient norm over the recorded tensors
     clip_factor: float = float("nan")   # post-clip ÷ pre-clip gradient norm (1: not clipped)
     rng_digest: float = float("nan")    # CRC32 of the CPU RNG state at the step's first training forward
+    tensor_grad_norm: np.ndarray | None = None   # (T,) float32 pre-clip gradient norm per tensor (NaN: none)
 
     @classmethod
     def light(cls, step: int, loss: float, lr: np.ndarray, fingerprint: np.ndarray, tensors: int,
@@ -242,7 +245,8 @@ def estimate_recording_bytes(meta: dict, expected_steps: int, *, state_copies: i
     light = 8 + 8 + 8 * G * (1 + len(meta.get("settings", []))) + 1 + 2 * FINGERPRINT_WIDTH * 8
     fields = 2 + state_copies                              # grad, update, and the moments kept as probes
     heavy = 4 * T * (Q + 3 * bins + fields * P)
-    every = max(1, int(meta.get("every", 1)))
+    every = meta.get("every", 1)
+    every = every if isinstance(every, int) and every >= 1 else 1      # "auto": every step, the upper bound
     row_bytes = expected_steps * light + -(-expected_steps // every) * heavy
     param_bytes = sum(t["numel"] * (8 if t["dtype"] in ("float64", "int64") else 4) for t in meta["tensors"])
     keyframe = state_copies * param_bytes

@@ -291,6 +291,14 @@ class RecordingReader:
         return self._backward_array(layout.GRAD_NORM)
 
     @property
+    def tensor_grad_norms(self) -> np.ndarray:
+        """(steps, tensors) float32 pre-clip gradient norm of each tensor at every step, heavy or not
+        (NaN: no gradient, or a recording before these were stored)."""
+        if not self.meta.get("backward_stats") or self._committed == 0:
+            return np.full((self._committed, len(self.tensors)), np.nan, dtype=np.float32)
+        return self._rows_of(layout.TENSOR_GRAD_NORMS)
+
+    @property
     def clip_factor(self) -> np.ndarray:
         """(steps,) float64 post-clip ÷ pre-clip gradient norm: 1 where nothing clipped, NaN: unknown."""
         return self._backward_array(layout.CLIP_FACTOR)

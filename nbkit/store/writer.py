@@ -46,6 +46,7 @@ class RecordingWriter:
         self._kept_dropped = 0
         self._kept_full_until = None          # set while the window being written fills the budget
         self.max_write_seconds = 0.0
+        self.cpu_seconds = 0.0                  # the writer thread's CPU time so far (every="auto")
         self._probe_index = probe_index
         self._queue: queue.Queue = queue.Queue()
         # Each counter is written by one thread only (queued: training, dequeued: writer), so their
@@ -111,6 +112,7 @@ class RecordingWriter:
                 kind, item = self._queue.get(timeout=timeout)
             except queue.Empty:
                 kind, item = "tick", None
+            started = time.thread_time()
             try:
                 closed = self._handle(kind, item)
             except BaseException as exc:       # kept for the recorder to report; keep draining
@@ -121,6 +123,7 @@ class RecordingWriter:
                 if kind in ("flush", "close"):
                     item.set()
                 closed = kind == "close"
+            self.cpu_seconds += time.thread_time() - started
 
     def _handle(self, kind, item) -> bool:
         if kind == "row":
