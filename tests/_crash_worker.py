@@ -22,7 +22,7 @@ def child(folder, commit_seconds, write_fd):
     model = torch.nn.Sequential(torch.nn.Linear(10, 32), torch.nn.ReLU(), torch.nn.Linear(32, 4))
     optimizer = torch.optim.Adam(model.parameters(), lr=1e-2)
     criterion = torch.nn.CrossEntropyLoss()
-    rec = nbkit.record(model, optimizer, folder, criterion=criterion, probes=16, keyframe_every=7,
+    rec = nbkit.record(model, optimizer, folder, criterion=criterion, probes=16, keyframe_every=7, every=1,
                        commit_seconds=commit_seconds)
     data = torch.Generator().manual_seed(1)
     for step in range(100_000):

@@ -30,7 +30,8 @@ def _fit(path=None, epochs=10, batch=64):
     model = nn.Sequential(nn.Linear(64, 64), nn.ReLU(), nn.Dropout(0.1), nn.Linear(64, 10))
     optimizer = torch.optim.Adam(model.parameters(), lr=3e-3)
     criterion = nn.CrossEntropyLoss()
-    rec = nbkit.record(model, optimizer, path, criterion=criterion, keyframe_every=50) if path else None
+    rec = nbkit.record(model, optimizer, path, criterion=criterion, keyframe_every=50,
+                       every=1) if path else None       # every step in full: the oracle checks each
     generator = torch.Generator().manual_seed(1)
     losses = []
     for _ in range(epochs):

@@ -18,7 +18,7 @@ WRITER = textwrap.dedent("""
     model = torch.nn.Sequential(torch.nn.Linear(6, 12), torch.nn.Tanh(), torch.nn.Linear(12, 3))
     optimizer = torch.optim.Adam(model.parameters(), lr=1e-2)
     criterion = torch.nn.CrossEntropyLoss()
-    with nbkit.record(model, optimizer, sys.argv[1], criterion=criterion, probes=8, keyframe_every=500,
+    with nbkit.record(model, optimizer, sys.argv[1], criterion=criterion, probes=8, keyframe_every=500, every=1,
                       commit_seconds=0.1):
         for step in range(int(sys.argv[2])):
             optimizer.zero_grad()

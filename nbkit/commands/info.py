@@ -33,6 +33,13 @@ def run(args) -> int:
               + f"; keyframes {size['keyframes'] / 1e6:.1f} MB; kept batches {size['batches'] / 1e6:.1f} MB)")
         print("  " + ("closed cleanly" if recording.closed_cleanly else
                       "not closed cleanly: still being written, or the process stopped before close()"))
+        heavy = int(recording.heavy.sum())
+        strides = ", ".join(f"{stride} from step {first}" for first, stride in meta.get("strides") or [])
+        budget = meta.get("budget") or {}
+        print(f"  every={meta.get('every', 1)!r}: {heavy} of {len(steps)} steps heavy"
+              + (f" (stride {strides})" if strides else "")
+              + (f"; the every-step work alone is {100 * budget['floor']:.1f} % of the step (the floor)"
+                 if budget.get("floor") else ""))
         without_loss = int(np.isnan(recording.loss).sum())
         if without_loss:
             print(f"  {without_loss} of {len(steps)} steps without a loss (NaN: no criterion, returned loss, "

@@ -142,8 +142,9 @@ def train_first_run(path, *, steps: int = STEPS, curvature_every: int = 25, peak
     batches = Batches(features, targets)
     model = make_model()
     optimizer = torch.optim.Adam(optimizer_parameters(model), lr=warmup_lr(0, peak_lr))
+    # every=1: the demo's findings read every step in full (the default, "auto", thins after 50 steps)
     with record(model, optimizer, path, criterion=criterion, curvature_every=curvature_every,
-                      keyframe_every=100, overwrite=overwrite):
+                keyframe_every=100, every=1, overwrite=overwrite):
         for step in range(steps):
             for group in optimizer.param_groups:
                 group["lr"] = warmup_lr(step, peak_lr)

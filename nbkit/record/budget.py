@@ -25,8 +25,9 @@ WINDOW = 200          # steps of measurements a decision looks at
 class StrideBudget:
     """Measurements of the recorder's own cost and the stride they allow (module docstring)."""
 
-    def __init__(self, share: float = SHARE, warm_up: int = WARM_UP):
-        self.share, self.warm_up = share, warm_up
+    def __init__(self, share: float | None = None, warm_up: int | None = None):
+        self.share = SHARE if share is None else share
+        self.warm_up = WARM_UP if warm_up is None else warm_up
         self.stride = 1
         self.floor: float | None = None        # light work ÷ interval, when it alone is over the share
         self.intervals: deque = deque(maxlen=WINDOW)
@@ -72,7 +73,7 @@ class StrideBudget:
             self.floor, self.stride = light / interval, MAX_STRIDE
         else:
             self.floor = None
-            stride = int(min(MAX_STRIDE, max(1, math.ceil(2 * extras / allowed))))
+            stride = int(min(MAX_STRIDE, max(1, math.ceil(2 * extras / allowed - 1e-9))))   # not 26 for 25.000…04
             self.stride = 1 if stride <= 2 else stride       # pairs every 2 steps is every step
         return self.stride
 

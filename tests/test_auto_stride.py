@@ -1,0 +1,108 @@
+"""every="auto": heavy pairs at a stride the recorder's own measured cost allows, and any window of a
+thinned recording re-recorded in full by a self-replay (detail on demand)."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+
+import nbkit
+from nbkit.record import budget
+from nbkit.record.budget import MAX_STRIDE, StrideBudget
+
+
+def test_the_stride_is_the_smallest_that_keeps_the_average_cost_within_the_share():
+    plan = StrideBudget(share=0.05, warm_up=0)
+    plan.step_started(0.0)
+    plan.step_started(0.010)                          # a 10 ms step
+    for step in range(10):
+        plan.measured(0.0001, 0.005 if step % 2 == 0 else 0.0, heavy=step % 2 == 0)
+    # light 0.1 ms, heavy extras 5 ms a heavy step: light + 5 · 2 / s <= 0.5 ms  =>  s >= 25
+    assert plan.stride_at(100) == 25
+    average = 0.0001 + 0.005 * 2 / 25
+    assert average <= 0.05 * 0.010 < 0.0001 + 0.005 * 2 / 24
+    assert plan.report()["floor"] is None
+
+
+def test_light_work_over_the_share_is_the_floor_and_is_reported():
+    plan = StrideBudget(share=0.05, warm_up=0)
+    plan.step_started(0.0)
+    plan.step_started(0.010)
+    plan.measured(0.0008, 0.004, heavy=True)          # 0.8 ms of every-step work on a 10 ms step: 8 %
+    assert plan.stride_at(10) == MAX_STRIDE
+    assert plan.report()["floor"] == pytest.approx(0.08)
+
+
+def test_warm_up_steps_are_heavy_and_pairs_are_neighbours():
+    plan = StrideBudget(warm_up=50)
+    plan.step_started(0.0)
+    plan.step_started(0.01)
+    plan.measured(0.0, 0.01, heavy=True)
+    assert plan.stride_at(40) == 1                    # still warming up
+    assert [s for s in range(40) if StrideBudget.heavy(s, 10)] == [0, 1, 10, 11, 20, 21, 30, 31]
+
+
+def mlp():
+    torch.manual_seed(0)
+    return torch.nn.Sequential(torch.nn.Linear(8, 32), torch.nn.ReLU(), torch.nn.Dropout(0.1), torch.nn.Linear(32, 3))
+
+
+def train(path, steps=40, **options):
+    model = mlp()
+    optimizer = torch.optim.Adam(model.parameters(), lr=1e-2)
+    criterion = torch.nn.CrossEntropyLoss()
+    generator = torch.Generator().manual_seed(1)
+    data = [(torch.randn(16, 8, generator=generator), torch.randint(0, 3, (16,), generator=generator))
+            for _ in range(steps)]
+    torch.manual_seed(5)
+    with nbkit.record(model, optimizer, path, criterion=criterion, keyframe_every=10, **options):
+        for x, y in data:
+            optimizer.zero_grad()
+            criterion(model(x), y).backward()
+            optimizer.step()
+    return nbkit.load(path)
+
+
+@pytest.fixture
+def thinned(tmp_path, monkeypatch):
+    """A recording at every="auto" whose budget settles on stride 8 after a 10-step warm-up."""
+    monkeypatch.setattr(budget, "WARM_UP", 10)
+    monkeypatch.setattr(StrideBudget, "stride_at", lambda self, step: 1 if step < self.warm_up else 8)
+    return train(tmp_path / "thin")
+
+
+def test_auto_thins_from_a_keyframe_on_in_pairs_and_keeps_the_light_series_every_step(thinned):
+    run = thinned
+    assert run.meta["every"] == "auto" and run.meta["strides"] == [[0, 1], [10, 8]]
+    heavy = np.flatnonzero(run.heavy).tolist()
+    assert heavy == list(range(10)) + [s for s in range(10, 40) if s % 8 < 2]
+    assert np.isfinite(run.loss).all() and np.isfinite(run.tensor_grad_norms).all()
+    assert np.isfinite(run.grad_norm).all() and len(run.kept_steps) == 40
+    cosine = run.series("grad_cosine")[:, 0]
+    # a pair's second step compares with its first; a pair's first step has no neighbour recorded
+    assert np.isfinite(cosine[[17, 25, 33]]).all() and np.isnan(cosine[[16, 24, 32]]).all()
+
+
+def test_a_detail_window_re_records_every_step_as_a_full_recording_would(thinned, tmp_path):
+    full = train(tmp_path / "full", every=1)         # the same training, recorded in full from the start
+    runs = nbkit.replay(thinned, mlp(), start=20, steps=10, every=1, progress=False)
+    assert list(runs) == ["full-20-29"]
+    window = runs["full-20-29"]
+    assert window.steps.tolist() == list(range(20, 30)) and window.heavy.all()
+    rows = slice(20, 30)
+    np.testing.assert_array_equal(window.fingerprints, full.fingerprints[rows])
+    np.testing.assert_array_equal(window.loss, full.loss[rows])
+    for quantity in window.quantities:
+        expected, got = full.series(quantity)[rows], window.series(quantity)
+        if quantity in ("grad_cosine", "sign_flip"):          # they look back one step: not at row 0
+            expected, got = expected[1:], got[1:]
+        np.testing.assert_array_equal(got, expected, err_msg=quantity)
+    for tensor in full.tensors:
+        np.testing.assert_array_equal(window.probes(tensor)["update"], full.probes(tensor)["update"][rows])
+
+
+def test_every_must_be_auto_or_a_positive_integer(tmp_path):
+    model = torch.nn.Linear(2, 1)
+    for bad in (0, "fast", 1.5, True):
+        with pytest.raises(nbkit.RecorderError, match='"auto".*positive integer'):
+            nbkit.record(model, torch.optim.SGD(model.parameters(), lr=0.1), tmp_path / "x", every=bad)
