@@ -44,6 +44,14 @@ def micro_batch(length, seed=0):
             "targets": (sample(torch.int64, 2, length, seed=seed + 1),)}
 
 
+def assert_same_tree(got, expected):
+    """Two kept micro-batch lists hold equal tensors in the same places."""
+    flat_got, flat_expected = torch.utils._pytree.tree_flatten(got), torch.utils._pytree.tree_flatten(expected)
+    assert flat_got[1] == flat_expected[1]
+    for a, b in zip(flat_got[0], flat_expected[0]):
+        assert torch.equal(a, b) if isinstance(b, torch.Tensor) else a == b
+
+
 def kept(step, micro_batches, **side):
     return KeptStep(step, micro_batches, side.get("rng", {"cpu": torch.get_rng_state()}),
                     side.get("autocast", {"enabled": False}), side.get("scales", [None] * len(micro_batches)),
@@ -244,7 +252,7 @@ def test_a_kept_step_round_trips_through_its_file(tmp_path):
                 autocast={"enabled": True, "dtype": "bfloat16", "device_type": "cpu"},
                 extra={"accumulation": 2, "note": ["a", 1]}, source="DataLoader(shuffle=True)")
     size = write_kept_step(tmp_path, 12, step)
-    path = tmp_path / BATCH_DIR / "0000000012.safetensors"
+    path = tmp_path / BATCH_DIR / "0000000012-0000000012.safetensors"
     assert kept_step_path(tmp_path, 12) == path and size == path.stat().st_size
     back = read_kept_step(tmp_path, 12)
     assert back.step == 12 and back.scales == [0.5, None] and back.source == step.source
@@ -255,7 +263,8 @@ def test_a_kept_step_round_trips_through_its_file(tmp_path):
         assert torch.equal(decoded["targets"][0], original["targets"][0])
         assert decoded["kwargs"]["attention_mask"].dtype == torch.bool
     stored = load_file(str(path))
-    assert set(stored) == {"buffer.int64", "buffer.bool", "rng.cpu"} and stored["buffer.bool"].dtype == torch.uint8
+    assert set(stored) == {"12.buffer.int64", "12.buffer.bool", "12.rng.cpu"}
+    assert stored["12.buffer.bool"].dtype == torch.uint8
 
 
 def test_pack_copies_so_later_changes_to_the_inputs_are_not_written(tmp_path):
@@ -293,7 +302,7 @@ def test_side_data_that_cannot_be_kept_is_refused_when_packed(side, problem):
 
 def test_the_write_is_atomic_and_temporary_files_are_not_steps(tmp_path, monkeypatch):
     write_kept_step(tmp_path, 5, kept(5, [micro_batch(3)]))
-    assert sorted(p.name for p in (tmp_path / BATCH_DIR).iterdir()) == ["0000000005.safetensors"]
+    assert sorted(p.name for p in (tmp_path / BATCH_DIR).iterdir()) == ["0000000005-0000000005.safetensors"]
     before = kept_step_path(tmp_path, 5).read_bytes()
 
     def interrupted(tensors, filename, metadata=None):
@@ -303,7 +312,7 @@ def test_the_write_is_atomic_and_temporary_files_are_not_steps(tmp_path, monkeyp
     monkeypatch.setattr(batches, "save_file", interrupted)
     with pytest.raises(KeyboardInterrupt):
         write_kept_step(tmp_path, 5, kept(5, [micro_batch(9)]))
-    assert sorted(p.name for p in (tmp_path / BATCH_DIR).iterdir()) == ["0000000005.safetensors"]
+    assert sorted(p.name for p in (tmp_path / BATCH_DIR).iterdir()) == ["0000000005-0000000005.safetensors"]
     assert kept_step_path(tmp_path, 5).read_bytes() == before
     (tmp_path / BATCH_DIR / ".0000000006.safetensors.abc.tmp").write_bytes(b"partial")
     assert kept_steps(tmp_path) == [5]
@@ -347,7 +356,7 @@ def test_a_missing_step_names_the_file_and_the_kept_range(tmp_path):
     with pytest.raises(RecordingError) as caught:
         read_kept_step(tmp_path, 10)
     message = str(caught.value)
-    assert "step 10" in message and str(kept_step_path(tmp_path, 10)) in message
+    assert "step 10" in message and str(tmp_path / BATCH_DIR) in message
     assert "3 steps are kept, from step 4 to 20" in message
 
 
@@ -392,3 +401,26 @@ def test_windows_agree_with_a_step_by_step_replay():
         steps = sorted(rng.sample(range(40), rng.randint(0, 40)))
         keyframes = rng.sample(range(40), rng.randint(0, 8))
         assert windows(rng.sample(steps, len(steps)), keyframes) == replayed_windows(set(steps), keyframes)
+
+
+def test_a_group_file_holds_consecutive_steps_and_each_reads_back_alone(tmp_path):
+    """The writer keeps steps in groups (one file creation for many steps): each step of a group reads
+    back alone, replacing one rewrites the group, deleting some splits it into consecutive runs."""
+    from nbkit.store.batches import delete_kept_steps, kept_steps, pack_kept_step, write_packed_steps
+
+    steps = {s: kept(s, [micro_batch(s % 3 + 1)]) for s in range(20, 26)}
+    write_packed_steps(tmp_path, [(s, pack_kept_step(k)) for s, k in steps.items()])
+    assert [p.name for p in (tmp_path / BATCH_DIR).iterdir()] == ["0000000020-0000000025.safetensors"]
+    assert kept_steps(tmp_path) == list(range(20, 26))
+    for s, expected in steps.items():
+        assert_same_tree(read_kept_step(tmp_path, s).micro_batches, expected.micro_batches)
+    write_kept_step(tmp_path, 22, kept(22, [micro_batch(7)]))
+    assert_same_tree(read_kept_step(tmp_path, 22).micro_batches, kept(22, [micro_batch(7)]).micro_batches)
+    assert_same_tree(read_kept_step(tmp_path, 23).micro_batches, steps[23].micro_batches)
+    delete_kept_steps(tmp_path, [21, 22])
+    assert kept_steps(tmp_path) == [20, 23, 24, 25]
+    assert sorted(p.name for p in (tmp_path / BATCH_DIR).iterdir()) == [
+        "0000000020-0000000020.safetensors", "0000000023-0000000025.safetensors"]
+    assert_same_tree(read_kept_step(tmp_path, 24).micro_batches, steps[24].micro_batches)
+    with pytest.raises(ValueError, match="consecutive"):
+        write_packed_steps(tmp_path, [(30, pack_kept_step(steps[20])), (32, pack_kept_step(steps[20]))])

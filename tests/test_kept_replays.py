@@ -338,16 +338,17 @@ def test_an_unstorable_leaf_warns_once_naming_it_and_the_step_is_not_kept(tmp_pa
     assert len(run) == 15 and np.isfinite(run.loss).all()
 
 
-def failing_from(first, real=kept.write_packed_step):
-    def write(root, step, packed):
-        if step >= first:
+def failing_from(first, real=kept.write_packed_steps):
+    """The writer's group write, failing as a full disk does for groups that reach step `first`."""
+    def write(root, items):
+        if items[-1][0] >= first:
             raise OSError(28, "No space left on device")
-        return real(root, step, packed)
+        return real(root, items)
     return write
 
 
 def test_a_full_disk_stops_keeping_batches_and_the_recording_goes_on(tmp_path, monkeypatch):
-    monkeypatch.setattr(kept, "write_packed_step", failing_from(7))
+    monkeypatch.setattr(kept, "write_packed_steps", failing_from(7))
     run, caught = record_regression(tmp_path / "run", None, steps=20, flush=True)
     found = [m for m in messages(caught) if "keeping batches stopped" in m]
     assert len(found) == 1 and "No space left on device" in found[0], messages(caught)
@@ -357,7 +358,7 @@ def test_a_full_disk_stops_keeping_batches_and_the_recording_goes_on(tmp_path, m
 
 
 def test_a_full_disk_at_the_last_step_still_warns(tmp_path, monkeypatch):
-    monkeypatch.setattr(kept, "write_packed_step", failing_from(9))
+    monkeypatch.setattr(kept, "write_packed_steps", failing_from(9))
     run, caught = record_regression(tmp_path / "run", None, steps=10, flush=True)
     assert "No space left on device" in run.meta["kept_batches"]["stopped"]   # the writer knew
     assert any("keeping batches stopped" in m for m in messages(caught)), messages(caught)

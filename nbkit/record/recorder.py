@@ -493,6 +493,10 @@ class Recorder:
         if self._keeping and self._writer.kept_error is not None:
             self._keeping = False
             self._fail("keeping batches stopped", self._writer.kept_error, stop=False)
+        if self._writer.dropped_kept:
+            self._reports.usage(f"the writer fell behind: {self._writer.dropped_kept} kept batches were not kept so "
+                                "far (replays of those steps need batches=); a faster disk or keep_batches=False "
+                                "avoids it", key="kept batches dropped")
 
     def _check_trained_loss(self, taken: StepTaken):
         """Rebuild this step's loss and compare gradients (nbkit.record.trained_loss); note the verdict."""

@@ -23,6 +23,9 @@ from nbkit.store.resume import ResumePlan
 
 QUEUE_ROWS = 20_000               # rows waiting for the writer before new rows are dropped ...
 QUEUE_BYTES = 256 << 20           # ... or bytes: memory stays bounded when the disk is slower than training
+KEPT_GROUP = 16                   # kept steps per file (fewer at a keyframe, a gap or a commit)
+QUEUE_KEPT = 2048                 # kept steps waiting for the writer before new ones are dropped ...
+QUEUE_KEPT_BYTES = 128 << 20      # ... or their bytes
 
 
 class RecordingWriter:
@@ -45,6 +48,8 @@ class RecordingWriter:
         self._kept_bytes = kept.kept_bytes(self.path) if resume is not None else 0
         self._kept_dropped = 0
         self._kept_full_until = None          # set while the window being written fills the budget
+        self._kept_pending: list = []         # (step, packed) of the group being built
+        self._keyframe_steps = set(kf.list_keyframes(self.path))   # kept up to date by _write_keyframe
         self.max_write_seconds = 0.0
         self.cpu_seconds = 0.0                  # the writer thread's CPU time so far (every="auto")
         self._probe_index = probe_index
@@ -52,6 +57,8 @@ class RecordingWriter:
         # Each counter is written by one thread only (queued: training, dequeued: writer), so their
         # difference is the backlog without a lock.
         self._queued_rows = self._dequeued_rows = self._queued_bytes = self._dequeued_bytes = 0
+        self._queued_kept = self._dequeued_kept = self._queued_kept_bytes = self._dequeued_kept_bytes = 0
+        self.dropped_kept = 0                   # kept steps not kept because the writer fell behind
         self._buffer: list[Row] = []
         self._local: list[tuple[int, np.ndarray]] = []    # (step, (ranks, tensors, 1 + probes)) rows
         self._last_step = resume.last_step if resume is not None else None
@@ -79,9 +86,18 @@ class RecordingWriter:
         self._queue.put(("local", (step, values)))
 
     def put_kept(self, step: int, packed) -> None:
-        """One kept step (nbkit.store.batches.pack_kept_step), written off the training thread."""
-        if self.kept_error is None:
-            self._queue.put(("kept", (step, packed)))
+        """One kept step (nbkit.store.batches.pack_kept_step), written off the training thread; dropped
+        (counted in dropped_kept) while QUEUE_KEPT of them wait, so memory stays bounded."""
+        if self.kept_error is not None:
+            return
+        size = sum(b.nbytes for b in packed.buffers.values())
+        if (self._queued_kept - self._dequeued_kept >= QUEUE_KEPT
+                or self._queued_kept_bytes - self._dequeued_kept_bytes + size > QUEUE_KEPT_BYTES):
+            self.dropped_kept += 1
+            return
+        self._queued_kept += 1
+        self._queued_kept_bytes += size
+        self._queue.put(("kept", (step, packed, size)))
 
     def put_keyframe(self, keyframe: kf.Keyframe) -> None:
         self._queue.put(("keyframe", keyframe))
@@ -133,8 +149,11 @@ class RecordingWriter:
             if self.error is None:
                 self._buffer.append(item)
         elif kind == "kept":
+            step, packed, size = item
+            self._dequeued_kept += 1
+            self._dequeued_kept_bytes += size
             if self.error is None and self.kept_error is None:
-                self._write_kept(*item)
+                self._write_kept(step, packed)
         elif kind == "keyframe":
             if self.error is None:
                 self._write_keyframe(item)
@@ -174,7 +193,8 @@ class RecordingWriter:
             pass
 
     def _commit(self) -> None:
-        """Write the buffered rows and local gradients, then publish the new committed count."""
+        """Write the buffered rows, kept steps and local gradients, then publish the new committed count."""
+        self._write_kept_group()
         wrote_local = bool(self._local)
         if wrote_local:
             items, self._local = self._local, []
@@ -203,27 +223,42 @@ class RecordingWriter:
 
     def _write_keyframe(self, keyframe: kf.Keyframe) -> None:
         kf.write_keyframe(self.path, keyframe)
+        self._keyframe_steps.add(keyframe.step)
         retention = self.meta["keyframe_retention"]
         thinned = kf.thin_keyframes(self.path, retention["budget_bytes"], retention["kept_recent"])
+        self._keyframe_steps.difference_update(thinned)
         if thinned:
             retention["thinned"] = sorted(retention["thinned"] + thinned)
             write_json_atomic(self.path / META_FILE, self.meta)
 
     # --- kept batches ---------------------------------------------------------------------------
     def _write_kept(self, step: int, packed) -> None:
-        keyframes = kf.list_keyframes(self.path)
+        """Add one kept step to the group being built; a group is written when it holds KEPT_GROUP steps,
+        at a commit, and before a step that does not follow it or starts a window (a keyframe)."""
+        keyframes = self._keyframe_steps
         if self._kept_full_until is not None:       # the current window already fills the budget
             if step not in keyframes:
                 return
             self._kept_full_until = None             # a new window begins at this keyframe
+        pending = self._kept_pending
+        if pending and (step != pending[-1][0] + 1 or step in keyframes):
+            self._write_kept_group()
+        self._kept_pending.append((step, packed))
+        if len(self._kept_pending) >= KEPT_GROUP:
+            self._write_kept_group()
+
+    def _write_kept_group(self) -> None:
+        items, self._kept_pending = self._kept_pending, []
+        if not items or self.kept_error is not None:
+            return
         try:
-            self._kept_bytes += kept.write_packed_step(self.path, step, packed)
+            self._kept_bytes += kept.write_packed_steps(self.path, items)
         except OSError as exc:                 # disk full: stop keeping, never stop the recording
             self.kept_error = exc
             self._note_kept(stopped=f"{type(exc).__name__}: {exc}")
             return
         if self._kept_bytes > self.batch_budget:
-            self._drop_older_windows(step, keyframes)
+            self._drop_older_windows(items[-1][0], sorted(self._keyframe_steps))
 
     def _drop_older_windows(self, step: int, keyframes: list[int]) -> None:
         """Over the budget: delete the oldest kept steps up to the next keyframe after them, so what
@@ -235,8 +270,8 @@ class RecordingWriter:
         while self._kept_bytes > self.batch_budget and steps and steps[0] < current:
             cut = min(next((k for k in keyframes if k > steps[0]), current), current)
             doomed = [s for s in steps if s < cut]
-            self._kept_bytes -= sum(kept.kept_step_path(self.path, s).stat().st_size for s in doomed)
             kept.delete_kept_steps(self.path, doomed)
+            self._kept_bytes = kept.kept_bytes(self.path)
             self._kept_dropped += len(doomed)
             steps = steps[len(doomed):]
         if self._kept_bytes > self.batch_budget:
