@@ -106,3 +106,29 @@ def test_every_must_be_auto_or_a_positive_integer(tmp_path):
     for bad in (0, "fast", 1.5, True):
         with pytest.raises(nbkit.RecorderError, match='"auto".*positive integer'):
             nbkit.record(model, torch.optim.SGD(model.parameters(), lr=0.1), tmp_path / "x", every=bad)
+
+
+def test_the_explorer_re_records_the_window_around_its_cursor_and_shows_it(thinned, tmp_path, monkeypatch):
+    pytest.importorskip("ipywidgets")
+    import matplotlib
+    matplotlib.use("Agg")
+    from nbkit.views import detail as detail_module
+    monkeypatch.setattr(detail_module, "DETAIL_STEPS", 10)
+    without = nbkit.explore(thinned)
+    assert without.detail.button.disabled and "pass model=" in without.detail.note.value
+    view = nbkit.explore(thinned, model=mlp())
+    view.step = 27
+    row = view.data.row_of(27)
+    assert view.data.heavy_row(row) == view.data.row_of(25)          # thinned: the pair at 24-25
+    before = view.data.values_at("update_ratio", row)
+    assert np.isnan(before).all() or view.data.heavy_row(row) != row
+    detail = view.detail.request(27)
+    assert detail is not None and detail.path.name == "full-22-31" and detail.heavy.all()
+    assert view.data.heavy_row(row) == row and "re-recorded in full" in view.step_label.value
+    full = train(tmp_path / "full", every=1)
+    np.testing.assert_array_equal(view.data.values_at("update_ratio", row), full.series("update_ratio")[27])
+    probes = view.data.probes_at(thinned.tensors[0], row, ["grad", "update"])
+    np.testing.assert_array_equal(probes["update"], full.probes(thinned.tensors[0])["update"][27])
+    steps, values, how = view.data.layer_map("update_ratio")
+    assert set(range(22, 32)) <= set(steps.tolist()) and "re-recorded" in how
+    assert view.detail.request(3).path.name == "full-0-9"            # clipped to the recording's start

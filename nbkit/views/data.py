@@ -51,6 +51,24 @@ class ExplorerData:
         self._block_cache: dict = {}
         self._hist_cache: dict = {}
         self._heavy = None
+        self.details = getattr(self, "details", [])                  # windows re-recorded in full
+
+    # --- detail windows (views.detail) ----------------------------------------------------------
+    def add_detail(self, detail) -> None:
+        """Read the rows of `detail` (a self-replay recorded with every=1) in place of this run's rows
+        over its steps; a later window wins where two overlap."""
+        self.details = [d for d in self.details if d.path != detail.path] + [detail]
+        self._block_cache, self._heavy = {}, None
+
+    def detail_at(self, row: int):
+        """(detail Recording, its row) when a detail window covers `row`, else None."""
+        if not self.details or self.row_count == 0:
+            return None
+        step = int(self.steps[row])
+        for detail in reversed(self.details):
+            if len(detail) and detail.steps[0] <= step <= detail.steps[-1]:
+                return detail, int(step - detail.steps[0])
+        return None
 
     # --- steps and rows -------------------------------------------------------------------------
     def row_of(self, step: int) -> int:
@@ -60,7 +78,9 @@ class ExplorerData:
         return int(np.clip(np.searchsorted(self.steps, step, side="right") - 1, 0, self.row_count - 1))
 
     def heavy_row(self, row: int) -> int | None:
-        """The latest row <= row whose per-tensor quantities were computed, or None."""
+        """The latest row <= row whose per-tensor quantities were computed (or re-recorded), or None."""
+        if self.detail_at(row) is not None:
+            return row
         if self._heavy is None:
             self._heavy = np.flatnonzero(self.run.heavy)
         k = np.searchsorted(self._heavy, row, side="right") - 1
@@ -86,9 +106,15 @@ class ExplorerData:
             return self.steps[np.minimum(start, self.row_count - 1)], blocks[:, :, 1].T, \
                 f"maximum per {OVERVIEW_BLOCK} steps"
         values = self.run.series(q)                                   # (rows, tensors)
-        heavy = np.flatnonzero(self.run.heavy)
+        heavy = self.run.heavy.copy()
+        for detail in self.details:                                   # re-recorded windows: every row
+            rows = np.flatnonzero((self.steps >= detail.steps[0]) & (self.steps <= detail.steps[-1]))
+            values[rows] = detail.series(q)[self.steps[rows] - detail.steps[0]]
+            heavy[rows] = True
+        heavy = np.flatnonzero(heavy)
         if len(heavy) and len(heavy) < self.row_count:                     # every=N: keep the rows that have values
-            return self.steps[heavy], values[heavy].T, f"every {self.run.meta.get('every', '?')} steps"
+            how = f"every={self.run.meta.get('every', '?')}" + (", windows re-recorded in full" if self.details else "")
+            return self.steps[heavy], values[heavy].T, how
         return self.steps, values.T, "every step"
 
     def overview_range(self, q: str) -> tuple[float, float, float]:
@@ -128,6 +154,10 @@ class ExplorerData:
 
     def values_at(self, q: str, row: int) -> np.ndarray:
         """(tensors,) values of q at row."""
+        detailed = self.detail_at(row)
+        if detailed is not None:
+            detail, r = detailed
+            return np.asarray(detail.series(q, rows=slice(r, r + 1))[0], dtype=np.float64)
         values = self._block(("series", q), row, STEP_CHUNK, lambda rows: self.run.series(q, rows=rows))
         return np.asarray(values, dtype=np.float64)
 
@@ -141,6 +171,11 @@ class ExplorerData:
         """{field: (probes,) values} of tensor's probe coordinates at row (fields that exist)."""
         have = set(self.probe_fields())
         out = {}
+        detailed = self.detail_at(row)
+        if detailed is not None:
+            detail, r = detailed
+            got = detail.probes(tensor, rows=slice(r, r + 1), fields=[f for f in fields if f in have])
+            return {f: np.asarray(v[0], dtype=np.float64) for f, v in got.items() if f != "index"}
         for field in fields:
             if field in have:
                 values = self._block(("probe", field, tensor), row, DETAIL_CHUNK,

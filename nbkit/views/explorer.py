@@ -22,6 +22,7 @@ from nbkit.views.base import GuardedView
 from nbkit.views.common import DEFAULT_QUANTITY, compose_png, figure_png
 from nbkit.views.coordinates import CoordinateView
 from nbkit.views.data import ExplorerData
+from nbkit.views.detail import DetailControl
 from nbkit.views.findings_panel import FindingsPanel
 from nbkit.views.layer_map import LayerMap
 from nbkit.views.live import LiveFollower, prepare_busy_frontends
@@ -49,7 +50,7 @@ class Explorer(GuardedView, widgets.VBox):
     quantity = traitlets.Unicode(DEFAULT_QUANTITY, help="the layer map's quantity").tag(sync=True)
     view_name = "explorer"
 
-    def __init__(self, source, *, quantity: str = DEFAULT_QUANTITY):
+    def __init__(self, source, *, quantity: str = DEFAULT_QUANTITY, model=None, step_fn=None):
         run, recorder = _open(source)
         if quantity not in run.quantities:
             raise ValueError(f"Unknown quantity {quantity!r} for the layer map; choose one of run.quantities: "
@@ -70,6 +71,7 @@ class Explorer(GuardedView, widgets.VBox):
                                             on_found=self._show_finding_marks, show_error=self.show_error)
         self.findings_list, self.findings_note = self.findings_panel.list, self.findings_panel.note
         self._build_controls(run, quantity)
+        self.detail = DetailControl(run, model, step_fn, self._show_detail)
         super().__init__(children=self._layout())
         self.add_class("nbkit-explorer")
         live = recorder is not None or not run.closed_cleanly
@@ -151,6 +153,7 @@ class Explorer(GuardedView, widgets.VBox):
         controls = widgets.HBox([self.play, self.previous_button, self.slider, self.next_button, self.speed,
                                  self.log_toggle, self.step_label])
         menus = widgets.HBox([self.quantity_menu, self.tensor_menu, self.coordinate_summary])
+        menus = widgets.VBox([menus, self.detail.box])
         middle = widgets.HBox([self.layer_map.canvas, self.coordinates.canvas],
                               layout=widgets.Layout(flex_flow="row wrap"))   # narrow pages stack them
         return [controls, self.timeline.canvas, menus, middle, self.findings_panel.box, self.errors]
@@ -215,6 +218,9 @@ class Explorer(GuardedView, widgets.VBox):
         full = self.coordinates.set_cursor(snapped, heavy)
         note = "" if heavy == row or heavy is None else \
             f" (per-tensor values from step {int(self.data.steps[heavy])})"
+        if self.data.detail_at(row) is not None:
+            note += " (re-recorded in full by a replay)"
+        self.detail.step = snapped
         self.step_label.value = f"<b>step {snapped}</b> of {int(self.data.steps[-1])}{note}"
         self.coordinate_summary.value = f"<small>{html.escape(self.coordinates.summary)}</small>"
         with self.slider.hold_trait_notifications():
@@ -246,6 +252,12 @@ class Explorer(GuardedView, widgets.VBox):
                 (part.blitter.full if part in full else part.blitter.update)()
         finally:
             self._moving = False
+
+    def _show_detail(self, detail):
+        """A window re-recorded in full (views.detail): its rows replace the thinned ones."""
+        self.data.add_detail(detail)
+        self.layer_map.set_quantity(self.quantity)
+        self._redraw(self.step, full=(self.layer_map, self.coordinates))
 
     def _prepare(self, step):
         """Read what every part shows at `step`, without drawing."""
@@ -333,9 +345,12 @@ class Explorer(GuardedView, widgets.VBox):
             return compose_png(images, "\n".join(lines))
 
 
-def explore(run, *, quantity: str = DEFAULT_QUANTITY) -> Explorer:
+def explore(run, *, quantity: str = DEFAULT_QUANTITY, model=None, step_fn=None) -> Explorer:
     """The explorer of `run`: a Recording, a recording's path, or a live Recorder (same kernel).
 
     quantity="update_ratio": the layer map's quantity at start (any name in run.quantities).
+    model (and step_fn where the recording's trained loss is not rebuildable): the "re-record in full"
+    button replays the window around the cursor with every=1 (nbkit.replay; a thinned recording's
+    window then shows every quantity at every step). Without a model the button is disabled.
     """
-    return Explorer(run, quantity=quantity)
+    return Explorer(run, quantity=quantity, model=model, step_fn=step_fn)
