@@ -179,7 +179,7 @@ def measure(name, steps, block, workdir):
     for variant in ("auto", "every=1"):
         variants[variant]["rec"].close()
         shutil.rmtree(variants[variant]["rec"].recording_path, ignore_errors=True)
-    return {"name": name, "params": sum(p.numel() for p in base.parameters()),
+    return {"name": name, "measured": (WARM_UP, total - 1), "params": sum(p.numel() for p in base.parameters()),
             "tensors": sum(1 for _ in base.parameters()), "budget": budget, "strides": strides,
             "statistics_cpu": statistics_cpu, **{k: v["t"] for k, v in variants.items()}}
 
@@ -187,6 +187,13 @@ def measure(name, steps, block, workdir):
 def ratio(recorded, unrecorded):
     """(median, low, high) over steps of recorded[k] ÷ unrecorded[k]."""
     return median_interval(a / b for a, b in zip(recorded, unrecorded))
+
+
+def strides_during(strides, first, last) -> str:
+    """The strides in force over steps first .. last, from the metadata's [[from_step, stride], ...]."""
+    during = [stride for i, (step, stride) in enumerate(strides)
+              if step <= last and (i + 1 == len(strides) or strides[i + 1][0] > first)]
+    return ",".join(str(s) for s in during) or "?"
 
 
 def budget_share(budget) -> float | None:
@@ -216,17 +223,18 @@ def report(results, skipped, threads, steps, block):
         floor = r["budget"].get("floor")
         print(f"{r['name']:<12}{r['params']:>10}{r['tensors']:>8}{threads:>4}{u:>10.2f}   "
               f"{f'{a:.3f} [{a_low:.3f}, {a_high:.3f}]':<24}{f'{e:.3f} [{e_low:.3f}, {e_high:.3f}]':<24}"
-              f"{r['budget'].get('stride', '?'):>7}{'-' if floor is None else f'{floor:.3f}':>8}  "
+              f"{strides_during(r['strides'], *r['measured']):>7}{'-' if floor is None else f'{floor:.3f}':>8}  "
               f"{'ok' if ok else 'OVER'}")
     for name, why in skipped:
         print(f"{name:<12}skipped: {why}")
     print(f"ratio = median over the measured steps k of recorded step k ÷ unrecorded step k (wall clock; the same "
           f"batch, seed and starting weights), [95 % interval of that median]; budget: auto ratio ≤ {BUDGET}; "
-          f"floor: the every-step work ÷ the step, when alone over the share (else -).")
+          f"stride: in force over the measured steps; floor (the last decision's): the every-step work ÷ the "
+          f"interval, when alone over the share (else -).")
     print("\n[every=\"auto\": CPU shares of the unrecorded step, and the budget's own view]")
     print(f"{'model':<12}{'train-thread CPU [95% CI]':<28}{'background CPU [95% CI]':<28}{'stats CPU':>10}   "
           f"{'interval':>9}{'light':>8}"
-          f"{'heavy+':>9}{'at':>5}{'est. share':>11}   strides")
+          f"{'heavy+':>9}{'at':>5}{'stride':>7}{'est. share':>11}   strides")
     for r in results:
         u = float(np.median(r["unrecorded"]["step"]))
         share, low, high = median_interval((a - b) / w for a, b, w in zip(
@@ -239,14 +247,14 @@ def report(results, skipped, threads, steps, block):
         print(f"{r['name']:<12}{f'{share:+.3f} [{low:+.3f}, {high:+.3f}]':<28}"
               f"{f'{other[0]:+.3f} [{other[1]:+.3f}, {other[2]:+.3f}]':<28}{r['statistics_cpu'] / u:>10.3f}   "
               f"{b.get('interval_ms', float('nan')):>9.2f}{b.get('light_ms', float('nan')):>8.2f}"
-              f"{b.get('heavy_extra_ms', float('nan')):>9.2f}{b.get('at_step', '?'):>5}"
+              f"{b.get('heavy_extra_ms', float('nan')):>9.2f}{b.get('at_step', '?'):>5}{b.get('stride', '?'):>7}"
               f"{'?' if estimate is None else f'{estimate:.3f}':>11}   {r['strides']}")
     print("train-thread CPU: median over steps of (auto − unrecorded) CPU time of the training thread ÷ the "
           "unrecorded step; background CPU: the same for all other threads of the process (writer, statistics; "
           "torch's own threads cancel); stats CPU: this recorder's statistics-thread CPU per measured step ÷ the "
-          "median unrecorded step. Budget columns (ms, from "
-          "rec.recorded_meta(\"budget\"), the decision at step 'at'): median interval between optimizer steps, light "
-          "work per step, extras per heavy step; est. share = (light + extras · min(1, 2 / stride)) ÷ interval.")
+          "median unrecorded step. Budget columns (ms, from rec.recorded_meta(\"budget\") after the run: the last "
+          "decision, at step 'at'): median interval between optimizer steps, light work per step, extras per heavy "
+          "step; est. share = (light + extras · min(1, 2 / stride)) ÷ interval.")
     return ok_all
 
 

@@ -5,7 +5,7 @@ encoder with many small tensors; default Adam) four copies train on the same bat
 interleaved blocks so that machine noise hits them alike:
 
   unrecorded   plain fwd + bwd + optimizer.step()  (the optimizer step is also timed alone)
-  recorded     the same with nbkit.record(...) at defaults (every=1, probes=64)
+  recorded     the same with nbkit.record(..., every=1) (probes=64; kept batches at their default)
   naive        the same with a hand-written recorder: per-tensor NumPy copies of gradient, state
                and parameters, np.histogram, NumPy gain shares (what a user writes by hand)
 
@@ -178,7 +178,8 @@ def measure(name, steps, block, workdir, in_hook=False):
                              "t": {k: [] for k in KEYS}, "i": 0}
     path = Path(workdir) / name
     rec = nbkit.record(variants["recorded"]["model"], variants["recorded"]["optimizer"], path,
-                       criterion=variants["recorded"]["criterion"])
+                       criterion=variants["recorded"]["criterion"], every=1)   # every step in full
+    # (every="auto", the default, is measured by benchmarks/auto_overhead.py)
     rec.background = not in_hook
     NaiveRecorder(variants["naive"]["model"], variants["naive"]["optimizer"])
     # warm-up: one block each, not timed (allocations, lazily created optimizer state)

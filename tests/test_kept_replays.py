@@ -239,6 +239,14 @@ def test_a_criterion_that_misses_the_loop_s_scaling_is_caught_and_step_fn_fixes_
     np.testing.assert_allclose(sharp, expected, rtol=1e-3)
 
 
+def test_with_strict_a_rebuilt_loss_that_misses_the_trained_gradient_raises(tmp_path):
+    with pytest.raises(nbkit.RecorderError, match="does not give the trained gradient"):
+        record_least_squares(tmp_path / "strict", strict=True)
+    wrong = lambda m, mb: MSE(m(*mb["args"]).squeeze(1), *mb["targets"])     # the ×10 forgotten
+    with pytest.raises(nbkit.RecorderError, match="fix step_fn"):
+        record_least_squares(tmp_path / "wrong-step-fn", strict=True, step_fn=wrong)
+
+
 # --- 4. the random-state check -----------------------------------------------------------------------
 
 def test_a_step_fn_drawing_random_numbers_at_one_step_is_caught_by_the_random_state_check(tmp_path):

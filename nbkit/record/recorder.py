@@ -424,6 +424,8 @@ class Recorder:
                 self._take_keyframe(self.step + 1)
                 self._choose_stride(self.step + 1)
         except Exception as exc:
+            if self.strict and isinstance(exc, RecorderError):
+                raise                       # a problem reported in strict mode: raised as it was said
             self._fail(f"recording step {self.step} failed", exc)
         finally:
             self.step += 1
