@@ -200,7 +200,7 @@ def budget_share(budget) -> float | None:
     """The share the budget's own measurements imply at its stride: (light + extras · 2 / s) ÷ interval
     (every step heavy at stride 1)."""
     try:
-        stride, interval = budget["stride"], budget["interval_ms"]
+        stride, interval = budget["stride"], budget["step_ms"]
         light, extras = budget["light_ms"], budget["heavy_extra_ms"]
     except KeyError:
         return None
@@ -246,7 +246,7 @@ def report(results, skipped, threads, steps, block):
         estimate = budget_share(b)
         print(f"{r['name']:<12}{f'{share:+.3f} [{low:+.3f}, {high:+.3f}]':<28}"
               f"{f'{other[0]:+.3f} [{other[1]:+.3f}, {other[2]:+.3f}]':<28}{r['statistics_cpu'] / u:>10.3f}   "
-              f"{b.get('interval_ms', float('nan')):>9.2f}{b.get('light_ms', float('nan')):>8.2f}"
+              f"{b.get('step_ms', float('nan')):>9.2f}{b.get('light_ms', float('nan')):>8.2f}"
               f"{b.get('heavy_extra_ms', float('nan')):>9.2f}{b.get('at_step', '?'):>5}{b.get('stride', '?'):>7}"
               f"{'?' if estimate is None else f'{estimate:.3f}':>11}   {r['strides']}")
     print("train-thread CPU: median over steps of (auto − unrecorded) CPU time of the training thread ÷ the "

@@ -13,12 +13,14 @@ from nbkit.record.budget import MAX_STRIDE, StrideBudget
 
 def test_the_stride_is_the_smallest_that_keeps_the_average_cost_within_the_share():
     plan = StrideBudget(share=0.05, warm_up=0)
-    plan.step_started(0.0)
-    plan.step_started(0.010)                          # a 10 ms step
     for step in range(10):
         plan.measured(0.0001, 0.005 if step % 2 == 0 else 0.0, heavy=step % 2 == 0)
-    # light 0.1 ms, heavy extras 5 ms a heavy step: light + 5 · 2 / s <= 0.5 ms  =>  s >= 25
+    # the recorder's own 0.1 + 5 / 2 = 2.6 ms a step, measured on top of a 10 ms training step
+    plan.step_started(0.0)
+    plan.step_started(0.0126)
+    # light 0.1 ms, heavy extras 5 ms a heavy step: light + 5 · 2 / s <= 5 % of 10 ms  =>  s >= 25
     assert plan.stride_at(100) == 25
+    assert plan.report()["step_ms"] == pytest.approx(10.0)
     average = 0.0001 + 0.005 * 2 / 25
     assert average <= 0.05 * 0.010 < 0.0001 + 0.005 * 2 / 24
     assert plan.report()["floor"] is None
@@ -27,10 +29,15 @@ def test_the_stride_is_the_smallest_that_keeps_the_average_cost_within_the_share
 def test_light_work_over_the_share_is_the_floor_and_is_reported():
     plan = StrideBudget(share=0.05, warm_up=0)
     plan.step_started(0.0)
-    plan.step_started(0.010)
+    plan.step_started(0.0148)                         # a 10 ms step plus the recorder's 4.8 ms
     plan.measured(0.0008, 0.004, heavy=True)          # 0.8 ms of every-step work on a 10 ms step: 8 %
     assert plan.stride_at(10) == MAX_STRIDE
     assert plan.report()["floor"] == pytest.approx(0.08)
+    # the next windows hold no heavy step (stride 1000): they still decide, from the light work
+    plan.measured(0.0002, 0.0, heavy=False)
+    plan.step_started(0.0250)                         # 10 ms + 0.2 ms
+    assert plan.stride_at(60) == 27                   # 0.2 ms light + 4 · 2 / s <= 0.5 ms  =>  s >= 26.7
+    assert plan.report()["floor"] is None and plan.report()["at_step"] == 60
 
 
 def test_warm_up_steps_are_heavy_and_pairs_are_neighbours():

@@ -34,6 +34,7 @@ class StrideBudget:
         self._last_start: float | None = None
         self._light = self._extras = 0.0       # seconds since the last decision
         self._steps = self._heavy_steps = 0
+        self._extra_per_heavy: float | None = None    # the last measured extras of one heavy step
         self.last: dict = {}
 
     def step_started(self, now: float) -> None:
@@ -59,15 +60,24 @@ class StrideBudget:
         return stride == 1 or step % stride < 2
 
     def stride_at(self, step: int) -> int:
-        """The stride from keyframe `step` on (called at keyframes only)."""
-        if step < self.warm_up or not self.intervals or not self._steps or not self._heavy_steps:
+        """The stride from keyframe `step` on (called at keyframes only). A window without a heavy step
+        (a long stride) keeps the last measured cost of one; the share is of the step without the
+        recorder: the measured interval less the recorder's own cost per step over the window."""
+        if step < self.warm_up or not self.intervals or not self._steps:
             return self.stride
-        interval = statistics.median(self.intervals)
-        light, extras = self._light / self._steps, self._extras / self._heavy_steps
-        self.last = {"interval_ms": round(interval * 1e3, 4), "light_ms": round(light * 1e3, 4),
+        if self._heavy_steps:
+            self._extra_per_heavy = self._extras / self._heavy_steps
+        if self._extra_per_heavy is None:
+            return self.stride
+        light = self._light / self._steps
+        own = (self._light + self._extras) / self._steps             # the recorder's cost per step, as run
+        interval = max(statistics.median(self.intervals) - own, 1e-9)
+        extras = self._extra_per_heavy
+        self.last = {"step_ms": round(interval * 1e3, 4), "light_ms": round(light * 1e3, 4),
                      "heavy_extra_ms": round(extras * 1e3, 4), "at_step": step}
         self._light = self._extras = 0.0
         self._steps = self._heavy_steps = 0
+        self.intervals.clear()                                       # each decision sees its own window
         allowed = self.share * interval - light
         if allowed <= 0:
             self.floor, self.stride = light / interval, MAX_STRIDE
