@@ -307,10 +307,16 @@ def _check_random_state(lane, recorded, step, strict):
                "recording (its dropout masks and other random draws would differ). Something drew from torch's "
                "global generator that the recorded run did not (a data pipeline, step_fn or before_step); give "
                "it its own torch.Generator. Pass strict=False to continue with a warning.")
+    _mismatch(lane, message, step, strict)
+
+
+def _mismatch(lane, message, step, strict):
+    """A replayed step that did not see what the recording saw: an error, or (strict=False) a warning
+    once and the step listed in the replay's meta."""
     if strict:
         raise ReplayError(message)
     if not lane.mismatches:
-        warnings.warn(message, stacklevel=4)
+        warnings.warn(message, stacklevel=5)
     lane.mismatches.append(int(step))
 
 
@@ -330,8 +336,4 @@ def _check_fingerprint(lane, recorded, step, strict, kept=False):
     message = (f"Replay {lane.name!r}: the batch at step {step} differs from the recording ({part}: "
                f"{describe_difference(recorded[which], seen[which])}). " + (KEPT_ADVICE if kept else DATALOADER_ADVICE) +
                ". Pass strict=False to continue with a warning.")
-    if strict:
-        raise ReplayError(message)
-    if not lane.mismatches:
-        warnings.warn(message, stacklevel=4)
-    lane.mismatches.append(int(step))
+    _mismatch(lane, message, step, strict)
