@@ -139,3 +139,23 @@ def test_the_explorer_re_records_the_window_around_its_cursor_and_shows_it(thinn
     steps, values, how = view.data.layer_map("update_ratio")
     assert set(range(22, 32)) <= set(steps.tolist()) and "re-recorded" in how
     assert view.detail.request(3).path.name == "full-0-9"            # clipped to the recording's start
+
+
+def test_an_auto_estimate_comes_back_after_its_cost_in_steps_at_one_percent():
+    from nbkit.record.estimates import EstimateStride
+
+    stride = EstimateStride("auto")
+    assert stride.due(0)
+    stride.took(0, seconds=0.5, step_seconds=0.01)      # 50 steps' worth: 1 % of the step => every 5000
+    assert not stride.due(4999) and stride.due(5000)
+    fixed = EstimateStride(10)
+    assert fixed.due(20) and not fixed.due(21)
+    assert budget.budget_share(2) == pytest.approx(budget.SHARE - 2 * budget.ESTIMATE_SHARE)
+
+
+def test_curvature_every_auto_estimates_at_the_first_step_and_then_rarely(tmp_path):
+    run = train(tmp_path / "auto", steps=30, curvature_every="auto")
+    sharpness = run.series("sharpness")[:, 0]
+    assert np.isfinite(sharpness[0]) and np.isnan(sharpness[1:20]).all()
+    with pytest.raises(nbkit.RecorderError, match='integer >= 0 or "auto"'):
+        nbkit.record(mlp(), torch.optim.SGD(mlp().parameters(), lr=0.1), tmp_path / "x", curvature_every="often")

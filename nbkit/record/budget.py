@@ -22,6 +22,14 @@ MAX_STRIDE = 1000     # the sparsest thinning: one heavy pair per MAX_STRIDE ste
 WINDOW = 200          # steps of measurements a decision looks at
 
 
+ESTIMATE_SHARE = 0.01 # what each estimate with stride "auto" takes of SHARE (nbkit.record.estimates)
+
+
+def budget_share(auto_estimates: int) -> float:
+    """The heavy-step budget's share when `auto_estimates` estimates (sharpness, noise) run at "auto"."""
+    return SHARE - ESTIMATE_SHARE * auto_estimates
+
+
 class StrideBudget:
     """Measurements of the recorder's own cost and the stride they allow (module docstring)."""
 

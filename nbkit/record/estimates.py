@@ -16,10 +16,14 @@ and leaves NaN; the recording goes on.
 """
 from __future__ import annotations
 
+import collections
 import math
+import statistics
+import time
 
 from nbkit.analyze.curvature import sharpness
 from nbkit.analyze.noise import RunningNoise, batch_size_of, noise_parts
+from nbkit.record.budget import ESTIMATE_SHARE
 from nbkit.record.options import RecordOptions
 
 RECORDING_TOL = 1e-3        # Lanczos tolerance while recording: ample for a stability comparison
@@ -34,18 +38,47 @@ def estimates_for(options: RecordOptions) -> "RecordingEstimates | None":
     return RecordingEstimates(options.curvature_every, options.noise_every)
 
 
-class RecordingEstimates:
-    """Estimates sharpness every `curvature_every` steps and the noise scale every `noise_every` steps."""
+AUTO_INTERVAL_STEPS = 50  # steps whose intervals give the step time an "auto" stride is measured against
 
-    def __init__(self, curvature_every: int, noise_every: int):
-        self.curvature_every, self.noise_every = curvature_every, noise_every
+
+class EstimateStride:
+    """When the next estimate of one kind is due: every N steps, or (N = "auto") after as many steps as
+    its own measured cost needs to average ESTIMATE_SHARE of the step (an estimate costing 100 steps
+    comes every 10,000 steps). The first "auto" estimate is at the first step."""
+
+    def __init__(self, every):
+        self.every, self.next_step = every, 0
+
+    def due(self, step: int) -> bool:
+        if self.every == "auto":
+            return step >= self.next_step
+        return bool(self.every) and step % self.every == 0
+
+    def took(self, step: int, seconds: float, step_seconds: float | None) -> None:
+        if self.every == "auto":
+            steps = seconds / (ESTIMATE_SHARE * step_seconds) if step_seconds else 1000
+            self.next_step = step + max(1, math.ceil(steps))
+
+
+class RecordingEstimates:
+    """Estimates sharpness and the gradient noise scale at their strides (EstimateStride)."""
+
+    def __init__(self, curvature_every, noise_every):
+        self.curvature, self.noise_stride = EstimateStride(curvature_every), EstimateStride(noise_every)
         self.noise = RunningNoise(NOISE_AVERAGE_WEIGHT)
         self._noted_batch = False
+        self._last_call: float | None = None
+        self._intervals: collections.deque = collections.deque(maxlen=AUTO_INTERVAL_STEPS)
+
+    def _step_seconds(self) -> float | None:
+        return statistics.median(self._intervals) if self._intervals else None
 
     def after_step(self, recorder, row) -> None:
-        step = row.step
-        want_curvature = self.curvature_every and step % self.curvature_every == 0
-        want_noise = self.noise_every and step % self.noise_every == 0
+        step, now = row.step, time.perf_counter()
+        if self._last_call is not None:
+            self._intervals.append(now - self._last_call)
+        self._last_call = now
+        want_curvature, want_noise = self.curvature.due(step), self.noise_stride.due(step)
         if not (want_curvature or want_noise):
             return
         rebuilt = recorder.trained_loss()
@@ -55,10 +88,15 @@ class RecordingEstimates:
         step_fn = self._mean_loss(recorder, loss_fn)
         with recorder.pause():
             if want_curvature:
+                started = time.perf_counter()
                 self._estimate(recorder, row, "sharpness", lambda: sharpness(
                     recorder.model, step_fn, micro_batch, optimizer=recorder.optimizer, tol=RECORDING_TOL))
+                self.curvature.took(step, time.perf_counter() - started, self._step_seconds())
             if want_noise:
+                started = time.perf_counter()
                 self._estimate(recorder, row, "noise_scale", lambda: self._noise(recorder, step_fn, micro_batch))
+                self.noise_stride.took(step, time.perf_counter() - started, self._step_seconds())
+        self._last_call = time.perf_counter()   # the estimate's own time is not a training step's
 
     @staticmethod
     def _estimate(recorder, row, quantity, compute):

@@ -43,8 +43,9 @@ class RecordOptions:
     clip: float | None = option(None, "the max norm your loop clips gradients to (clip_grad_norm_ over "
                                       "model.parameters()), so replays re-apply it; the trainer callbacks read it "
                                       "from the trainer")
-    curvature_every: int = option(0, "sharpness every N steps (0 = off)")
-    noise_every: int = option(0, "gradient noise scale every N steps (0 = off)")
+    curvature_every: int | str = option(0, "sharpness every N steps (0 = off), or \"auto\": as often as 1 % of the "
+                                           "training step allows (one estimate costs 50-150 steps)")
+    noise_every: int | str = option(0, "gradient noise scale every N steps (0 = off), or \"auto\" (as curvature_every)")
     commit_seconds: float = option(5.0, "rows are committed to disk at least this often: a crash loses at most "
                                         "this much (flush_seconds, its old name, works until the next release)")
     expected_steps: int | None = option(None, "lets record() refuse when the disk cannot hold the run")
@@ -60,8 +61,11 @@ class RecordOptions:
         for name, low in (("probes", 0), ("keyframe_every", 1), ("curvature_every", 0),
                           ("noise_every", 0)):
             value = getattr(self, name)
+            if value == "auto" and name in ("curvature_every", "noise_every"):
+                continue
             if not isinstance(value, int) or isinstance(value, bool) or value < low:
-                raise RecorderError(f"Invalid {name}: {value!r}; expected an integer >= {low}")
+                also = " or \"auto\"" if name in ("curvature_every", "noise_every") else ""
+                raise RecorderError(f"Invalid {name}: {value!r}; expected an integer >= {low}{also}")
         if not isinstance(self.keep_batches, (bool, int)) or (type(self.keep_batches) is int and self.keep_batches < 0):
             raise RecorderError(f"Invalid keep_batches: {self.keep_batches!r}; expected True, False or a byte budget "
                                 "(an integer >= 0)")

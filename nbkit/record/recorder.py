@@ -25,7 +25,7 @@ from nbkit.errors import RecorderError
 from nbkit.measure.update_rules import adapter_for
 from nbkit.record import capture, lifetime, setup, trained_loss, wrappers
 from nbkit.record.backward import BackwardWatch
-from nbkit.record.budget import StrideBudget
+from nbkit.record.budget import StrideBudget, budget_share
 from nbkit.record.estimates import estimates_for
 from nbkit.record.options import RecordOptions
 from nbkit.record.pacing import Pacer
@@ -88,7 +88,9 @@ class Recorder:
         self._kept_layout = None                       # layout signature of the last kept step
         self._layout_changes: list = []
         self._keeping = options.batch_budget > 0
-        self._budget = StrideBudget() if options.every == "auto" else None
+        # estimates with stride "auto" take their share out of the recorder's 5 %
+        auto_estimates = [options.curvature_every, options.noise_every].count("auto")
+        self._budget = StrideBudget(share=budget_share(auto_estimates)) if options.every == "auto" else None
         self._stride = 1 if self._budget is not None else options.every
         self._last_heavy = None                        # the last heavy step (neighbour comparisons need step - 1)
         self._spent = [0.0, 0.0]                       # this step's training-thread seconds: light, heavy extras
@@ -415,8 +417,10 @@ class Recorder:
                 self._check_trained_loss(taken)     # once: not counted in the budget
                 started = time.perf_counter() - (heavy_started - started) - heavy_seconds
             self._keep(taken)
+            hooks_started = time.perf_counter()
             for hook in list(self._step_hooks.values()):
                 hook(row)
+            started += time.perf_counter() - hooks_started    # estimates budget themselves (estimates.py)
             self._open_row, self._open_tasks = row, tasks
             self._forward_since_step = False
             self._spend(time.perf_counter() - started - heavy_seconds, heavy_seconds, heavy)
@@ -511,7 +515,7 @@ class Recorder:
         self.loss_rebuildable = result["verdict"] in (trained_loss.EXACT, trained_loss.CLOSE)
         self.note(trained_loss={"rebuildable": self.loss_rebuildable,
                                 "rebuild": result["rebuild"] if self.loss_rebuildable else None, "checks": self._loss_checks})
-        problem = trained_loss.problem(result, estimates=self.options.curvature_every + self.options.noise_every > 0)
+        problem = trained_loss.problem(result, estimates=bool(self.options.curvature_every or self.options.noise_every))
         if problem:
             self.report_problem(problem)
 
