@@ -106,10 +106,13 @@ def interleaved(run, steps):
     def before_step(model, optimizer, step):
         started = time.perf_counter()
         x, y = batches(step)
-        plain_optimizer.zero_grad()
-        # the same loss as step_fn through another criterion object: the replay watches CRITERION
-        torch.nn.functional.cross_entropy(plain_model(x), y).backward()
-        plain_optimizer.step()
+        # the plain model's dropout draws from a forked generator: the replay's random stream stays the
+        # recorded one (its per-step random-state check would stop it otherwise)
+        with torch.random.fork_rng():
+            plain_optimizer.zero_grad()
+            # the same loss as step_fn through another criterion object: the replay watches CRITERION
+            torch.nn.functional.cross_entropy(plain_model(x), y).backward()
+            plain_optimizer.step()
         ended = time.perf_counter()
         plain.append(ended - started)
         marks.append((started, ended))
