@@ -159,3 +159,15 @@ def test_curvature_every_auto_estimates_at_the_first_step_and_then_rarely(tmp_pa
     assert np.isfinite(sharpness[0]) and np.isnan(sharpness[1:20]).all()
     with pytest.raises(nbkit.RecorderError, match='integer >= 0 or "auto"'):
         nbkit.record(mlp(), torch.optim.SGD(mlp().parameters(), lr=0.1), tmp_path / "x", curvature_every="often")
+
+
+def test_the_layer_map_of_a_thinned_recording_is_blank_where_no_step_is_heavy(thinned):
+    from nbkit.views.data import ExplorerData
+
+    data = ExplorerData(thinned)
+    starts, values, how = data.layer_map("update_ratio")           # (columns,), (tensors, columns)
+    assert starts.tolist() == list(range(40)) and "every=auto" in how   # one evenly spaced column a step
+    heavy = set(np.flatnonzero(thinned.heavy).tolist())
+    for column, step in enumerate(starts):
+        assert np.isfinite(values[:, column]).all() == (step in heavy), step
+    np.testing.assert_array_equal(values[:, 17], thinned.series("update_ratio")[17])

@@ -37,6 +37,24 @@ def minmax_downsample(x: np.ndarray, y: np.ndarray, buckets: int) -> tuple[np.nd
     return np.asarray(xs), np.asarray(ys)
 
 
+GRID_COLUMNS = 2000      # evenly spaced heat-map columns a thinned recording is drawn on, at most
+
+
+def with_gaps(steps: np.ndarray, columns: np.ndarray, first_step: int, last_step: int) -> tuple[np.ndarray, np.ndarray]:
+    """The values of the recorded `steps` (rows of `columns`) on evenly spaced columns from first_step to
+    last_step (a heat map's columns are drawn evenly): each grid column shows the recorded step it
+    falls on, NaN where it falls on none, so a thinned recording shows where it has no values instead
+    of stretching its heavy steps over the gaps."""
+    count = min(GRID_COLUMNS, last_step - first_step + 1)
+    grid = np.linspace(first_step, last_step + 1, count, endpoint=False)
+    at = np.searchsorted(steps, grid, side="right") - 1
+    out = np.full((count, *columns.shape[1:]), np.nan, dtype=np.float64)
+    # the recorded step must cover the grid column: it is within one step before it
+    hit = (at >= 0) & (grid - steps[np.maximum(at, 0)] < max(1.0, (last_step + 1 - first_step) / count))
+    out[hit] = columns[at[hit]]
+    return np.floor(grid).astype(np.int64), out
+
+
 class ExplorerData:
     """Cached selections from one Recording for the explorer's parts."""
 
@@ -114,7 +132,8 @@ class ExplorerData:
         heavy = np.flatnonzero(heavy)
         if len(heavy) and len(heavy) < self.row_count:                     # every=N: keep the rows that have values
             how = f"every={self.run.meta.get('every', '?')}" + (", windows re-recorded in full" if self.details else "")
-            return self.steps[heavy], values[heavy].T, how
+            starts, columns = with_gaps(self.steps[heavy], values[heavy], int(self.steps[0]), int(self.steps[-1]))
+            return starts, columns.T, how
         return self.steps, values.T, "every step"
 
     def overview_range(self, q: str) -> tuple[float, float, float]:
@@ -205,7 +224,12 @@ class ExplorerData:
             held = held if held.size else np.arange(self.row_count)
             cols = np.linspace(0, len(held), min(HISTOGRAM_COLUMNS, len(held)) + 1).astype(np.int64)
             image = np.add.reduceat(counts[held], cols[:-1], axis=0)              # (columns, T, bins)
+            ends = held[cols[1:] - 1] + 1                                         # after each column's last row
             cols = np.append(held[cols[:-1]], self.row_count)
+            gaps = np.flatnonzero(ends < cols[1:])                                # rows without a histogram follow
+            if len(gaps):                                                         # empty columns there
+                image = np.insert(image, gaps + 1, np.nan, axis=0)
+                cols = np.insert(cols, gaps + 1, ends[gaps])
             how = "all steps" if len(held) == self.row_count else f"the {len(held)} steps with histograms"
         else:
             chosen = np.unique(np.linspace(0, blocks - 1, HISTOGRAM_BLOCKS).round().astype(np.int64))
