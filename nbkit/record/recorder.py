@@ -105,7 +105,7 @@ class Recorder:
         self._writer, next_step = setup.open_writer(self.recording_path, meta, options, optimizer, self.adapter,
                                                     setup.probe_index(self._tensors, self.probes))
         self.step = self.step if next_step is None else next_step     # resume: steps continue
-        self._strides = [[self.step, self._stride]]
+        self._strides = list(self._writer.meta.get("strides") or []) + [[self.step, self._stride]]   # resume: kept
         self._writer.update_meta(strides=self._strides)
         self._settings = SettingsReader(setting_columns(self._writer.meta))   # the stored keys: fixed at the start
         self._backward = BackwardWatch(self._tensors, self.report_problem)

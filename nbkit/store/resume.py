@@ -38,7 +38,8 @@ class ResumePlan:
                              f"first differences: {changed or 'count'})")
         merged = dict(old)
         for key in ("pid", "threads", "interop_threads", "torch_version", "nbkit_version", "commit_seconds",
-                    "expected_steps", "strict", "distributed", "size_estimate"):
+                    "expected_steps", "strict", "distributed", "size_estimate", "every", "keep_batches",
+                    "batch_budget_bytes", "criterion_spec", "clip"):
             if key in new:
                 merged[key] = new[key]
         merged["closed"] = False
