@@ -514,7 +514,8 @@ class Recorder:
         self._loss_checks = (self._loss_checks + [result])[-20:]
         self.loss_rebuildable = result["verdict"] in (trained_loss.EXACT, trained_loss.CLOSE)
         self.note(trained_loss={"rebuildable": self.loss_rebuildable,
-                                "rebuild": result["rebuild"] if self.loss_rebuildable else None, "checks": self._loss_checks})
+                                "rebuild": result["rebuild"] if self.loss_rebuildable else None,
+                                "checks": self._loss_checks})
         problem = trained_loss.problem(result, estimates=bool(self.options.curvature_every or self.options.noise_every))
         if problem:
             self.report_problem(problem)

@@ -6,7 +6,8 @@ fetch batch s (or the kept step s); optimizer.zero_grad(); loss = step_fn(model,
 loss.backward() unless step_fn returned a float or a tensor without grad_fn (it ran backward itself)
 (a kept step: the recorded CPU random state, then per micro-batch its loss under the recorded autocast
 state, back-propagated times its recorded scale); before_step(model, optimizer, s), or without one the
-recorded clipping (nbkit.record.trained_loss.clip_gradients); for the recorded optimizer, set each group's lr and every other recorded setting
+recorded clipping (nbkit.record.trained_loss.clip_gradients); for the recorded optimizer, set each
+group's lr and every other recorded setting
 (momentum, betas, weight_decay, ...) to the recorded values of step s; optimizer.step()
 (with a closure built from step_fn for optimizers whose step() requires one, such as LBFGS).
 Several optimizers advance in lockstep on the same batch, each on its own model copy and with its own

@@ -76,7 +76,8 @@ def make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before
     if not isinstance(workers, int) or isinstance(workers, bool) or workers < 1:
         raise ReplayError(f"Invalid workers: {workers!r}; expected a positive integer")
     if every is not None and every != "auto" and (not isinstance(every, int) or isinstance(every, bool) or every < 1):
-        raise ReplayError(f"Invalid every: {every!r}; expected None, \"auto\" or a positive integer (1: every step in full)")
+        raise ReplayError(f"Invalid every: {every!r}; expected None, \"auto\" or a positive integer "
+                          "(1: every step in full)")
     detail = every == 1 and optimizers is None
     factories = {f"full-{start}-{start + steps - 1}" if detail else RECORDED: None} if optimizers is None else optimizers
     if not isinstance(factories, dict) or not factories:
