@@ -316,16 +316,36 @@ def write_packed_step(root: Path, step: int, packed: PackedStep) -> int:
     return write_packed_steps(root, [(step, packed)])
 
 
-def _read_group(path: Path, what: str) -> tuple[dict, dict]:
-    """(metadata by step, tensors by name) of one group file; RecordingError when it is damaged."""
+def _read_group(path: Path, what: str, step: int | None = None) -> tuple[dict, dict]:
+    """(metadata by step, tensors by name) of one group file, only `step`'s tensors when it is given;
+    RecordingError when the file is damaged."""
+    prefix = "" if step is None else f"{step}."
     try:
         with safe_open(str(path), framework="pt") as handle:
             side = json.loads((handle.metadata() or {})[_METADATA_KEY])
-            tensors = {name: handle.get_tensor(name) for name in handle.keys()}
+            tensors = {name: handle.get_tensor(name) for name in handle.keys() if name.startswith(prefix)}
     except (SafetensorError, OSError, ValueError, KeyError, RuntimeError) as exc:
         raise RecordingError(f"Kept batches of {what} in {str(path)!r} are damaged ({exc!r}); "
                              "nothing in it was executed. The step cannot be replayed from its batches.") from exc
     return side, tensors
+
+
+def _step_tensors(tensors: dict, step: int) -> tuple[dict, dict]:
+    """(buffers by tag, RNG states by name) of `step` among a group file's tensors."""
+    named = {kind: {} for kind in ("buffer.", "rng.")}
+    for name, tensor in tensors.items():
+        head, _, rest = name.partition(".")
+        kind, _, key = rest.partition(".")
+        if head == str(step) and kind + "." in named:
+            named[kind + "."][key] = tensor
+    return named["buffer."], named["rng."]
+
+
+def _packed_steps(path: Path) -> dict[int, PackedStep]:
+    """Every step of one group file as PackedStep, from one read of the file (to write it again)."""
+    side, tensors = _read_group(path, f"the group {path.name}")
+    return {int(step): PackedStep(meta["spec"], *_step_tensors(tensors, int(step)), json.dumps(meta))
+            for step, meta in side.items()}
 
 
 def write_kept_step(root: Path, step: int, kept: KeptStep) -> int:
@@ -333,18 +353,9 @@ def write_kept_step(root: Path, step: int, kept: KeptStep) -> int:
     path = kept_step_path(root, step)
     if not path.is_file():
         return write_packed_step(root, step, pack_kept_step(kept))
-    first, last = (int(n) for n in _GROUP_FILE.fullmatch(path.name).groups())
-    items = [(s, pack_kept_step(kept) if s == step else _packed_from(path, s)) for s in range(first, last + 1)]
-    size = write_packed_steps(root, items)
-    return size
-
-
-def _packed_from(path: Path, step: int) -> PackedStep:
-    side, tensors = _read_group(path, f"step {step}")
-    prefix = f"{step}."
-    named = {kind: {n.removeprefix(prefix + kind): t for n, t in tensors.items() if n.startswith(prefix + kind)}
-             for kind in ("buffer.", "rng.")}
-    return PackedStep(side[str(step)]["spec"], named["buffer."], named["rng."], json.dumps(side[str(step)]))
+    packed = _packed_steps(path)
+    packed[step] = pack_kept_step(kept)
+    return write_packed_steps(root, sorted(packed.items()))
 
 
 def read_kept_step(root: Path, step: int) -> KeptStep:
@@ -354,17 +365,15 @@ def read_kept_step(root: Path, step: int) -> KeptStep:
         steps = kept_steps(root)
         held = f"{len(steps)} steps are kept, from step {steps[0]} to {steps[-1]}" if steps else "no steps are kept"
         raise RecordingError(f"No kept batches for step {step} in {str(Path(root) / BATCH_DIR)!r}; {held}")
-    side, tensors = _read_group(path, f"step {step}")
+    side, tensors = _read_group(path, f"step {step}", step)
     try:
         side = side[str(step)]
         if side["kept_format"] != KEPT_FORMAT or side["step"] != step:
             raise ValueError(f"format {side['kept_format']!r} of step {side['step']!r}")
-        prefix = f"{step}."
-        named = {kind: {n.removeprefix(prefix + kind): t for n, t in tensors.items() if n.startswith(prefix + kind)}
-                 for kind in ("buffer.", "rng.")}
+        buffers, rng = _step_tensors(tensors, step)
         scales = [None if s is None else float(s) for s in side["scales"]]
-        return KeptStep(step, decode(side["spec"], named["buffer."]), named["rng."], side["autocast"], scales,
-                        side["source"], side["extra"])
+        return KeptStep(step, decode(side["spec"], buffers), rng, side["autocast"], scales, side["source"],
+                        side["extra"])
     except (KeyError, TypeError, ValueError, RuntimeError, IndexError) as exc:
         raise RecordingError(f"Kept batches of step {step} in {str(path)!r} do not match their spec ({exc!r}); "
                              "nothing in it was executed.") from exc
@@ -386,8 +395,8 @@ def delete_kept_steps(root: Path, steps) -> None:
         inside = [s for s in range(first, last + 1) if s in doomed]
         if not inside:
             continue
-        staying = [s for s in range(first, last + 1) if s not in doomed]
-        items = [(s, _packed_from(path, s)) for s in staying]
+        packed = _packed_steps(path)
+        items = [(s, packed[s]) for s in range(first, last + 1) if s not in doomed]
         path.unlink(missing_ok=True)
         run: list = []
         for item in items:                        # the steps that stay, in consecutive runs
