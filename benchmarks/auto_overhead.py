@@ -233,7 +233,7 @@ def report(results, skipped, threads, steps, block):
           f"interval, when alone over the share (else -).")
     print("\n[every=\"auto\": CPU shares of the unrecorded step, and the budget's own view]")
     print(f"{'model':<12}{'train-thread CPU [95% CI]':<28}{'background CPU [95% CI]':<28}{'stats CPU':>10}   "
-          f"{'interval':>9}{'light':>8}"
+          f"{'step':>9}{'light':>8}"
           f"{'heavy+':>9}{'at':>5}{'stride':>7}{'est. share':>11}   strides")
     for r in results:
         u = float(np.median(r["unrecorded"]["step"]))
@@ -253,8 +253,8 @@ def report(results, skipped, threads, steps, block):
           "unrecorded step; background CPU: the same for all other threads of the process (writer, statistics; "
           "torch's own threads cancel); stats CPU: this recorder's statistics-thread CPU per measured step ÷ the "
           "median unrecorded step. Budget columns (ms, from rec.recorded_meta(\"budget\") after the run: the last "
-          "decision, at step 'at'): median interval between optimizer steps, light work per step, extras per heavy "
-          "step; est. share = (light + extras · min(1, 2 / stride)) ÷ interval.")
+          "decision, at step 'at'): the step without the recorder (median interval between optimizer steps less "
+          "the recorder's own cost), light work per step, extras per heavy step; est. share = (light + extras · min(1, 2 / stride)) ÷ interval.")
     return ok_all
 
 

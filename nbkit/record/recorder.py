@@ -226,11 +226,6 @@ class Recorder:
             return None
         return trained_loss.micro_batch_loss(kind, self.criterion, self.step_fn), last.micro_batches[-1].as_kept()
 
-    def last_batch(self):
-        """(args, kwargs, targets) of the last training forward pass and criterion call, when the
-        recorder keeps them (curvature_every or noise_every set); None otherwise or before one."""
-        return self._inputs.last_batch()
-
     @contextlib.contextmanager
     def pause(self):
         """Within this block the hooks ignore forward passes and optimizer steps (extra passes of an
@@ -413,17 +408,20 @@ class Recorder:
             heavy_started = time.perf_counter()
             tasks = self._heavy_row(row) if heavy else []
             heavy_seconds = time.perf_counter() - heavy_started
+            # outside the stride budget: the trained-loss check (once) and the step hooks (estimates
+            # budget themselves, nbkit.record.estimates)
+            outside = time.perf_counter()
             if self._check_pending:
-                self._check_trained_loss(taken)     # once: not counted in the budget
-                started = time.perf_counter() - (heavy_started - started) - heavy_seconds
+                self._check_trained_loss(taken)
+            outside = time.perf_counter() - outside
             self._keep(taken)
             hooks_started = time.perf_counter()
             for hook in list(self._step_hooks.values()):
                 hook(row)
-            started += time.perf_counter() - hooks_started    # estimates budget themselves (estimates.py)
+            outside += time.perf_counter() - hooks_started
             self._open_row, self._open_tasks = row, tasks
             self._forward_since_step = False
-            self._spend(time.perf_counter() - started - heavy_seconds, heavy_seconds, heavy)
+            self._spend(time.perf_counter() - started - heavy_seconds - outside, heavy_seconds, heavy)
             if (self.step + 1) % self.keyframe_every == 0:
                 self._take_keyframe(self.step + 1)
                 self._choose_stride(self.step + 1)

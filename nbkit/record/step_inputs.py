@@ -265,14 +265,6 @@ class StepInputs:
         self._start()
         return self.last
 
-    def last_batch(self):
-        """(args, kwargs, targets) of the last step's last forward pass and criterion call, or None."""
-        forwards = [m for m in (self.last.micro_batches if self.last else []) if m.forward is not None]
-        if not forwards:
-            return None
-        args, kwargs = forwards[-1].forward
-        return tuple(args), dict(kwargs), tuple(forwards[-1].targets or ())
-
 
 def step_loss(micro_batches: list[MicroBatch], rule: str) -> float | None:
     """A step's loss from its micro-batches' losses by `rule` (LOSS_RULES); None when none was seen.
