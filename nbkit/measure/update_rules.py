@@ -64,6 +64,8 @@ class Adapter:
     gain_applicable: bool = True    # False where post-step gradients do not belong to the update
     notes: str = ""
     before_keys: tuple = ()         # state keys the factors need from before the step (sampled pre-step)
+    eps_mask: object = None         # callable(StepContext) -> bool tensor: ε outweighs the rest of the
+    #                                 denominator (the factors' eps_dominated), on any shape (profiles)
 
     def probe_field(self, state_key: str) -> str:
         """Name of a state tensor in the probes: first_moment / second_moment, or its own name."""
@@ -115,31 +117,48 @@ def _sgd(ctx: StepContext) -> Factors:
 # m̂ = m/(1−β1^t), v̂ = v/(1−β2^t) (amsgrad: v̂ from max_exp_avg_sq), θ ← θ − lr·m̂/(√v̂ + ε);
 # AdamW (decoupled decay) first does θ ← θ(1 − lr·wd). Momentum factor m̂/g, scale 1/(√v̂ + ε).
 def _adam(ctx: StepContext) -> Factors:
-    beta1, beta2 = ctx.hyper("betas")
+    beta1, _ = ctx.hyper("betas")
     eps = ctx.hyper("eps")
-    t = ctx.step
-    m_hat = ctx.after["exp_avg"] / (1 - beta1 ** t)
-    second = ctx.after["max_exp_avg_sq"] if ctx.hyper("amsgrad", False) else ctx.after["exp_avg_sq"]
-    root_v_hat = torch.sqrt(second) / torch.sqrt(1 - beta2 ** t)
+    m_hat = ctx.after["exp_avg"] / (1 - beta1 ** ctx.step)
+    root_v_hat = _adam_root(ctx)
     momentum = _divide(m_hat, ctx.grad)
     scale = 1 / (root_v_hat + eps)
     return Factors(momentum, scale, _decoupled_residual(ctx, momentum, scale), eps > root_v_hat)
 
 
+def _adam_root(ctx: StepContext) -> torch.Tensor:
+    _, beta2 = ctx.hyper("betas")
+    second = ctx.after["max_exp_avg_sq"] if ctx.hyper("amsgrad", False) else ctx.after["exp_avg_sq"]
+    return torch.sqrt(second) / torch.sqrt(1 - beta2 ** ctx.step)
+
+
+def _adam_eps(ctx: StepContext) -> torch.Tensor:
+    return ctx.hyper("eps") > _adam_root(ctx)
+
+
 # --- NAdam: Dozat 2016; torch.optim.NAdam page. μ_t = β1(1 − ½·0.96^(tψ)), Π_t = ∏μ_i;
 # θ ← θ − lr·[(1−μ_t)/(1−Π_t)·g' + μ_{t+1}/(1−Π_t·μ_{t+1})·m] / (√v̂ + ε).
 def _nadam(ctx: StepContext) -> Factors:
-    beta1, beta2 = ctx.hyper("betas")
+    beta1, _ = ctx.hyper("betas")
     eps, psi = ctx.hyper("eps"), ctx.hyper("momentum_decay")
     t = ctx.step
     mu = beta1 * (1 - 0.5 * 0.96 ** (t * psi))
     mu_next = beta1 * (1 - 0.5 * 0.96 ** ((t + 1) * psi))
     product = ctx.scalars["mu_product"]
     numerator = (1 - mu) / (1 - product) * ctx.effective_grad() + mu_next / (1 - product * mu_next) * ctx.after["exp_avg"]
-    root_v_hat = torch.sqrt(ctx.after["exp_avg_sq"] / (1 - beta2 ** t))
+    root_v_hat = _nadam_root(ctx)
     momentum = _divide(numerator, ctx.grad)
     scale = 1 / (root_v_hat + eps)
     return Factors(momentum, scale, _decoupled_residual(ctx, momentum, scale), eps > root_v_hat)
+
+
+def _nadam_root(ctx: StepContext) -> torch.Tensor:
+    _, beta2 = ctx.hyper("betas")
+    return torch.sqrt(ctx.after["exp_avg_sq"] / (1 - beta2 ** ctx.step))
+
+
+def _nadam_eps(ctx: StepContext) -> torch.Tensor:
+    return ctx.hyper("eps") > _nadam_root(ctx)
 
 
 # --- RAdam: Liu et al. 2020; torch.optim.RAdam page. ρ_t = ρ∞ − 2tβ2^t/(1−β2^t); when ρ_t > 5:
@@ -150,15 +169,26 @@ def _radam(ctx: StepContext) -> Factors:
     t = ctx.step
     m_hat = ctx.after["exp_avg"] / (1 - beta1 ** t)
     momentum = _divide(m_hat, ctx.grad)
-    rho_inf = 2 / (1 - beta2) - 1
-    rho_t = rho_inf - 2 * t * beta2 ** t / (1 - beta2 ** t)
-    rectified = rho_t > 5
+    rho_inf, rho_t, rectified = _radam_rectification(ctx)
     rect = torch.sqrt(((rho_t - 4) * (rho_t - 2) * rho_inf / ((rho_inf - 4) * (rho_inf - 2) * rho_t)).clamp(min=0))
     root_v = torch.sqrt(ctx.after["exp_avg_sq"])
     scale = torch.where(rectified, torch.sqrt(1 - beta2 ** t) / (root_v + eps), 1.0)
     rect = torch.where(rectified, rect, 1.0).expand_as(momentum)
     residual = rect * _decoupled_residual(ctx, momentum, scale * rect)
     return Factors(momentum, scale, residual, torch.where(rectified, eps > root_v, False))
+
+
+def _radam_rectification(ctx: StepContext):
+    _, beta2 = ctx.hyper("betas")
+    t = ctx.step
+    rho_inf = 2 / (1 - beta2) - 1
+    rho_t = rho_inf - 2 * t * beta2 ** t / (1 - beta2 ** t)
+    return rho_inf, rho_t, rho_t > 5
+
+
+def _radam_eps(ctx: StepContext) -> torch.Tensor:
+    rectified = _radam_rectification(ctx)[2]
+    return torch.where(rectified, ctx.hyper("eps") > torch.sqrt(ctx.after["exp_avg_sq"]), False)
 
 
 # --- Adamax: Kingma & Ba 2015, section 7.1; torch.optim.Adamax page.
@@ -172,21 +202,34 @@ def _adamax(ctx: StepContext) -> Factors:
     return Factors(momentum, 1 / u, _ones(momentum), eps > u - eps)
 
 
+def _adamax_eps(ctx: StepContext) -> torch.Tensor:
+    eps = ctx.hyper("eps")
+    return eps > ctx.after["exp_inf"] - eps
+
+
 # --- RMSprop: Hinton's lecture 6e; torch.optim.RMSprop page. v = αv + (1−α)g'²; centered: ḡ = αḡ +
 # (1−α)g', a = √(v − ḡ²) + ε, else a = √v + ε. With momentum μ: b = μb + g'/a, θ ← θ − lr·b;
 # else θ ← θ − lr·g'/a. Scale factor 1/a; momentum factor b·a/g (1 without momentum).
 def _rmsprop(ctx: StepContext) -> Factors:
     eps = ctx.hyper("eps")
-    v = ctx.after["square_avg"]
-    if ctx.hyper("centered", False):
-        v = v - ctx.after["grad_avg"] ** 2
-    root = torch.sqrt(v.clamp(min=0))
+    root = _rmsprop_root(ctx)
     a = root + eps
     scale = 1 / a
     g, gd = ctx.grad, ctx.effective_grad()
     if ctx.hyper("momentum", 0):
         return Factors(_divide(ctx.after["momentum_buffer"] * a, g), scale, _ones(g), eps > root)
     return Factors(_ones(g), scale, _divide(gd, g) if gd is not g else _ones(g), eps > root)
+
+
+def _rmsprop_root(ctx: StepContext) -> torch.Tensor:
+    v = ctx.after["square_avg"]
+    if ctx.hyper("centered", False):
+        v = v - ctx.after["grad_avg"] ** 2
+    return torch.sqrt(v.clamp(min=0))
+
+
+def _rmsprop_eps(ctx: StepContext) -> torch.Tensor:
+    return ctx.hyper("eps") > _rmsprop_root(ctx)
 
 
 # --- Adagrad: Duchi et al. 2011; torch.optim.Adagrad page. clr = lr/(1 + (t−1)·lr_decay);
@@ -199,6 +242,14 @@ def _adagrad(ctx: StepContext) -> Factors:
     if decay:
         residual = residual / (1 + (ctx.step - 1) * decay)
     return Factors(_ones(g), 1 / (root + eps), residual, eps > root)
+
+
+def _adagrad_eps(ctx: StepContext) -> torch.Tensor:
+    return ctx.hyper("eps") > torch.sqrt(ctx.after["sum"])
+
+
+def _adadelta_eps(ctx: StepContext) -> torch.Tensor:
+    return ctx.hyper("eps") > ctx.after["square_avg"]
 
 
 # --- Adadelta: Zeiler 2012; torch.optim.Adadelta page. v = ρv + (1−ρ)g'²;
@@ -219,14 +270,15 @@ def _not_applicable(ctx: StepContext):
 
 ADAPTERS: dict[str, Adapter] = {
     "SGD": Adapter("SGD", first_moment="momentum_buffer", factors=_sgd),
-    "Adam": Adapter("Adam", "exp_avg", "exp_avg_sq", _adam),
-    "AdamW": Adapter("AdamW", "exp_avg", "exp_avg_sq", _adam),
-    "NAdam": Adapter("NAdam", "exp_avg", "exp_avg_sq", _nadam),
-    "RAdam": Adapter("RAdam", "exp_avg", "exp_avg_sq", _radam),
-    "Adamax": Adapter("Adamax", "exp_avg", None, _adamax),
-    "RMSprop": Adapter("RMSprop", None, "square_avg", _rmsprop),
-    "Adagrad": Adapter("Adagrad", None, "sum", _adagrad),
-    "Adadelta": Adapter("Adadelta", None, "square_avg", _adadelta, before_keys=("acc_delta",)),
+    "Adam": Adapter("Adam", "exp_avg", "exp_avg_sq", _adam, eps_mask=_adam_eps),
+    "AdamW": Adapter("AdamW", "exp_avg", "exp_avg_sq", _adam, eps_mask=_adam_eps),
+    "NAdam": Adapter("NAdam", "exp_avg", "exp_avg_sq", _nadam, eps_mask=_nadam_eps),
+    "RAdam": Adapter("RAdam", "exp_avg", "exp_avg_sq", _radam, eps_mask=_radam_eps),
+    "Adamax": Adapter("Adamax", "exp_avg", None, _adamax, eps_mask=_adamax_eps),
+    "RMSprop": Adapter("RMSprop", None, "square_avg", _rmsprop, eps_mask=_rmsprop_eps),
+    "Adagrad": Adapter("Adagrad", None, "sum", _adagrad, eps_mask=_adagrad_eps),
+    "Adadelta": Adapter("Adadelta", None, "square_avg", _adadelta, before_keys=("acc_delta",),
+                        eps_mask=_adadelta_eps),
     "SparseAdam": Adapter("SparseAdam", "exp_avg", "exp_avg_sq", _not_applicable,
                           notes="sparse gradients are skipped; moments kept as probes where dense"),
     "Muon": Adapter("Muon", "momentum_buffer", None, _not_applicable,

@@ -19,9 +19,10 @@ from typing import Callable
 import numpy as np
 import torch
 
+from nbkit.measure import profiles as unit_profiles
 from nbkit.measure.quantities import QUANTITIES
 from nbkit.measure.step_stats import norms, sampled_statistics, whole_tensor_statistics
-from nbkit.measure.update_rules import Adapter
+from nbkit.measure.update_rules import Adapter, StepContext
 from nbkit.store.layout import Row
 
 QUANTITY_INDEX = {q: i for i, q in enumerate(QUANTITIES)}
@@ -184,6 +185,7 @@ class BlockJob:
     adapter: Adapter
     probes: int
     deliver: Callable[["BlockStatistics"], None]   # called with the results on the statistics thread
+    profiles: bool = False          # per-unit profiles of the members that have units
 
 
 @dataclass
@@ -195,11 +197,12 @@ class BlockStatistics:
     histograms: torch.Tensor        # (3, R, HISTOGRAM_BINS + 2) grad, update, gain
     probes: dict                    # probe field -> (R, probes) tensor
     state_nonfinite: torch.Tensor | None   # (R,) non-finite optimizer state values, None without state
+    profiles: dict = None           # member row -> {axis: (units, 3) float64} (nbkit.measure.profiles)
 
 
 @torch.no_grad()
 def prepare_block(block: Block, members: list[int], optimizer, adapter: Adapter, probes: int, *,
-                  deliver) -> BlockJob:
+                  deliver, profiles: bool = False) -> BlockJob:
     """Post-step, on the training thread: what the statistics of the tensors `members` of `block`
     (those with a dense gradient) need from tensors that change before the next step.
 
@@ -238,7 +241,8 @@ def prepare_block(block: Block, members: list[int], optimizer, adapter: Adapter,
                    minus_update=befores, flat_index=flat_index, current_flat=block.grad_flats[1 - block.turn],
                    theta_before=theta_before, weight_norm=weight_norm, weight_nonfinite=weight_nonfinite,
                    previous_norms=previous_norms, has_previous=has_previous, before=before, optimizer=optimizer,
-                   params=[t.param for t in tensors], group=group, adapter=adapter, probes=probes, deliver=deliver)
+                   params=[t.param for t in tensors], group=group, adapter=adapter, probes=probes, deliver=deliver,
+                   profiles=profiles)
     for r in members:
         block.has_previous[r] = True
     return job
@@ -289,13 +293,41 @@ def block_statistics(job: BlockJob) -> BlockStatistics:
         if block.previous_sample is None:
             block.previous_sample = torch.full(block.local.shape, math.nan, dtype=block.work)
         block.previous_sample[members] = grad
-    return BlockStatistics(whole, sampled, histograms, probe_values, state_nonfinite)
+    profiled = _profiles(job) if job.profiles else {}
+    return BlockStatistics(whole, sampled, histograms, probe_values, state_nonfinite, profiled)
 
 
-def deliver(row: Row, ks: list, probe_counts: list, n_probes: int, results: BlockStatistics) -> None:
+def _profiles(job: BlockJob) -> dict:
+    """The exact per-unit profiles of the job's tensors that have units, from the block's −Δθ and
+    gradient copies and the optimizer state (for the ε mask: the adapter's eps_mask on whole tensors)."""
+    out = {}
+    for i, r in enumerate(job.members):
+        t = job.block.tensors[r]
+        if not t.profile_at:
+            continue
+        eps_mask = None
+        if job.adapter.eps_mask is not None:
+            state, scalars = state_tensors(job.optimizer, job.params[i])
+            if state:
+                step = torch.tensor(scalars.get("step", math.nan), dtype=torch.float64)
+                context = StepContext(grad=job.current[i], theta=None, update=None, before={}, after=state,
+                                      step=step, group=job.group, lr=float(job.group["lr"]), scalars=scalars)
+                try:
+                    eps_mask = job.adapter.eps_mask(context)
+                except KeyError:            # a state key this configuration does not keep: no ε share
+                    eps_mask = None
+        dims = {"rows": t.units.rows, "columns": t.units.columns}
+        out[i] = {axis: unit_profiles.unit_profile(job.minus_update[i], job.current[i], eps_mask, dims[axis])
+                  for axis in t.profile_at}
+    return out
+
+
+def deliver(row: Row, ks: list, probe_counts: list, n_probes: int, results: BlockStatistics,
+            profile_at: list | None = None) -> None:
     """Write one block's statistics into a recorder row (runs on the statistics thread).
 
-    ks: the block's tensors' positions in the recording; probe_counts: probe coordinates of each."""
+    ks: the block's tensors' positions in the recording; probe_counts: probe coordinates of each;
+    profile_at: each member's {axis: (offset, units)} in the row's profile arrays."""
     for name, values in (*results.whole.items(), *results.sampled.items()):
         i = QUANTITY_INDEX.get(name)
         if i is not None:
@@ -313,16 +345,26 @@ def deliver(row: Row, ks: list, probe_counts: list, n_probes: int, results: Bloc
         for r, count in enumerate(probe_counts):
             if count < n_probes:
                 block_values[ks[r], count:] = np.nan
+    for i, by_axis in (results.profiles or {}).items():
+        for axis, values in by_axis.items():
+            offset, units = profile_at[i][axis]
+            codes = unit_profiles.encode(values)
+            if np.isnan(values[:, 2]).all():
+                codes[:, 2] = unit_profiles.MISSING      # no second moment: no ε share
+            row.profiles[axis][offset:offset + units] = codes
 
 
 def prepare_step(blocks: list[Block], row: Row, optimizer, adapter: Adapter, probes: int, *, report,
-                 consecutive: bool = True) -> list[BlockJob]:
+                 consecutive: bool = True, profile_units: dict | None = None) -> list[BlockJob]:
     """Post-step, on the training thread: mark `row` heavy and prepare the statistics of every block
     copied before this step (tensors with a dense gradient); the jobs' results fill in `row`.
     report(what): how a sparse gradient is reported (it is not recorded). consecutive=False: the
     previous heavy step was not the step before, so grad_cosine and sign_flip, which compare
-    neighbouring steps, stay NaN."""
+    neighbouring steps, stay NaN. profile_units: {axis: units} of the stored profiles (None: no profiles)."""
     row.heavy = True
+    if profile_units:
+        row.profiles = {axis: np.full((units, len(unit_profiles.PROFILE_QUANTITIES)), unit_profiles.MISSING,
+                                      dtype=np.int16) for axis, units in profile_units.items() if units}
     jobs = []
     for block in blocks:
         if not block.copied:
@@ -347,8 +389,10 @@ def prepare_step(blocks: list[Block], row: Row, optimizer, adapter: Adapter, pro
         if not members:
             continue
         ks = [block.positions[r] for r in members]
-        fill = functools.partial(deliver, row, ks, [block.tensors[r].probes for r in members], probes)
-        jobs.append(prepare_block(block, members, optimizer, adapter, probes, deliver=fill))
+        fill = functools.partial(deliver, row, ks, [block.tensors[r].probes for r in members], probes,
+                                 profile_at=[block.tensors[r].profile_at for r in members])
+        jobs.append(prepare_block(block, members, optimizer, adapter, probes, deliver=fill,
+                                  profiles=bool(profile_units)))
     return jobs
 
 

@@ -43,6 +43,10 @@ class RecordOptions:
     clip: float | None = option(None, "the max norm your loop clips gradients to (clip_grad_norm_ over "
                                       "model.parameters()), so replays re-apply it; the trainer callbacks read it "
                                       "from the trainer")
+    profiles: bool = option(True, "per-unit profiles (update and gradient RMS, ε-share per output unit and input "
+                                  "feature) of every weight of 2 or more dimensions, at each heavy step")
+    unit_names: dict | None = option(None, "names of a weight's units in the views and findings: {tensor: "
+                                           "{\"rows\": [...], \"columns\": [...]}} (indices otherwise)")
     curvature_every: int | str = option(0, "sharpness every N steps (0 = off), or \"auto\": as often as 1 % of the "
                                            "training step allows (one estimate costs 50-150 steps)")
     noise_every: int | str = option(0, "gradient noise scale every N steps (0 = off), or \"auto\" (as curvature_every)")
@@ -84,6 +88,11 @@ class RecordOptions:
         if self.criterion is not None and not isinstance(self.criterion, torch.nn.Module):
             raise RecorderError(f"criterion must be an nn.Module loss (e.g. torch.nn.CrossEntropyLoss()), got "
                                 f"{type(self.criterion).__name__}; for a loss function, call rec.loss(loss) instead")
+        if not isinstance(self.profiles, bool):
+            raise RecorderError(f"Invalid profiles: {self.profiles!r}; expected True or False")
+        if self.unit_names is not None and not isinstance(self.unit_names, dict):
+            raise RecorderError(f"Invalid unit_names: {type(self.unit_names).__name__}; expected a dict "
+                                "{tensor name: {\"rows\": [...], \"columns\": [...]}}")
         if self.step_fn is not None and not callable(self.step_fn):
             raise RecorderError(f"step_fn must be callable as step_fn(model, batch) -> loss, got {self.step_fn!r}")
 
@@ -120,7 +129,12 @@ class RecordOptions:
     def from_meta(cls, meta: dict, **overrides) -> "RecordOptions":
         """The options a recording's metadata states (as_meta's inverse, where it can be: a criterion and
         a step_fn are not stored), with `overrides`."""
-        stored = {f.name: meta[f.name] for f in fields(cls) if f.name in meta and f.name not in ("criterion", "clip")}
+        stored = {f.name: meta[f.name] for f in fields(cls) if f.name in meta
+                  and f.name not in ("criterion", "clip", "profiles", "unit_names")}
+        profiles = meta.get("profiles")
+        if isinstance(profiles, dict):          # meta["profiles"] is the table (nbkit.record.setup.profile_meta)
+            stored["profiles"] = bool(profiles.get("enabled", True))
+            stored["unit_names"] = profiles.get("unit_names") or None
         if "commit_seconds" not in meta and "flush_seconds" in meta:     # recordings before the rename
             stored["commit_seconds"] = meta["flush_seconds"]
         stored["probes"] = meta["probes"]
@@ -129,8 +143,9 @@ class RecordOptions:
     def as_meta(self) -> dict:
         """The options as the recording's metadata states them (the criterion by its class name)."""
         # a function cannot be stored; resume and overwrite describe the set-up, not the run; probes is
-        # a top-level entry of the layout; clip is meta["clip"], the rule a replay re-applies
+        # a top-level entry of the layout; clip is meta["clip"], the rule a replay re-applies; profiles and
+        # unit_names are in meta["profiles"] (nbkit.record.setup.profile_meta)
         meta = {f.name: getattr(self, f.name) for f in fields(self)
-                if f.name not in ("step_fn", "resume", "overwrite", "probes", "clip")}
+                if f.name not in ("step_fn", "resume", "overwrite", "probes", "clip", "profiles", "unit_names")}
         meta["criterion"] = type(self.criterion).__name__ if self.criterion is not None else None
         return meta

@@ -108,6 +108,8 @@ class Recorder:
         self._strides = list(self._writer.meta.get("strides") or []) + [[self.step, self._stride]]   # resume: kept
         self._writer.update_meta(strides=self._strides)
         self._settings = SettingsReader(setting_columns(self._writer.meta))   # the stored keys: fixed at the start
+        table = self._writer.meta.get("profiles") or {}
+        self._profile_units = table.get("units") if table.get("enabled") else None
         self._backward = BackwardWatch(self._tensors, self.report_problem)
         self._backward.want_probes = check_loss
         try:
@@ -551,7 +553,8 @@ class Recorder:
         statistics tasks that fill them in."""
         consecutive, self._last_heavy = self._last_heavy == self.step - 1, self.step
         jobs = capture.prepare_step(self._blocks or (), row, self.optimizer, self.adapter, self.probes,
-                                    report=self.report_problem, consecutive=consecutive)
+                                    report=self.report_problem, consecutive=consecutive,
+                                    profile_units=self._profile_units)
         return [self.pacer.submit(jobs, background=self.background)] if jobs else []
 
     # --- keyframes ------------------------------------------------------------------------------

@@ -9,13 +9,14 @@ import os
 import random
 import shutil
 import sys
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 import torch
 
 from nbkit.errors import RecorderError
+from nbkit.measure import profiles
 from nbkit.measure.step_stats import EXACT_QUANTITIES, SAMPLED_QUANTITIES
 from nbkit.measure.update_rules import Adapter, step_count
 from nbkit.record.options import SAMPLE_SIZE, RecordOptions
@@ -39,6 +40,8 @@ class RecordedTensor:
     probes: int
     shape: tuple = ()            # the shape when recording started
     stopped: str | None = None   # why this tensor is no longer recorded
+    units: profiles.UnitAxes | None = None           # where its profile's units are (None: no profile)
+    profile_at: dict = field(default_factory=dict)   # axis -> (offset, units) in the stored profile arrays
 
 
 def jsonable(value):
@@ -95,6 +98,16 @@ def tensor_table(model, optimizer, probes: int, generator: torch.Generator):
                                           tuple(p.shape)))
     position = {id(t.param): order.get(id(t.param), len(order) + k) for k, t in enumerate(tensors)}
     tensors.sort(key=lambda t: position[id(t.param)])
+    owners = {id(p): module for module in model.modules() for p in module.parameters(recurse=False)}
+    offsets = dict.fromkeys(profiles.AXES, 0)
+    for t in tensors:
+        t.units = profiles.unit_axes(owners.get(id(t.param)), tuple(t.param.shape))
+        if t.units is None:
+            continue
+        for axis, dim in (("rows", t.units.rows), ("columns", t.units.columns)):
+            if dim is not None:
+                t.profile_at[axis] = (offsets[axis], t.param.shape[dim])
+                offsets[axis] += t.param.shape[dim]
     orphans = [n for n, p in model.named_parameters() if p.requires_grad and id(p) not in in_optimizer]
     frozen = [n for n, p in model.named_parameters() if not p.requires_grad and id(p) not in in_optimizer]
     return tensors, orphans, frozen
@@ -135,6 +148,7 @@ def recording_meta(model, optimizer, adapter: Adapter, tensors: list[RecordedTen
         **({"clip": {"max_norm": float(options.clip), "over": "model", "by": "nbkit.record(clip=...)"}}
            if options.clip is not None else {}),
         settings=[c.name for c in columns], settings_not_replayed=not_replayed,
+        profiles=profile_meta(tensors, options),
         created=datetime.datetime.now(datetime.timezone.utc).isoformat(),
         torch_version=torch.__version__, numpy_version=np.__version__, python_version=sys.version.split()[0],
         threads=torch.get_num_threads(), interop_threads=torch.get_num_interop_threads(), pid=os.getpid(),
@@ -142,6 +156,47 @@ def recording_meta(model, optimizer, adapter: Adapter, tensors: list[RecordedTen
                     "exact": EXACT_QUANTITIES, "sampled": SAMPLED_QUANTITIES,
                     "note": f"sampled quantities use a fixed seeded sample of {SAMPLE_SIZE} coordinates per "
                             "tensor (all coordinates of smaller tensors)"})
+
+
+def profile_meta(tensors: list[RecordedTensor], options: RecordOptions) -> dict:
+    """meta["profiles"]: the stored quantities and codes, each profiled tensor's units (offset and count
+    per axis, and how its axes were found), why the others have none, and the checked unit names."""
+    by_name = {t.name: t for t in tensors}
+    names = {}
+    for tensor, axes in (options.unit_names or {}).items():
+        t = by_name.get(tensor)
+        if t is None:
+            raise RecorderError(f"unit_names names the tensor {tensor!r}, which is not recorded; recorded "
+                                f"weights with a profile: {[t.name for t in tensors if t.profile_at][:20]}")
+        if not t.profile_at:
+            raise RecorderError(f"unit_names names {tensor!r}, which has no profile ({len(t.param.shape)}-D: only "
+                                "weights of 2 or more dimensions have units)")
+        if not isinstance(axes, dict) or not set(axes) <= set(profiles.AXES):
+            raise RecorderError(f"unit_names[{tensor!r}] must be a dict with the keys \"rows\" and/or \"columns\", "
+                                f"got {axes!r}")
+        names[tensor] = {}
+        for axis, labels in axes.items():
+            if axis not in t.profile_at:
+                raise RecorderError(f"unit_names[{tensor!r}] names {axis}, but {tensor!r} has no {axis} "
+                                    f"({t.units.how})")
+            labels = [str(x) for x in labels]
+            units = t.profile_at[axis][1]
+            if len(labels) != units:
+                raise RecorderError(f"unit_names[{tensor!r}][{axis!r}] has {len(labels)} names, but {tensor!r} "
+                                    f"has {units} {axis} (shape {tuple(t.param.shape)}); give one name per unit")
+            names[tensor][axis] = labels
+    if not options.profiles:
+        return {"enabled": False, "tensors": {}, "unit_names": names}
+    return {
+        "enabled": True, "quantities": list(profiles.PROFILE_QUANTITIES), "log2_scale": profiles.LOG2_SCALE,
+        "codes": {"missing": profiles.MISSING, "zero": profiles.ZERO, "nan": profiles.NAN,
+                  "infinite": profiles.INFINITE},
+        "units": {axis: sum(t.profile_at.get(axis, (0, 0))[1] for t in tensors) for axis in profiles.AXES},
+        "tensors": {t.name: {**{axis: list(at) for axis, at in t.profile_at.items()}, "how": t.units.how}
+                    for t in tensors if t.profile_at},
+        "without": {t.name: f"{len(t.param.shape)}-D: no units" for t in tensors if not t.profile_at},
+        "unit_names": names,
+    }
 
 
 def criterion_spec(criterion) -> dict | None:

@@ -109,6 +109,11 @@ class RowArrays:
             array = a[layout.probe_array(name)]
             missing = np.full(array.shape[1:], np.nan, dtype=np.float32)
             array[start:stop] = np.stack([r.probes.get(name, missing) for r in rows])
+        for axis in ("rows", "columns"):
+            name = layout.profile_array(axis)
+            if name in a:
+                missing = np.full(a[name].shape[1:], layout.PROFILE_MISSING, dtype=np.int16)
+                a[name][start:stop] = np.stack([(r.profiles or {}).get(axis, missing) for r in rows])
         self._write_overview(start, summaries, [r.loss for r in rows])
         self.written = stop
         return created

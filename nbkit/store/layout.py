@@ -17,6 +17,8 @@ all take them from here. A recording directory holds
     overview/<quantity>   (blocks, tensors, 2) min/max per OVERVIEW_BLOCK steps; overview/loss (blocks, 2)
     hist/<grad|update|gain>   (steps, tensors, bins + 2) uint32 (DETAIL_CHUNK rows a chunk)
     probe/<field>         (steps, tensors, probes) float32; probe_index (tensors, probes) int64
+    profile/<rows|columns>  (steps, units, 3) int16 log2 codes of every profiled weight's units, each
+                          tensor at its offset (meta["profiles"]; nbkit.measure.profiles)
     local/step, local/values  per-rank local gradients under torch.distributed (optional)
 """
 from __future__ import annotations
@@ -26,6 +28,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from nbkit.measure.fingerprint import FINGERPRINT_WIDTH
+from nbkit.measure.profiles import MISSING as PROFILE_MISSING
 from nbkit.measure.quantities import HISTOGRAM_BINS, HISTOGRAM_LOW, QUANTITIES
 from nbkit.version import __version__
 
@@ -73,6 +76,10 @@ def histogram_array(quantity: str) -> str:
 
 def probe_array(probe_field: str) -> str:
     return f"probe/{probe_field}"
+
+
+def profile_array(axis: str) -> str:
+    return f"profile/{axis}"
 
 
 @dataclass(frozen=True)
@@ -133,6 +140,11 @@ def row_arrays(meta: dict, groups: int) -> dict[str, ArraySpec]:
         specs[histogram_array(h)] = ArraySpec((T, meta["histogram_bins"] + 2), "uint32", DETAIL_CHUNK, 0)
     for name in meta.get("probe_fields", []):
         specs[probe_array(name)] = ArraySpec((T, P), "float32", DETAIL_CHUNK, np.nan)
+    table = meta.get("profiles") or {}
+    for axis, units in (table.get("units") or {}).items():
+        if table.get("enabled") and units:
+            specs[profile_array(axis)] = ArraySpec((units, len(table["quantities"])), "int16", DETAIL_CHUNK,
+                                                   PROFILE_MISSING)
     return specs
 
 
@@ -183,6 +195,7 @@ class Row:
     clip_factor: float = float("nan")   # post-clip ÷ pre-clip gradient norm (1: not clipped)
     rng_digest: float = float("nan")    # CRC32 of the CPU RNG state at the step's first training forward
     tensor_grad_norm: np.ndarray | None = None   # (T,) float32 pre-clip gradient norm per tensor (NaN: none)
+    profiles: dict | None = None        # axis -> (units, 3) int16 log2 codes (nbkit.measure.profiles); None: light
 
     @classmethod
     def light(cls, step: int, loss: float, lr: np.ndarray, fingerprint: np.ndarray, tensors: int,
@@ -197,7 +210,9 @@ class Row:
 
     def nbytes(self) -> int:
         settings = self.settings.nbytes if self.settings is not None else 0
-        return 256 + settings + self.quantities.nbytes + self.histograms.nbytes + sum(v.nbytes for v in self.probes.values())
+        profiles = sum(v.nbytes for v in (self.profiles or {}).values())
+        return (256 + settings + profiles + self.quantities.nbytes + self.histograms.nbytes
+                + sum(v.nbytes for v in self.probes.values()))
 
 
 def new_meta(*, model_class: str, optimizer: dict, gain_applicable: bool, param_groups: list[dict],
