@@ -40,6 +40,13 @@ def run(args) -> int:
               + (f" (stride {strides})" if strides else "")
               + (f"; the every-step work alone is {100 * budget['floor']:.1f} % of the step (the floor)"
                  if budget.get("floor") else ""))
+        table = meta.get("profiles") or {}
+        if table.get("enabled"):
+            units = table.get("units") or {}
+            print(f"  profiles of {len(table.get('tensors') or {})} weights at each heavy step: {units.get('rows', 0)} "
+                  f"output units, {units.get('columns', 0)} input features (run.profile)")
+        elif table:
+            print("  no profiles (profiles=False)")
         without_loss = int(np.isnan(recording.loss).sum())
         if without_loss:
             print(f"  {without_loss} of {len(steps)} steps without a loss (NaN: no criterion, returned loss, "

@@ -260,6 +260,9 @@ def estimate_recording_bytes(meta: dict, expected_steps: int, *, state_copies: i
     light = 8 + 8 + 8 * G * (1 + len(meta.get("settings", []))) + 1 + 2 * FINGERPRINT_WIDTH * 8
     fields = 2 + state_copies                              # grad, update, and the moments kept as probes
     heavy = 4 * T * (Q + 3 * bins + fields * P)
+    table = meta.get("profiles") or {}
+    if table.get("enabled"):                               # int16 codes per unit and stored quantity
+        heavy += 2 * len(table.get("quantities") or ()) * sum((table.get("units") or {}).values())
     every = meta.get("every", 1)
     every = every if isinstance(every, int) and every >= 1 else 1      # "auto": every step, the upper bound
     row_bytes = expected_steps * light + -(-expected_steps // every) * heavy
