@@ -64,8 +64,9 @@ class Adapter:
     gain_applicable: bool = True    # False where post-step gradients do not belong to the update
     notes: str = ""
     before_keys: tuple = ()         # state keys the factors need from before the step (sampled pre-step)
-    eps_mask: object = None         # callable(StepContext) -> bool tensor: ε outweighs the rest of the
-    #                                 denominator (the factors' eps_dominated), on any shape (profiles)
+    eps_threshold: object = None    # callable(StepContext) -> (state tensor, float): ε outweighs the rest of
+    #   the denominator (the factors' eps_dominated) where the tensor is below the float; any shape
+    #   (profiles compare whole tensors in one pass: squared forms of the same conditions, no square roots)
 
     def probe_field(self, state_key: str) -> str:
         """Name of a state tensor in the probes: first_moment / second_moment, or its own name."""
@@ -126,14 +127,19 @@ def _adam(ctx: StepContext) -> Factors:
     return Factors(momentum, scale, _decoupled_residual(ctx, momentum, scale), eps > root_v_hat)
 
 
+def _adam_second(ctx: StepContext) -> torch.Tensor:
+    return ctx.after["max_exp_avg_sq"] if ctx.hyper("amsgrad", False) else ctx.after["exp_avg_sq"]
+
+
 def _adam_root(ctx: StepContext) -> torch.Tensor:
     _, beta2 = ctx.hyper("betas")
-    second = ctx.after["max_exp_avg_sq"] if ctx.hyper("amsgrad", False) else ctx.after["exp_avg_sq"]
-    return torch.sqrt(second) / torch.sqrt(1 - beta2 ** ctx.step)
+    return torch.sqrt(_adam_second(ctx)) / torch.sqrt(1 - beta2 ** ctx.step)
 
 
-def _adam_eps(ctx: StepContext) -> torch.Tensor:
-    return ctx.hyper("eps") > _adam_root(ctx)
+def _adam_eps(ctx: StepContext):
+    # ε > √second / √(1 − β2^t)  ⇔  second < ε²·(1 − β2^t)
+    _, beta2 = ctx.hyper("betas")
+    return _adam_second(ctx), ctx.hyper("eps") ** 2 * float(1 - beta2 ** ctx.step)
 
 
 # --- NAdam: Dozat 2016; torch.optim.NAdam page. μ_t = β1(1 − ½·0.96^(tψ)), Π_t = ∏μ_i;
@@ -157,8 +163,9 @@ def _nadam_root(ctx: StepContext) -> torch.Tensor:
     return torch.sqrt(ctx.after["exp_avg_sq"] / (1 - beta2 ** ctx.step))
 
 
-def _nadam_eps(ctx: StepContext) -> torch.Tensor:
-    return ctx.hyper("eps") > _nadam_root(ctx)
+def _nadam_eps(ctx: StepContext):
+    _, beta2 = ctx.hyper("betas")                  # ε > √(v / (1 − β2^t))  ⇔  v < ε²·(1 − β2^t)
+    return ctx.after["exp_avg_sq"], ctx.hyper("eps") ** 2 * float(1 - beta2 ** ctx.step)
 
 
 # --- RAdam: Liu et al. 2020; torch.optim.RAdam page. ρ_t = ρ∞ − 2tβ2^t/(1−β2^t); when ρ_t > 5:
@@ -186,9 +193,9 @@ def _radam_rectification(ctx: StepContext):
     return rho_inf, rho_t, rho_t > 5
 
 
-def _radam_eps(ctx: StepContext) -> torch.Tensor:
-    rectified = _radam_rectification(ctx)[2]
-    return torch.where(rectified, ctx.hyper("eps") > torch.sqrt(ctx.after["exp_avg_sq"]), False)
+def _radam_eps(ctx: StepContext):
+    rectified = bool(_radam_rectification(ctx)[2])   # unrectified steps divide by nothing: no ε anywhere
+    return ctx.after["exp_avg_sq"], ctx.hyper("eps") ** 2 if rectified else 0.0
 
 
 # --- Adamax: Kingma & Ba 2015, section 7.1; torch.optim.Adamax page.
@@ -202,9 +209,8 @@ def _adamax(ctx: StepContext) -> Factors:
     return Factors(momentum, 1 / u, _ones(momentum), eps > u - eps)
 
 
-def _adamax_eps(ctx: StepContext) -> torch.Tensor:
-    eps = ctx.hyper("eps")
-    return eps > ctx.after["exp_inf"] - eps
+def _adamax_eps(ctx: StepContext):
+    return ctx.after["exp_inf"], 2 * ctx.hyper("eps")     # ε > u − ε  ⇔  u < 2ε
 
 
 # --- RMSprop: Hinton's lecture 6e; torch.optim.RMSprop page. v = αv + (1−α)g'²; centered: ḡ = αḡ +
@@ -221,15 +227,17 @@ def _rmsprop(ctx: StepContext) -> Factors:
     return Factors(_ones(g), scale, _divide(gd, g) if gd is not g else _ones(g), eps > root)
 
 
-def _rmsprop_root(ctx: StepContext) -> torch.Tensor:
+def _rmsprop_v(ctx: StepContext) -> torch.Tensor:
     v = ctx.after["square_avg"]
-    if ctx.hyper("centered", False):
-        v = v - ctx.after["grad_avg"] ** 2
-    return torch.sqrt(v.clamp(min=0))
+    return v - ctx.after["grad_avg"] ** 2 if ctx.hyper("centered", False) else v
 
 
-def _rmsprop_eps(ctx: StepContext) -> torch.Tensor:
-    return ctx.hyper("eps") > _rmsprop_root(ctx)
+def _rmsprop_root(ctx: StepContext) -> torch.Tensor:
+    return torch.sqrt(_rmsprop_v(ctx).clamp(min=0))
+
+
+def _rmsprop_eps(ctx: StepContext):
+    return _rmsprop_v(ctx), ctx.hyper("eps") ** 2         # ε > √max(v, 0)  ⇔  v < ε²
 
 
 # --- Adagrad: Duchi et al. 2011; torch.optim.Adagrad page. clr = lr/(1 + (t−1)·lr_decay);
@@ -244,12 +252,12 @@ def _adagrad(ctx: StepContext) -> Factors:
     return Factors(_ones(g), 1 / (root + eps), residual, eps > root)
 
 
-def _adagrad_eps(ctx: StepContext) -> torch.Tensor:
-    return ctx.hyper("eps") > torch.sqrt(ctx.after["sum"])
+def _adagrad_eps(ctx: StepContext):
+    return ctx.after["sum"], ctx.hyper("eps") ** 2
 
 
-def _adadelta_eps(ctx: StepContext) -> torch.Tensor:
-    return ctx.hyper("eps") > ctx.after["square_avg"]
+def _adadelta_eps(ctx: StepContext):
+    return ctx.after["square_avg"], ctx.hyper("eps")
 
 
 # --- Adadelta: Zeiler 2012; torch.optim.Adadelta page. v = ρv + (1−ρ)g'²;
@@ -270,15 +278,15 @@ def _not_applicable(ctx: StepContext):
 
 ADAPTERS: dict[str, Adapter] = {
     "SGD": Adapter("SGD", first_moment="momentum_buffer", factors=_sgd),
-    "Adam": Adapter("Adam", "exp_avg", "exp_avg_sq", _adam, eps_mask=_adam_eps),
-    "AdamW": Adapter("AdamW", "exp_avg", "exp_avg_sq", _adam, eps_mask=_adam_eps),
-    "NAdam": Adapter("NAdam", "exp_avg", "exp_avg_sq", _nadam, eps_mask=_nadam_eps),
-    "RAdam": Adapter("RAdam", "exp_avg", "exp_avg_sq", _radam, eps_mask=_radam_eps),
-    "Adamax": Adapter("Adamax", "exp_avg", None, _adamax, eps_mask=_adamax_eps),
-    "RMSprop": Adapter("RMSprop", None, "square_avg", _rmsprop, eps_mask=_rmsprop_eps),
-    "Adagrad": Adapter("Adagrad", None, "sum", _adagrad, eps_mask=_adagrad_eps),
+    "Adam": Adapter("Adam", "exp_avg", "exp_avg_sq", _adam, eps_threshold=_adam_eps),
+    "AdamW": Adapter("AdamW", "exp_avg", "exp_avg_sq", _adam, eps_threshold=_adam_eps),
+    "NAdam": Adapter("NAdam", "exp_avg", "exp_avg_sq", _nadam, eps_threshold=_nadam_eps),
+    "RAdam": Adapter("RAdam", "exp_avg", "exp_avg_sq", _radam, eps_threshold=_radam_eps),
+    "Adamax": Adapter("Adamax", "exp_avg", None, _adamax, eps_threshold=_adamax_eps),
+    "RMSprop": Adapter("RMSprop", None, "square_avg", _rmsprop, eps_threshold=_rmsprop_eps),
+    "Adagrad": Adapter("Adagrad", None, "sum", _adagrad, eps_threshold=_adagrad_eps),
     "Adadelta": Adapter("Adadelta", None, "square_avg", _adadelta, before_keys=("acc_delta",),
-                        eps_mask=_adadelta_eps),
+                        eps_threshold=_adadelta_eps),
     "SparseAdam": Adapter("SparseAdam", "exp_avg", "exp_avg_sq", _not_applicable,
                           notes="sparse gradients are skipped; moments kept as probes where dense"),
     "Muon": Adapter("Muon", "momentum_buffer", None, _not_applicable,

@@ -66,6 +66,7 @@ class Block:
         self.previous_sample = None                  # (T, S) sampled previous gradient
         self.state_before: dict = {}                 # key -> (T, S) sampled state before the step
         self.copied = False
+        self.scratch = None                          # the profiles' work buffer (statistics thread only)
 
 
 PADDING_LIMIT = 16384   # padded coordinates a block may carry before its small tensors get their own
@@ -299,27 +300,35 @@ def block_statistics(job: BlockJob) -> BlockStatistics:
 
 def _profiles(job: BlockJob) -> dict:
     """The exact per-unit profiles of the job's tensors that have units, from the block's −Δθ and
-    gradient copies and the optimizer state (for the ε mask: the adapter's eps_mask on whole tensors)."""
+    gradient copies and the optimizer state (for the ε share: the adapter's eps_threshold on whole tensors)."""
     out = {}
     for i, r in enumerate(job.members):
         t = job.block.tensors[r]
         if not t.profile_at:
             continue
-        eps_mask = None
-        if job.adapter.eps_mask is not None:
+        eps = None
+        if job.adapter.eps_threshold is not None:
             state, scalars = state_tensors(job.optimizer, job.params[i])
             if state:
                 step = torch.tensor(scalars.get("step", math.nan), dtype=torch.float64)
                 context = StepContext(grad=job.current[i], theta=None, update=None, before={}, after=state,
                                       step=step, group=job.group, lr=float(job.group["lr"]), scalars=scalars)
                 try:
-                    eps_mask = job.adapter.eps_mask(context)
+                    eps = job.adapter.eps_threshold(context)
                 except KeyError:            # a state key this configuration does not keep: no ε share
-                    eps_mask = None
-        dims = {"rows": t.units.rows, "columns": t.units.columns}
-        out[i] = {axis: unit_profiles.unit_profile(job.minus_update[i], job.current[i], eps_mask, dims[axis])
-                  for axis in t.profile_at}
+                    eps = None
+        dims = {axis: {"rows": t.units.rows, "columns": t.units.columns}[axis] for axis in t.profile_at}
+        out[i] = unit_profiles.unit_profiles(job.minus_update[i], job.current[i], eps, dims,
+                                             _scratch(job.block, job.current[i]))
     return out
+
+
+def _scratch(block: Block, grad: torch.Tensor) -> torch.Tensor:
+    """The block's profile buffer, grown to the largest tensor seen (kept: a fresh one costs page faults)."""
+    work = torch.float64 if grad.dtype == torch.float64 else torch.float32
+    if block.scratch is None or block.scratch.numel() < grad.numel() or block.scratch.dtype != work:
+        block.scratch = torch.empty(max(t.param.numel() for t in block.tensors), dtype=work)
+    return block.scratch
 
 
 def deliver(row: Row, ks: list, probe_counts: list, n_probes: int, results: BlockStatistics,
