@@ -1,6 +1,7 @@
 """nbkit: record a PyTorch training run, scrub through it, replay it with another optimizer.
 
-This module only re-exports the public API (DESIGN.md §3); DEVELOPERS.md maps where each part lives.
+This module only re-exports the public API (the README's Quick start lists it); DEVELOPERS.md in the
+source repository maps where each part lives.
 The views (ipywidgets, matplotlib, ipympl) and the trainer callbacks (transformers, lightning: optional
 extras) are re-exported on first use, so that a training script, a replay worker or a DDP rank that
 never draws does not pay for importing them.

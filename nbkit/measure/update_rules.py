@@ -1,7 +1,7 @@
 """Update rules of the torch.optim optimizers: which state tensor is which moment, and how each update
 splits into factors.
 
-For every coordinate, gain = Δθ / (-lr·g) = momentum factor × scale factor × residual (DESIGN.md §2).
+For every coordinate, gain = Δθ / (-lr·g) = momentum factor × scale factor × residual (README: Quantities).
 Each adapter below follows the update rule of the named torch.optim page (PyTorch 2.13 documentation,
 "Algorithm" pseudo-code of each optimizer, and its source in torch/optim/<name>.py) and returns the
 three factors from the state *after* the step, on sampled coordinates. All inputs are float64
@@ -213,7 +213,7 @@ def _adamax_eps(ctx: StepContext):
     return ctx.after["exp_inf"], 2 * ctx.hyper("eps")     # ε > u − ε  ⇔  u < 2ε
 
 
-# --- RMSprop: Hinton's lecture 6e; torch.optim.RMSprop page. v = αv + (1−α)g'²; centered: ḡ = αḡ +
+# --- RMSprop: torch.optim.RMSprop page (PyTorch 2.13 documentation, its Algorithm). v = αv + (1−α)g'²; centered: ḡ = αḡ +
 # (1−α)g', a = √(v − ḡ²) + ε, else a = √v + ε. With momentum μ: b = μb + g'/a, θ ← θ − lr·b;
 # else θ ← θ − lr·g'/a. Scale factor 1/a; momentum factor b·a/g (1 without momentum).
 def _rmsprop(ctx: StepContext) -> Factors:

@@ -1,5 +1,5 @@
 """What one training step fed the model: its micro-batches (what a replay runs again), its loss by the
-precedence rule of DESIGN.md §3, the scale each observed loss was back-propagated with, the random and
+precedence rule of `StepInputs` below, the scale each observed loss was back-propagated with, the random and
 autocast state at its first training forward, and the fingerprints a replay checks against."""
 from __future__ import annotations
 
@@ -75,7 +75,7 @@ class MicroBatch:
         return None
 
     def as_kept(self) -> dict:
-        """{"args", "kwargs", "targets"} as the training step received them (DESIGN.md §2 "kept batches")."""
+        """{"args", "kwargs", "targets"} as the training step received them (the README: Kept batches and the trained loss)."""
         if self.call is not None:
             return {"args": tuple(self.call[0]), "kwargs": dict(self.call[1]), "targets": ()}
         args, kwargs = self.forward if self.forward is not None else ((), {})

@@ -1,4 +1,5 @@
-"""The trained loss, rebuilt from a kept step and verified by its gradient (DESIGN.md §2 "trained loss").
+"""The trained loss, rebuilt from a kept step and verified by its gradient (the loss the training step actually
+back-propagated, glue code included).
 
 A value check is blind: a loss divided by the accumulation count, scaled by num_items_in_batch, or with a
 term added after the criterion matches by value but not by gradient. So the recorder keeps, at a check

@@ -18,7 +18,7 @@ from nbkit.store.layout import OVERVIEW_BLOCK, Row
 
 
 def codecs():
-    """Zstd for size, CRC32C so a damaged chunk is detected when read (DESIGN.md §5)."""
+    """Zstd for size, CRC32C so a damaged chunk is detected when read (zarr's crc32c codec, RFC 3720 §B.4)."""
     return [ZstdCodec(level=1), Crc32cCodec()]
 
 

@@ -262,7 +262,7 @@ class RecordingWriter:
 
     def _drop_older_windows(self, step: int, keyframes: list[int]) -> None:
         """Over the budget: delete the oldest kept steps up to the next keyframe after them, so what
-        stays still starts at a keyframe (DESIGN.md §5), while older windows exist. The window being
+        stays still starts at a keyframe (a replay starts there), while older windows exist. The window being
         written (from the last keyframe at or before `step`) is never cut: when it alone fills the
         budget, no step is kept until the next keyframe starts a new one."""
         current = max((k for k in keyframes if k <= step), default=step)
