@@ -144,13 +144,17 @@ class JupyterLab:
         raise TimeoutError(f"JupyterLab did not answer within {self.server_timeout} s")
 
     # --- pages ----------------------------------------------------------------------------------
-    def open(self, notebook: str, *, timeout=120.0):
-        """Open `notebook` (a name in the copied folder) and wait until its kernel is connected and idle."""
+    def open(self, notebook: str, *, timeout=120.0, front_end="lab"):
+        """Open `notebook` (a name in the copied folder) and wait until its kernel is connected and idle.
+        front_end="notebook": in Notebook 7 (the `notebook` package, served by the same Jupyter server
+        as a server extension) instead of JupyterLab."""
         page = self._browser.new_page(viewport={"width": 1500, "height": 1100})
         page.route("**/*", lambda route: route.continue_() if route.request.url.startswith(self.base)
                    or route.request.url.startswith("data:") or route.request.url.startswith("blob:")
                    else route.abort())
-        page.goto(f"{self.base}/lab/tree/{notebook}?token={self.token}&reset", wait_until="domcontentloaded")
+        where = f"lab/tree/{notebook}" if front_end == "lab" else f"notebooks/{notebook}"
+        page.goto(f"{self.base}/{where}?token={self.token}" + ("&reset" if front_end == "lab" else ""),
+                  wait_until="domcontentloaded")
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
             kernel = self.kernel_of(notebook)

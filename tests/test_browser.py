@@ -129,3 +129,27 @@ def test_explorer_scrubs_and_follows_a_live_run_in_jupyterlab(live_notebook):
         assert busy >= 3, "the training loop was not observed running"
         assert len(seen_steps) >= 2, f"the step shown did not change while the loop ran: {seen_steps}"
         assert len(seen_pixels - {None}) >= 2, "the timeline did not redraw while the loop ran"
+
+
+def test_tour_explorer_reacts_in_notebook_7():
+    """The same tour in Notebook 7 (the `notebook` package's front end, another widget manager build
+    than JupyterLab's): the explorer appears and a drag on its timeline moves the cursor."""
+    why = browser_available()
+    if why:
+        pytest.skip(why)
+    with JupyterLab([ROOT / "notebooks" / "01-tour.ipynb"], OUTPUT / "notebook7") as lab:
+        page = lab.open("01-tour.ipynb", front_end="notebook")
+        assert "/notebooks/" in page.url
+        lab.run_all(page)
+        lab.wait_for(page, f"{EXPLORER} .nbkit-coordinates canvas", timeout=240)
+        lab.wait_idle(page, "01-tour.ipynb")
+        page.locator(f"{EXPLORER} .nbkit-timeline").first.scroll_into_view_if_needed()
+        before = lab.stable_digest(page, ".nbkit-layer-map")
+        first = _step_shown(page)
+        lab.screenshot(page, "01-opened")
+        lab.drag(page, ".nbkit-timeline canvas", 0.25, 0.7)
+        after = lab.stable_digest(page, ".nbkit-layer-map")
+        dragged = _step_shown(page)
+        lab.screenshot(page, "02-dragged")
+        assert before and after and after != before, "the layer map did not redraw after the drag"
+        assert dragged is not None and dragged != first and _readout(page) == dragged
