@@ -49,7 +49,8 @@ def test_scaled_columns_are_the_most_accelerated_at_the_cursor(run):
     top = int(found.accelerated[0][0].split()[1])
     assert found.accelerated[0][1] == pytest.approx(gain[top] / median)
     text = profile.extremes_text(found, "columns")
-    assert "most accelerated: pixel 2" in text and "step 5" in text
+    assert "most accelerated (3 above ×2): pixel 2" in text and "step 5" in text
+    assert found.above_double == 3 and found.defined == 32
 
 
 def test_image_is_log2_of_gain_over_median_with_one_row_per_unit(run):

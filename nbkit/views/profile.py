@@ -13,10 +13,12 @@ class `ProfileView`, by the explorer and by the report; tests call them without 
 """
 from __future__ import annotations
 
+import textwrap
 from dataclasses import dataclass
 
 import numpy as np
 from matplotlib.colors import LinearSegmentedColormap, Normalize
+from matplotlib.ticker import MaxNLocator
 
 from nbkit.errors import RecordingError
 from nbkit.store.layout import DETAIL_CHUNK
@@ -57,6 +59,7 @@ class ProfileImage:
     names: list[str]
     how: str
     why: str = ""
+    extremes: dict = None         # recording row -> UnitExtremes at each heavy row (full resolution)
 
 
 @dataclass(frozen=True)
@@ -67,6 +70,9 @@ class UnitExtremes:
     damped: list[tuple[str, float]]
     accelerated: list[tuple[str, float]]
     why: str = ""
+    below_half: int = 0           # units with gain ÷ median < ½ (damped) at the step
+    above_double: int = 0         # units with gain ÷ median > 2 (accelerated)
+    defined: int = 0              # units with a defined gain at the step
 
 
 def gain_ratio(gain: np.ndarray) -> np.ndarray:
@@ -117,14 +123,17 @@ def select_profile(run, tensor: str, axis: str, *, pixel_rows: int = PIXEL_ROWS)
     if len(heavy) == 0:
         return ProfileImage(**{**empty.__dict__, "names": names, "units": len(names),
                                "why": "no heavy step recorded yet: profiles are kept at heavy steps"})
-    pieces, starts = [], np.zeros(0, np.int64)
+    pieces, starts, extremes = [], np.zeros(0, np.int64), {}
     for first in range(0, len(steps), DETAIL_CHUNK):
         rows = heavy[(heavy >= first) & (heavy < first + DETAIL_CHUNK)]
         if len(rows) == 0:
             continue
         gain = run.profile(tensor, "gain", axis, rows=slice(first, first + DETAIL_CHUNK))[rows - first]
+        ratio = gain_ratio(gain)                                       # (rows, units)
+        # the cursor's lists, computed in the same pass: a cursor move reads nothing
+        extremes.update(zip(rows.tolist(), unit_extremes(ratio, names, steps[rows])))
         with np.errstate(divide="ignore", invalid="ignore"):
-            ratio = np.log2(gain_ratio(gain))
+            ratio = np.log2(ratio)
         reduced, starts = block_extremes(ratio, pixel_rows)
         pieces.append(reduced)
     values = np.concatenate(pieces)                                   # (heavy steps, blocks)
@@ -132,25 +141,49 @@ def select_profile(run, tensor: str, axis: str, *, pixel_rows: int = PIXEL_ROWS)
     size = int(starts[1] - starts[0]) if len(starts) > 1 else 1
     how = "one row per unit" if size == 1 else \
         f"{size} units per image row, each row showing its unit furthest from ×1"
-    return ProfileImage(tensor, axis, columns.T, column_steps, starts, len(names), names, how)
+    return ProfileImage(tensor, axis, columns.T, column_steps, starts, len(names), names, how, extremes=extremes)
+
+
+def unit_extremes(ratio: np.ndarray, names: list[str], steps, *, count: int = LISTED) -> list[UnitExtremes]:
+    """Per step (row of the (steps, units) gain ratios `ratio`): the `count` most damped units (ratio < 1,
+    lowest first) and most accelerated (> 1, highest first), by name. Vectorised over the steps: a
+    chunk of a 50 000-unit embedding costs one partition, not one per step."""
+    ratio = np.atleast_2d(ratio)
+    units = ratio.shape[1]
+    defined = np.isfinite(ratio) | (ratio == np.inf)
+    k = min(count, units)
+    low_key = np.where(defined, ratio, np.inf)                  # undefined units sort last
+    high_key = np.where(defined, -ratio, np.inf)
+    if units > 4 * k:
+        low = np.argpartition(low_key, k - 1, axis=1)[:, :k]
+        high = np.argpartition(high_key, k - 1, axis=1)[:, :k]
+    else:
+        low = high = np.broadcast_to(np.arange(units), ratio.shape)
+    low = np.take_along_axis(low, np.argsort(np.take_along_axis(low_key, low, 1), axis=1, kind="stable"), 1)[:, :k]
+    high = np.take_along_axis(high, np.argsort(np.take_along_axis(high_key, high, 1), axis=1, kind="stable"), 1)[:, :k]
+    with np.errstate(invalid="ignore"):
+        below, above = (ratio < 0.5).sum(axis=1), (ratio > 2).sum(axis=1)
+    out = []
+    for r, step in enumerate(np.atleast_1d(steps)):
+        step = int(step)
+        if not defined[r].any():
+            out.append(UnitExtremes(step, [], [], f"no unit has a defined gain at step {step}"))
+            continue
+        out.append(UnitExtremes(step, [(names[u], float(ratio[r, u])) for u in low[r] if ratio[r, u] < 1],
+                                [(names[u], float(ratio[r, u])) for u in high[r] if ratio[r, u] > 1],
+                                below_half=int(below[r]), above_double=int(above[r]), defined=int(defined[r].sum())))
+    return out
 
 
 def extremes_at(run, tensor: str, axis: str, row: int | None, *, count: int = LISTED) -> UnitExtremes:
-    """The `count` most damped (gain ÷ median < 1, lowest first) and most accelerated (> 1, highest first)
-    units of `tensor` along `axis` at recording row `row` (a heavy row; None: no heavy row yet)."""
+    """unit_extremes of `tensor` along `axis` at recording row `row` (a heavy row; None: none yet),
+    read from the recording."""
     step = int(run.steps[row]) if row is not None else -1
     why = why_no_profile(run, tensor, axis)
     if why or row is None:
         return UnitExtremes(step, [], [], why or "no heavy step at or before the cursor")
-    ratio = gain_ratio(run.profile(tensor, "gain", axis, rows=slice(row, row + 1)))[0]      # (units,)
-    defined = np.flatnonzero(np.isfinite(ratio) | (ratio == np.inf))
-    if defined.size == 0:
-        return UnitExtremes(step, [], [], f"no unit has a defined gain at step {step}")
-    names = run.unit_names(tensor, axis)
-    order = defined[np.argsort(ratio[defined], kind="stable")]
-    low = [(names[u], float(ratio[u])) for u in order[:count] if ratio[u] < 1]
-    high = [(names[u], float(ratio[u])) for u in order[::-1][:count] if ratio[u] > 1]
-    return UnitExtremes(step, low, high)
+    ratio = gain_ratio(run.profile(tensor, "gain", axis, rows=slice(row, row + 1)))           # (1, units)
+    return unit_extremes(ratio, run.unit_names(tensor, axis), [step], count=count)[0]
 
 
 def why_no_profile(run, tensor: str, axis: str) -> str:
@@ -179,10 +212,12 @@ def extremes_text(extremes: UnitExtremes, axis: str) -> str:
     """One line per side, as plain text (the panel's page text and the PNG footer)."""
     if extremes.why:
         return f"{AXIS_WORDS[axis]}: {extremes.why}"
-    def side(pairs):
-        return ", ".join(f"{name} {ratio_words(r)}" for name, r in pairs) or "none"
-    return (f"{AXIS_WORDS[axis]} at step {extremes.step}, unit gain ÷ median — most damped: "
-            f"{side(extremes.damped)}; most accelerated: {side(extremes.accelerated)}")
+    def side(pairs):       # a default name is the unit's index: "#3" reads as a unit, "3" as a number
+        return ", ".join(f"{'#' + name if name.isdigit() else name} {ratio_words(r)}" for name, r in pairs) or "none"
+    e = extremes
+    return (f"{AXIS_WORDS[axis]} at step {e.step}, unit gain ÷ median — most damped ({e.below_half} of "
+            f"{e.defined} below ×½): {side(e.damped)}; most accelerated ({e.above_double} above ×2): "
+            f"{side(e.accelerated)}")
 
 
 def _octave_label(octave: int) -> str:
@@ -200,7 +235,7 @@ class ProfileView:
         self.run = run
         self.figure, self.canvas = make_canvas(WIDTH, HEIGHT, css_class="nbkit-profile")
         grid = self.figure.add_gridspec(2, 2, width_ratios=(1, 0.03), hspace=0.32, wspace=0.04,
-                                        left=0.2, right=0.86, top=0.9, bottom=0.09)
+                                        left=0.2, right=0.86, top=0.88, bottom=0.09)
         self.axes = {"rows": self.figure.add_subplot(grid[0, 0]), "columns": self.figure.add_subplot(grid[1, 0])}
         self.axes["columns"].sharex(self.axes["rows"])
         self.colour_axes = self.figure.add_subplot(grid[:, 1])
@@ -245,9 +280,13 @@ class ProfileView:
             image = self.images[axis]
             shown = picked.why == "" and picked.values.size > 0
             image.set_visible(shown)
-            self.notes[axis].set_text("" if shown else picked.why)
+            self.cursors[axis].set_visible(shown)
+            if shown:
+                ax.set_axis_on()
+            else:
+                ax.set_axis_off()
+            self.notes[axis].set_text("" if shown else "\n".join(textwrap.wrap(picked.why, 70)))
             if not shown:
-                ax.set_yticks([])
                 continue
             # ±inf (a zero or infinite unit gain) shows as the end colours, not as a blank
             values = np.clip(picked.values, -4 * OCTAVES, 4 * OCTAVES)
@@ -257,10 +296,13 @@ class ProfileView:
             if picked.units <= NAMED_UNITS:
                 ax.set_yticks(range(picked.units), picked.names, fontsize=max(5, min(7, 140 / picked.units)))
             else:
-                ax.set_yticks(np.linspace(0, picked.units - 1, 5).round(),
-                              [picked.names[int(u)] for u in np.linspace(0, picked.units - 1, 5).round()])
+                ticks = MaxNLocator(6, integer=True).tick_values(0, picked.units - 1)
+                ticks = [int(u) for u in ticks if 0 <= u < picked.units]
+                ax.set_yticks(ticks, [picked.names[u] for u in ticks])
             ax.set_title(f"{picked.units} {AXIS_WORDS[axis]}; {picked.how}", fontsize=7, loc="left")
         self.axes["rows"].set_xlim(*span)
+        columns_shown = self.images["columns"].get_visible()
+        self.axes["rows"].set_xlabel("" if columns_shown else "optimizer step", fontsize=8)
         self.title.set_text(f"unit gains of {tensor} relative to its median unit, per recorded heavy step")
 
     def set_cursor(self, step: int, row: int | None) -> None:
@@ -269,7 +311,11 @@ class ProfileView:
             self.cursors[axis].set_xdata([step, step])
         if self.tensor is None:
             return
-        self.extremes = {axis: extremes_at(self.run, self.tensor, axis, row) for axis in self.axes}
+        self.extremes = {}
+        for axis, picked in self.selections.items():
+            found = (picked.extremes or {}).get(row) if row is not None else None
+            self.extremes[axis] = found or UnitExtremes(int(step), [], [], picked.why or
+                                                         "no heavy step at or before the cursor")
         self.text = "\n".join(extremes_text(self.extremes[axis], axis) for axis in self.axes
                               if not self.selections.get(axis) or not self.selections[axis].why)
         if not self.text:
