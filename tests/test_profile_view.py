@@ -136,3 +136,21 @@ def test_explorer_shows_the_profile_of_the_picked_tensor_and_a_line_for_a_bias(r
             handle.write(panel.png_bytes())
     finally:
         view.close()
+
+
+def _finding(kind, tensors, step):
+    from nbkit.analyze.finding import Finding
+    return Finding(kind=kind, tensors=tensors, first_step=step, last_step=step, severity="warning",
+                   evidence={}, suggestion="look")
+
+
+def test_report_pictures_the_tensor_the_eps_finding_names(run, tmp_path):
+    from nbkit.views.report import profile_focus, write_report
+    spike = _finding("grad-spike", ["0.bias", "0.weight"], 2)
+    eps = _finding("eps-dominated", ["0.weight"], 4)
+    assert profile_focus(run, [spike, eps]) == ("0.weight", 4, eps)
+    assert profile_focus(run, [spike]) == ("0.weight", 2, spike)             # first finding with a profiled tensor
+    assert profile_focus(run, [_finding("grad-spike", ["0.bias"], 1)]) == ("0.weight", 7, None)
+    page = write_report([run], tmp_path / "report.html", findings={str(run.path): [eps]}).read_text()
+    assert "Unit profile of 0.weight" in page and "eps-dominated finding names (a heuristic), at its first step 4" in page
+    assert page.count("data:image/png;base64,") == 2
