@@ -1,9 +1,9 @@
 """The explorer: `nbkit.explore(run)`, the main notebook view of one recording.
 
-Four parts in one Box: the timeline (loss, learning rate, keyframe and finding marks, the step
+Five parts in one Box: the timeline (loss, learning rate, keyframe and finding marks, the step
 cursor), the layer map (tensors x steps of one quantity, and its values at the cursor), the
-coordinate view (one tensor's probe coordinates and gain histogram) and the findings list
-(views.findings_panel). A live recording is followed by views.live. Only `step`, `tensor` and
+coordinate view (one tensor's probe coordinates and gain histogram), the profile panel (the
+tensor's unit gains, views.profile) and the findings list (views.findings_panel). A live recording is followed by views.live. Only `step`, `tensor` and
 `quantity` are synced to the browser; the arrays stay in the kernel. A cursor move touches only
 the artists that follow the cursor and blits them; figures are fully redrawn only when the
 tensor, quantity or recording changes.
@@ -26,6 +26,7 @@ from nbkit.views.detail import DetailControl
 from nbkit.views.findings_panel import FindingsPanel
 from nbkit.views.layer_map import LayerMap
 from nbkit.views.live import LiveFollower, prepare_busy_frontends
+from nbkit.views.profile import ProfileView
 from nbkit.views.timeline import Timeline
 
 
@@ -64,6 +65,7 @@ class Explorer(GuardedView, widgets.VBox):
         self.timeline = Timeline(self.data, self._pick_step)
         self.layer_map = LayerMap(self.data, self._pick_tensor)
         self.coordinates = CoordinateView(self.data)
+        self.profile = ProfileView(run)
         for part in self._parts():
             part.blitter.lock = self.lock
         # filled by a background thread: findings can take seconds
@@ -93,7 +95,7 @@ class Explorer(GuardedView, widgets.VBox):
         self.findings_panel.start_after_first_draws([part.canvas for part in self._parts()])
 
     def _parts(self):
-        return (self.timeline, self.layer_map, self.coordinates)
+        return (self.timeline, self.layer_map, self.coordinates, self.profile)
 
     @property
     def findings(self) -> list:
@@ -148,6 +150,8 @@ class Explorer(GuardedView, widgets.VBox):
         self.slider.observe(lambda c: self.guard(setattr, self, "step", int(c["new"])), "value")
         self.coordinate_summary = widgets.HTML()
         self.coordinate_summary.add_class("nbkit-coordinate-summary")
+        self.profile_summary = widgets.HTML()
+        self.profile_summary.add_class("nbkit-profile-summary")
 
     def _layout(self):
         controls = widgets.HBox([self.play, self.previous_button, self.slider, self.next_button, self.speed,
@@ -156,7 +160,9 @@ class Explorer(GuardedView, widgets.VBox):
         menus = widgets.VBox([menus, self.detail.box])
         middle = widgets.HBox([self.layer_map.canvas, self.coordinates.canvas],
                               layout=widgets.Layout(flex_flow="row wrap"))   # narrow pages stack them
-        return [controls, self.timeline.canvas, menus, middle, self.findings_panel.box, self.errors]
+        profile = widgets.HBox([self.profile.canvas, self.profile_summary],
+                               layout=widgets.Layout(flex_flow="row wrap"))
+        return [controls, self.timeline.canvas, menus, middle, profile, self.findings_panel.box, self.errors]
 
     # --- reacting -------------------------------------------------------------------------------
     def _show_finding_marks(self):
@@ -193,7 +199,8 @@ class Explorer(GuardedView, widgets.VBox):
                 raise ValueError(f"No tensor named {change['new']!r}; pick one of explorer.run.tensors")
             self.coordinates.set_tensor(change["new"])
             self.layer_map.set_tensor(change["new"])
-            self._redraw(self.step, full=(self.coordinates,))
+            self.profile.set_tensor(change["new"])
+            self._redraw(self.step, full=(self.coordinates, self.profile))
         self.guard(pick)
 
     def _on_quantity(self, change):
@@ -216,6 +223,7 @@ class Explorer(GuardedView, widgets.VBox):
         self.timeline.set_cursor(snapped)
         self.layer_map.set_cursor(snapped, heavy)
         full = self.coordinates.set_cursor(snapped, heavy)
+        self.profile.set_cursor(snapped, heavy)
         note = "" if heavy == row or heavy is None else \
             f" (per-tensor values from step {int(self.data.steps[heavy])})"
         if self.data.detail_at(row) is not None:
@@ -223,6 +231,7 @@ class Explorer(GuardedView, widgets.VBox):
         self.detail.step = snapped
         self.step_label.value = f"<b>step {snapped}</b> of {int(self.data.steps[-1])}{note}"
         self.coordinate_summary.value = f"<small>{html.escape(self.coordinates.summary)}</small>"
+        self.profile_summary.value = "<small>" + "<br>".join(map(html.escape, self.profile.text.splitlines())) + "</small>"
         with self.slider.hold_trait_notifications():
             self.slider.max = max(self.slider.max, int(self.data.steps[-1]))
             self.slider.value = snapped
@@ -238,6 +247,7 @@ class Explorer(GuardedView, widgets.VBox):
                 self.step = snapped
             self.timeline.blitter.update()
             self.layer_map.blitter.update()
+            self.profile.blitter.update()
             (self.coordinates.blitter.full if full else self.coordinates.blitter.update)()
         finally:
             self._moving = False
@@ -268,6 +278,8 @@ class Explorer(GuardedView, widgets.VBox):
             if self.data.row_count and self.coordinates.tensor != self.tensor and self.tensor:
                 self.coordinates.set_tensor(self.tensor)
                 self.layer_map.set_tensor(self.tensor)
+            if self.data.row_count and self.profile.tensor != self.tensor and self.tensor:
+                self.profile.set_tensor(self.tensor)
             self._place(step)
         finally:
             self._moving = False
@@ -302,6 +314,7 @@ class Explorer(GuardedView, widgets.VBox):
             self.timeline.load(self.findings)
             self.layer_map.quantity = None          # re-read the heatmap
             self.coordinates.tensor = None          # and the histogram image
+            self.profile.tensor = None              # and the profile images
             last = int(self.data.steps[-1])
             self.slider.max = self.play.max = last
             if old_rows == 0:
@@ -329,7 +342,7 @@ class Explorer(GuardedView, widgets.VBox):
             self.findings_panel.stop()
         if getattr(self, "follower", None) is not None:
             self.follower.stop()
-        for name in ("timeline", "layer_map", "coordinates"):
+        for name in ("timeline", "layer_map", "coordinates", "profile"):
             if hasattr(self, name):
                 getattr(self, name).blitter.stop()
                 getattr(self, name).canvas.close()
@@ -339,8 +352,10 @@ class Explorer(GuardedView, widgets.VBox):
     def png_bytes(self) -> bytes:
         with self.lock:
             images = [[figure_png(self.timeline.figure)],
-                      [figure_png(self.layer_map.figure), figure_png(self.coordinates.figure)]]
+                      [figure_png(self.layer_map.figure), figure_png(self.coordinates.figure)],
+                      [figure_png(self.profile.figure)]]
             lines = [f"{self.run.path.name}: step {self.step}, layer map of {self.quantity}; {self.coordinates.summary}"]
+            lines += self.profile.text.splitlines()
             lines += [label for label, _ in self.finding_options()[:8]] or [self.findings_panel.note_text()]
             return compose_png(images, "\n".join(lines))
 

@@ -16,6 +16,7 @@ import numpy as np
 from nbkit.version import __version__
 from nbkit.views.compare import compare
 from nbkit.views.explorer import explore
+from nbkit.views.profile import profile_png
 
 CAUTION = ("Findings are heuristics: each points at a step and tensor worth a look, not a proven cause. "
            "Verify a finding with a replay from a keyframe before acting on it. Recordings (and this report) "
@@ -64,6 +65,34 @@ def _focus(findings):
     rank = {"error": 0, "warning": 1, "info": 2}
     named = [f for f in findings if f.tensors and f.kind not in ("orphan", "no-gradient")]
     return min(named, key=lambda f: (rank[f.severity], f.first_step), default=None)
+
+
+def profile_focus(run, findings):
+    """(tensor, step, finding or None) for the report's profile picture: the first eps-dominated finding
+    naming a profiled tensor, else the first finding naming one, else the first profiled tensor at the
+    last step; None when the recording has no profiles."""
+    profiled = run.profile_tensors
+    if not profiled:
+        return None
+    ordered = [f for f in findings if f.kind == "eps-dominated"] + [f for f in findings if f.kind != "eps-dominated"]
+    for finding in ordered:
+        named = [t for t in finding.tensors if t in profiled]
+        if named:
+            return named[0], int(finding.first_step), finding
+    return profiled[0], int(run.steps[-1]) if len(run.steps) else 0, None
+
+
+def _profile_figure(run, findings) -> str:
+    focus = profile_focus(run, findings)
+    if focus is None or not len(run.steps):
+        return ""
+    tensor, step, finding = focus
+    uri = "data:image/png;base64," + base64.b64encode(profile_png(run, tensor, step)).decode()
+    why = (f"the tensor the {finding.kind} finding names (a heuristic), at its first step {step}" if finding
+           else f"the first profiled tensor (no finding names one), at the last step {step}")
+    return _figure(f"Unit profile of {tensor}", uri,
+                   f"Each unit's gain over the median unit's gain, output units above and input features below; "
+                   f"{why}. Blue: damped (below ×½), orange: accelerated (above ×2), grey: no value.")
 
 
 def _number(value) -> str:
@@ -134,6 +163,8 @@ def write_report(runs, path, *, title: str = "nbkit report", findings=None, land
                 explorer.step, explorer.tensor = focus.first_step, focus.tensors[0]
             caption += f", with the cursor on the {focus.kind} finding at step {focus.first_step} in {focus.tensors[0]}"
         parts.append(_figure("Explorer", _png_data_uri(explorer), caption + "."))
+        explorer.close()
+        parts.append(_profile_figure(run, found))
     if len(runs) > 1:
         parts.append("<h2>Comparison</h2>")
         comparison = compare(*runs)
