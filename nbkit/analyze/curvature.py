@@ -113,6 +113,15 @@ def top_eigenvalue(matvec, n: int, *, tol: float = 1e-6, seed: int = START_SEED)
     Below n = 3 (ARPACK needs more room) the operator is formed densely and numpy.linalg.eigvalsh used."""
     if n < 1:
         raise AnalysisError("There are no parameters to take a Hessian over")
+    plain = matvec
+
+    def matvec(v):                    # a NaN handed to ARPACK makes LAPACK print to stderr (DLASCL)
+        out = plain(v)
+        if not np.isfinite(out).all():
+            raise AnalysisError("the Hessian-vector product is not finite (NaN or Inf in the parameters, the "
+                                "loss or its gradient): no sharpness at this step")
+        return out
+
     if n < 3:
         dense = np.stack([matvec(e) for e in np.eye(n)], axis=1)
         return float(np.linalg.eigvalsh((dense + dense.T) / 2)[-1])
