@@ -84,3 +84,98 @@ def test_eps_dominated_stays_quiet_with_the_columns_in_their_unit(tmp_path):
     model = torch.nn.Sequential(torch.nn.Linear(32, 10))
     run = train(model, torch.optim.Adam(model.parameters(), lr=1e-2, eps=1e-6), x, y, tmp_path / "run", 120, every=1)
     assert of_kind(run.findings(), "eps-dominated") == []
+
+
+# --- damped-units -------------------------------------------------------------------------------------
+class CutUpdates:
+    """A planted per-unit learning-rate mask: after each step, rows `rows` of `weight` keep only `keep` of
+    their update (as a mask applied after the optimizer would)."""
+
+    def __init__(self, weight, rows, keep=1e-3):
+        self.weight, self.rows, self.keep = weight, rows, keep
+
+    def before(self, optimizer, args, kwargs):
+        self.saved = self.weight.detach()[self.rows].clone()
+
+    def after(self, optimizer, args, kwargs):
+        with torch.no_grad():
+            w = self.weight[self.rows]
+            self.weight[self.rows] = self.saved + self.keep * (w - self.saved)
+
+
+def mlp(seed=0):
+    """Tanh hidden units: none dies on its own (a ReLU may), so only planted faults are found."""
+    torch.manual_seed(seed)
+    return torch.nn.Sequential(torch.nn.Linear(64, 64), torch.nn.Tanh(), torch.nn.Linear(64, 10))
+
+
+OPTIMIZERS = {"adam": lambda ps: torch.optim.Adam(ps, lr=1e-3),
+              "sgd-momentum": lambda ps: torch.optim.SGD(ps, lr=0.05, momentum=0.9),
+              "sgd": lambda ps: torch.optim.SGD(ps, lr=0.1)}
+
+
+@pytest.mark.parametrize("optimizer", OPTIMIZERS)
+def test_damped_units_names_the_rows_whose_updates_are_cut(tmp_path, optimizer):
+    x, y = digits()
+    model = mlp()
+    cut = CutUpdates(model[0].weight, slice(0, 8))
+    run = train(model, OPTIMIZERS[optimizer](model.parameters()), x, y, tmp_path / "cut", 80, every=1, after_step=cut)
+    found = of_kind(run.findings(), "damped-units")
+    assert len(found) == 1, found
+    f = found[0]
+    assert f.units == {"0.weight": {"rows": [str(u) for u in range(8)]}} and f.severity == "warning"
+    assert f.first_step < 20 and f.last_step > 60
+    assert f.evidence["median_update_ratio"] < Thresholds().damped_update
+    assert f.evidence["median_gain_ratio"] < Thresholds().damped_gain
+    assert f.suggestion.lower().startswith("rows 0, 1, 2") and "replay" in f.suggestion
+    # the same run without the cut: quiet (Adam's equal update RMS across units, SGD's small updates for
+    # small gradients are normal)
+    model = mlp()
+    healthy = train(model, OPTIMIZERS[optimizer](model.parameters()), x, y, tmp_path / "healthy", 80, every=1)
+    assert of_kind(healthy.findings(), "damped-units") == []
+    # a milder cut (a third of the update) is not "far below"
+    model = mlp()
+    mild = train(model, OPTIMIZERS[optimizer](model.parameters()), x, y, tmp_path / "mild", 80, every=1,
+                 after_step=CutUpdates(model[0].weight, slice(0, 8), keep=0.3))
+    assert of_kind(mild.findings(), "damped-units") == []
+
+
+# --- dead-units from exact zero gradients ------------------------------------------------------------------
+def silenced(model, zero=20, tiny=10):
+    """model's forward with hidden units 0..zero-1 multiplied by exactly 0 (their input rows get an exactly
+    zero gradient) and the next `tiny` by 1e-20 (a tiny gradient that is not zero)."""
+    scale = torch.ones(64)
+    scale[:zero] = 0.0
+    scale[zero:zero + tiny] = 1e-20
+    return lambda xb: model[2](model[1](model[0](xb)) * scale)
+
+
+def test_dead_units_counts_exact_zero_gradients_and_names_those_rows(tmp_path):
+    x, y = digits()
+    model = mlp()
+    run = train(model, torch.optim.SGD(model.parameters(), lr=0.05), x, y, tmp_path / "dead", 80, every=1,
+                forward=silenced(model))
+    found = of_kind(run.findings(), "dead-units")
+    assert [f.tensors for f in found] == [["0.weight"]], found
+    assert found[0].units == {"0.weight": {"rows": [str(u) for u in range(20)]}}      # not the tiny ones
+    assert found[0].evidence["min_dead_share"] == 20 / 64 and found[0].severity == "info"
+    assert found[0].first_step == 0 and "replay" in found[0].suggestion
+
+
+def test_dead_units_is_quiet_while_the_learning_rate_is_zero(tmp_path):
+    x, y = digits()
+    model = mlp()
+    frozen = train(model, torch.optim.SGD(model.parameters(), lr=0.05), x, y, tmp_path / "frozen", 80, every=1,
+                   forward=silenced(model), lr_at=lambda step: 0.0)
+    assert of_kind(frozen.findings(), "dead-units") == []
+    model = mlp()
+    later = train(model, torch.optim.SGD(model.parameters(), lr=0.05), x, y, tmp_path / "later", 120, every=1,
+                  forward=silenced(model), lr_at=lambda step: 0.0 if step < 50 else 0.05)
+    found = of_kind(later.findings(), "dead-units")
+    assert len(found) == 1 and found[0].first_step == 50, found
+    # without profiles the old series path still judges the weight (it does not read the learning rate)
+    model = mlp()
+    old = train(model, torch.optim.SGD(model.parameters(), lr=0.05), x, y, tmp_path / "old", 80, every=1,
+                forward=silenced(model), profiles=False)
+    found = of_kind(old.findings(), "dead-units")
+    assert [f.tensors for f in found] == [["0.weight"]] and found[0].units == {}
