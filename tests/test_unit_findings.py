@@ -65,7 +65,8 @@ def test_eps_dominated_names_exactly_the_three_scaled_columns(tmp_path, names):
     f = found[0]
     expected = [given[u] for u in SCALED] if names else [str(u) for u in SCALED]
     assert f.tensors == ["0.weight"] and f.units == {"0.weight": {"columns": expected}}
-    assert f.suggestion.lower().startswith("columns 4, 5, 6") and " of 0.weight:" in f.suggestion and "replay" in f.suggestion
+    assert f.suggestion.lower().startswith("columns 4, 5, 6") and " of 0.weight:" in f.suggestion
+    assert "replay" in f.suggestion
     assert all(name in f.suggestion for name in expected)
     # the tensor as a whole is not dominated (3 of 32 columns), the three columns are
     assert f.evidence["tensor_eps_share"] < Thresholds().eps_share < f.evidence["median_eps_share"]
@@ -179,3 +180,17 @@ def test_dead_units_is_quiet_while_the_learning_rate_is_zero(tmp_path):
                 forward=silenced(model), profiles=False)
     found = of_kind(old.findings(), "dead-units")
     assert [f.tensors for f in found] == [["0.weight"]] and found[0].units == {}
+
+
+# --- the demo ----------------------------------------------------------------------------------------------
+@pytest.mark.slow
+def test_demo_eps_dominated_names_the_three_light_columns_of_the_first_layer(tmp_path):
+    from nbkit.demo import scenario
+
+    run, _ = scenario.train_first_run(tmp_path / "first-run")
+    findings = run.findings()
+    assert {"orphan", "eps-dominated", "over-stability-limit", "grad-spike", "oversized-updates"} <= \
+        {f.kind for f in findings}
+    eps = of_kind(findings, "eps-dominated")
+    assert len(eps) == 1 and eps[0].units == {"sensors.0.weight": {"columns": list(scenario.SENSORS[scenario.LIGHT])}}
+    assert of_kind(findings, "damped-units") == [] and of_kind(findings, "dead-units") == []

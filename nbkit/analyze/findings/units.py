@@ -54,10 +54,9 @@ def unit_finding(data, k, axis, kind, severity, a, b, units, evidence, text, sou
     """A Finding over heavy rows a..b naming `units` of tensor k along axis; text is the advice after the
     units' description, to which the replay hint is added."""
     first, last = int(data.heavy_steps[a]), int(data.heavy_steps[b])
-    names = data.unit_names(k, axis)
+    names, which = data.unit_names(k, axis), describe_units(data, k, axis, units)
     return Finding(kind, [data.tensors[k]], first, last, severity, {"units": len(units), **evidence},
-                   describe_units(data, k, axis, units)[0].upper() + describe_units(data, k, axis, units)[1:]
-                   + ": " + text + " " + REPLAY_HINT.format(step=first) + ".", source,
+                   which[0].upper() + which[1:] + ": " + text + " " + REPLAY_HINT.format(step=first) + ".", source,
                    {data.tensors[k]: {axis: [names[u] for u in units]}})
 
 
