@@ -20,7 +20,7 @@ def main():
     view = nbkit.explore(run)
     view.wait_for_findings(120)
     view.log_toggle.value = True
-    view.tensor = "light.0.weight"
+    view.tensor = "sensors.0.weight"
     view.step = spike.first_step
     view.to_png(DOCS / "explorer.png")
     view.close()

@@ -18,6 +18,8 @@ class Finding:
     evidence: dict = field(default_factory=dict)   # the numbers that triggered it
     suggestion: str = ""
     source: str = "common practice"   # a citation, or "common practice" for rules of thumb
+    units: dict = field(default_factory=dict)      # per-unit findings: {tensor: {axis: [unit names]}}, axis
+                                                   # "rows" (output units) or "columns" (input features)
 
     def __post_init__(self):
         if self.severity not in SEVERITIES:

@@ -4,8 +4,9 @@ Everything is generated in code by a seeded generator (no data files). The first
 planted faults a practitioner could plausibly make:
   * the sensor calibration offset is a parameter of the model but was left out of the optimizer
     (an orphan tensor);
-  * the three light sensors arrive in the wrong unit, about 1e-6 of the other features, so the
-    light branch's gradients fall below Adam's epsilon and it barely learns (eps-dominated);
+  * the three light sensors arrive in the wrong unit, about 1e-7 of the other features, so the
+    first layer's three light columns get gradients below Adam's epsilon and barely learn, while the
+    other nine columns of the same weight train normally (eps-dominated, naming the three columns);
   * the learning rate after the warm-up was configured ten times too high, and the loss spikes
     once the step size passes the stability limit set by the curvature (over-stability-limit).
 """
@@ -23,8 +24,8 @@ SENSORS = ("air temperature [°C]", "relative humidity [%]", "CO2 [ppm]", "vent 
            "heating pipe temperature [°C]", "outside temperature [°C]", "wind speed [m/s]",
            "screen closure [0-1]", "hour of day (sine)",
            "light above canopy [µmol/m²/s]", "light mid canopy [µmol/m²/s]", "light outside [µmol/m²/s]")
-CLIMATE, LIGHT = slice(0, 9), slice(9, 12)
-WRONG_UNIT = 1e-6          # the light block's planted unit error (a factor applied twice)
+LIGHT = slice(9, 12)
+WRONG_UNIT = 1e-7          # the light block's planted unit error
 HOURS = 24 * 60            # two months of hourly readings
 BATCH = 64
 STEPS = 600
@@ -64,18 +65,16 @@ def sensor_data(seed: int = 7, *, wrong_unit: bool = True):
 
 
 class LeafTemperatureNet(nn.Module):
-    """Climate branch + light branch + head, plus a learned sensor calibration offset."""
+    """One first layer over all twelve sensors + head, plus a learned sensor calibration offset."""
 
     def __init__(self):
         super().__init__()
-        self.climate = nn.Sequential(nn.Linear(9, 32), nn.Tanh())
-        self.light = nn.Sequential(nn.Linear(3, 8), nn.Tanh())
+        self.sensors = nn.Sequential(nn.Linear(len(SENSORS), 40), nn.Tanh())   # columns: SENSORS, in order
         self.head = nn.Sequential(nn.Linear(40, 32), nn.Tanh(), nn.Linear(32, 1))
         self.calibration_offset = nn.Parameter(torch.zeros(1))
 
     def forward(self, x):
-        features = torch.cat([self.climate(x[:, CLIMATE]), self.light(x[:, LIGHT])], dim=1)
-        return self.head(features).squeeze(1) + self.calibration_offset
+        return self.head(self.sensors(x)).squeeze(1) + self.calibration_offset
 
 
 def make_model(seed: int = 0) -> LeafTemperatureNet:
@@ -85,7 +84,7 @@ def make_model(seed: int = 0) -> LeafTemperatureNet:
 
 def optimizer_parameters(model: LeafTemperatureNet):
     """The planted orphan: the calibration offset is forgotten when the optimizer is built."""
-    return [*model.climate.parameters(), *model.light.parameters(), *model.head.parameters()]
+    return [*model.sensors.parameters(), *model.head.parameters()]
 
 
 def warmup_lr(step: int, peak: float = PEAK_LR) -> float:
@@ -144,7 +143,8 @@ def train_first_run(path, *, steps: int = STEPS, curvature_every: int = 25, peak
     optimizer = torch.optim.Adam(optimizer_parameters(model), lr=warmup_lr(0, peak_lr))
     # every=1: the demo's findings read every step in full (the default, "auto", thins after 50 steps)
     with record(model, optimizer, path, criterion=criterion, curvature_every=curvature_every,
-                keyframe_every=100, every=1, overwrite=overwrite):
+                keyframe_every=100, every=1, overwrite=overwrite,
+                unit_names={"sensors.0.weight": {"columns": list(SENSORS)}}):
         for step in range(steps):
             for group in optimizer.param_groups:
                 group["lr"] = warmup_lr(step, peak_lr)

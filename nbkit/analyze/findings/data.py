@@ -24,7 +24,9 @@ class FindingInputs:
         self.heavy_steps = self.steps[self.heavy_rows]
         self.loss = np.asarray(run.loss, dtype=np.float64)
         self._series: dict = {}
+        self._profiles: dict = {}
         self._changed: dict | None = None
+        self.profile_tensors = set(run.profile_tensors) if len(self.steps) else set()
 
     def group_settings(self, row: int) -> list[dict]:
         """Each parameter group's settings at `row`: its start values (meta["param_groups"]) with every
@@ -59,6 +61,29 @@ class FindingInputs:
             else:
                 self._series[q] = np.asarray(self.run.series(q), dtype=np.float64)[self.heavy_rows]
         return self._series[q]
+
+    def profile(self, k, q, axis) -> np.ndarray | None:
+        """(heavy rows, units) float64 per-unit profile q of tensor k along axis ("rows" or "columns");
+        None where the recording has none (a recording before profiles, profiles=False, a 1-D tensor,
+        an axis the tensor lacks)."""
+        key = (k, q, axis)
+        if key not in self._profiles:
+            name = self.tensors[k]
+            entry = (self.meta.get("profiles") or {}).get("tensors", {}).get(name, {})
+            if name not in self.profile_tensors or axis not in entry or not len(self.heavy_rows):
+                self._profiles[key] = None
+            else:
+                self._profiles[key] = np.asarray(self.run.profile(name, q, axis), dtype=np.float64)[self.heavy_rows]
+        return self._profiles[key]
+
+    def unit_names(self, k, axis) -> list[str]:
+        """The names of tensor k's units along axis: record(unit_names=...) where given, else indices."""
+        return self.run.unit_names(self.tensors[k], axis)
+
+    def tensor_lr(self) -> np.ndarray:
+        """(heavy rows, tensors): each tensor's learning rate (its group's) at each heavy row."""
+        lr = np.asarray(self.run.lr, dtype=np.float64)[self.heavy_rows]            # (rows, groups)
+        return lr[:, [t["group"] for t in self.meta["tensors"]]]
 
     def shape(self, k) -> list[int]:
         """The recorded shape of tensor k."""

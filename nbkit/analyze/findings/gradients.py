@@ -7,6 +7,7 @@ import warnings
 import numpy as np
 
 from nbkit.analyze.finding import Finding
+from nbkit.analyze.findings import units as unit_rules
 from nbkit.analyze.findings.data import finite_median, rolling_median
 from nbkit.analyze.findings.sustained import REPLAY_HINT, merge_findings, per_tensor_findings
 
@@ -98,8 +99,12 @@ def overshoot(data, t) -> list[Finding]:
 
 
 def dead_units(data, t) -> list[Finding]:
-    """dead-units: a share of a weight's rows without gradient in every row of t.dead_window, confirmed by
-    the probe coordinates; a warning from t.dead_share_warning, else info."""
+    """dead-units: a share of a weight's rows without gradient in every row of t.dead_window; a warning from
+    t.dead_share_warning, else info. A weight with a rows profile is judged on its exact per-unit gradient
+    (nbkit.analyze.findings.units.dead_units, which names the units); others on the dead_rows series,
+    confirmed by the probe coordinates."""
+    profiled = set(unit_rules.profiled_weights(data))
+    out = [f for k in sorted(profiled) for f in unit_rules.dead_units(data, t, k)]
     dead = data.series("dead_rows")
     rows = np.array([max(1, s[0]) if s else 1 for s in (data.shape(k) for k in range(len(data.tensors)))], float)
     share = dead / rows
@@ -108,8 +113,8 @@ def dead_units(data, t) -> list[Finding]:
                                                       "max_dead_rows": float(np.nanmax(dead[a:b + 1, k]))},
                                      "Whole output units of this weight get no gradient at all (dead ReLUs, saturated "
                                      "units). Lower the learning rate, use a leaky activation or check the "
-                                     "initialisation.", window=t.dead_window, share=1.0)
-    out = []
+                                     "initialisation.", window=t.dead_window, share=1.0,
+                                     tensors=[k for k in range(len(data.tensors)) if k not in profiled])
     for f in candidates:
         if _probes_confirm_dead(data, f):
             severity = "warning" if f.evidence["min_dead_share"] >= t.dead_share_warning else "info"

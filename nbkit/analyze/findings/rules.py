@@ -10,7 +10,7 @@ from dataclasses import dataclass
 from typing import Callable
 
 from nbkit.analyze.finding import Finding
-from nbkit.analyze.findings import configuration, gradients, loss, nonfinite, updates
+from nbkit.analyze.findings import configuration, gradients, loss, nonfinite, units, updates
 from nbkit.analyze.findings.data import FindingInputs
 from nbkit.analyze.findings.thresholds import Thresholds, thresholds_from_keywords
 
@@ -36,6 +36,7 @@ RULES = (
     Rule(("oscillation",), gradients.oscillation),
     Rule(("overshoot",), gradients.overshoot),
     Rule(("dead-units",), gradients.dead_units),
+    Rule(("damped-units",), units.damped_units),
     Rule(("lost-updates",), updates.lost_updates),
     Rule(("plateau",), loss.plateau),
     Rule(("over-stability-limit",), loss.over_stability_limit),

@@ -47,9 +47,14 @@ def merge_findings(findings: list[Finding]) -> list[Finding]:
             evidence = dict(last.evidence)
             for key, value in f.evidence.items():
                 evidence[key] = max(evidence.get(key, value), value) if key.startswith("max") else evidence.get(key, value)
+            units = {name: {axis: list(names) for axis, names in axes.items()} for name, axes in last.units.items()}
+            for name, axes in f.units.items():
+                for axis, names in axes.items():
+                    kept = units.setdefault(name, {}).setdefault(axis, [])
+                    kept.extend(n for n in names if n not in kept)
             merged[-1] = Finding(last.kind, last.tensors + [x for x in f.tensors if x not in last.tensors],
                                  last.first_step, max(last.last_step, f.last_step), last.severity, evidence,
-                                 last.suggestion, last.source)
+                                 last.suggestion, last.source, units)
         else:
             merged.append(f)
     return merged

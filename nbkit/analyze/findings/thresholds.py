@@ -44,6 +44,10 @@ class Thresholds:
     dead_share: float = 0.25          # dead-units: a quarter of a weight's rows without gradient (info;
     dead_share_warning: float = 0.5   # half of them: warning) ...
     dead_window: int = 50             # ... in every row of this many heavy rows
+    damped_update: float = 0.05      # damped-units: a unit's update RMS below 1/20 of its tensor's median unit's ...
+    damped_gain: float = 0.05        # ... and its gain below 1/20 of the median unit's gain (a noisy unit under
+                                      # Adam or momentum sits near 0.2×; below 0.05× the step is cut by
+                                      # something outside the optimizer's rule)
     lost_share: float = 0.25          # lost-updates: a quarter of the updates round to nothing
     plateau_window: int = 100         # plateau: loss rows per window
     plateau_flat: float = 0.02        # loss change within the window, as a share of the run's progress

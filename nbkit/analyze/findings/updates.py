@@ -10,6 +10,7 @@ from dataclasses import replace
 import numpy as np
 
 from nbkit.analyze.finding import Finding
+from nbkit.analyze.findings import units as unit_rules
 from nbkit.analyze.findings.data import finite_median
 from nbkit.analyze.findings.sustained import REPLAY_HINT, merge_findings, per_tensor_findings
 
@@ -85,7 +86,9 @@ def _input_scale(data, biases) -> np.ndarray:
 
 def eps_dominated(data, t) -> list[Finding]:
     """eps-dominated: ε outweighs √v̂ for more than t.eps_share of a relevant tensor's coordinates, sustained;
-    or of a weight whose own gradient is negligible because its layer's inputs are tiny."""
+    or of a weight whose own gradient is negligible because its layer's inputs are tiny; or, where the
+    recording has profiles, of a set of a weight's units (rows or columns) although not of the whole tensor
+    (nbkit.analyze.findings.units.eps_dominated_units)."""
     share = data.series("eps_share")
     relevant = data.relevant(t.relevant_grad)
     biases = _layer_biases(data)
@@ -112,7 +115,10 @@ def eps_dominated(data, t) -> list[Finding]:
                                         "Efficient BackProp; from memory)")
     inputs = [replace(f, suggestion=f.suggestion.replace("about input_scale", f"about {f.evidence['input_scale']:.1g}"))
               for f in inputs]
-    return plain + inputs
+    matters = relevant.copy()                 # a weight matters to the loss if it or its own bias does
+    for k, bias in biases.items():
+        matters[:, k] |= relevant[:, bias]
+    return plain + inputs + unit_rules.eps_dominated_units(data, t, matters, plain + inputs)
 
 
 def lost_updates(data, t) -> list[Finding]:
