@@ -56,10 +56,18 @@ def plateau(data, t) -> list[Finding]:
 
 
 def over_stability_limit(data, t) -> list[Finding]:
-    """over-stability-limit: recorded sharpness above t.stability_margin × the optimizer's stability limit
-    (nbkit.analyze.stability) at that step's settings (learning rate, momentum, betas, ... of every group:
-    FindingInputs.group_settings; the lowest group limit counts); consecutive such rows are one finding,
-    with the loss rise over the 10 steps after as evidence."""
+    """over-stability-limit: a divergence along the sharpest direction, as a practitioner would call it.
+
+    At each row with a sharpness estimate: the optimizer's stability limit at that step's settings
+    (nbkit.analyze.stability: learning rate, momentum, betas, ... of every group, FindingInputs.group_settings;
+    the lowest group limit counts). For optimizers without a preconditioner the sharpness is compared at
+    the step actually taken: × the recorded clip factor (a clipped step is a shorter step). The row counts
+    when sharpness is above t.stability_margin × the limit and the loss rises over the next
+    t.stability_window steps (their median above t.stability_rise × the median of the window up to the row),
+    or when it is above t.stability_far × the limit and the loss rises at all. Consecutive such rows are one
+    finding. Evidence: the sharpness, the limit, their ratio, the clip factor used, the loss after ÷ before,
+    the gradient-norm growth, whether the learning rate was still rising (warm-up), and how far the
+    nearest estimates were apart (a thinned recording estimates rarely)."""
     sharp = np.asarray(data.run.series("sharpness"), dtype=np.float64) if "sharpness" in data.run.quantities else None
     if sharp is None or not len(sharp):
         return []
@@ -70,6 +78,10 @@ def over_stability_limit(data, t) -> list[Finding]:
     name = data.meta.get("optimizer", {}).get("class", "")
     if not len(rows) or not data.meta.get("param_groups"):
         return []
+    clip = _clip_factors(data)
+    grad_norm = _step_grad_norm(data)
+    lr0 = np.asarray(data.run.lr, dtype=np.float64)[:, 0] if len(data.steps) else np.zeros(0)
+    w = t.stability_window
     hits = []
     for r in rows:
         limits = []
@@ -81,32 +93,77 @@ def over_stability_limit(data, t) -> list[Finding]:
                 continue
             limit = stability_limit(name, group)
             if limit is not None:
-                limits.append((limit.limit, g, limit, float(group.get("lr", math.nan))))
-        if limits:
-            _, g, limit, lr = min(limits, key=lambda item: item[0])
-            if values[r] > t.stability_margin * limit.limit:
-                hits.append((r, values[r], limit, g, lr))
-    out = []
-    for r, value, limit, g, lr in hits:
-        if out and out[-1][1] == rows[max(0, np.searchsorted(rows, r) - 1)]:
-            out[-1] = (out[-1][0], r, max(out[-1][2], value / limit.limit), *out[-1][3:])
+                limits.append((limit.limit, g, limit, float(group.get("lr", math.nan)), group))
+        if not limits:
+            continue
+        _, g, limit, lr, group = min(limits, key=lambda item: item[0])
+        factor = 1.0 if limit.preconditioned or not np.isfinite(clip[r]) else float(min(1.0, clip[r]))
+        ratio = values[r] * factor / limit.limit
+        before, after = _median(data.loss[max(0, r - w + 1):r + 1]), _median(data.loss[r + 1:r + 1 + w])
+        rise = after / before if before > 0 and np.isfinite(after) else math.nan
+        rising = np.isfinite(rise) and ((ratio > t.stability_margin and rise > t.stability_rise)
+                                        or (ratio > t.stability_far and rise > 1.0))
+        if not rising:
+            continue
+        growth = _median(grad_norm[r + 1:r + 1 + w]) / _median(grad_norm[max(0, r - w + 1):r + 1])
+        warming = bool(len(lr0) > r + w and lr0[min(len(lr0) - 1, r + w)] > lr0[r] * 1.01)
+        hits.append((r, values[r], ratio, limit, g, lr, factor, rise, growth, warming, group))
+    gaps = np.diff(data.steps[rows]) if len(rows) > 1 else np.zeros(0)
+    spacing = int(np.median(gaps)) if len(gaps) else 0
+    out = []                                        # [first hit, last row, largest ratio]
+    for hit in hits:
+        r = hit[0]
+        if out and out[-1][1] == rows[max(0, np.searchsorted(rows, r) - 1)]:    # the previous estimate's row
+            out[-1][1], out[-1][2] = r, max(out[-1][2], hit[2])
         else:
-            out.append((r, r, value / limit.limit, value, limit, g, lr))
+            out.append([hit, r, hit[2]])
     findings = []
     groups = len(data.meta["param_groups"])
-    for a, b, ratio, value, limit, g, lr in out:
-        step = int(data.steps[a])
-        after = data.loss[a:a + 11]
-        rise = float(np.nanmax(after) / data.loss[a]) if np.isfinite(after).any() and data.loss[a] > 0 else math.nan
+    for (r, value, _, limit, g, lr, factor, rise, growth, warming, group), last, ratio in out:
+        step = int(data.steps[r])
         kind = "preconditioned sharpness" if limit.preconditioned else "sharpness"
         where = f" (parameter group {g}, the lowest limit of {groups})" if groups > 1 else ""
         evidence = {"sharpness": float(value), "limit": float(limit.limit), "max_ratio": float(ratio),
-                    "lr": lr, "loss_rise_next_10_steps": rise}
+                    "lr": lr, "clip_factor_used": factor, "loss_after_over_before": float(rise),
+                    "grad_norm_growth": float(growth), "lr_still_rising": warming,
+                    "estimate_spacing_steps": spacing}
+        for key in ("momentum", "betas"):
+            if key in group:
+                evidence[key] = group[key] if not isinstance(group[key], (list, tuple)) else list(group[key])
         if groups > 1:
             evidence["group"] = g
-        findings.append(Finding("over-stability-limit", [], step, int(data.steps[b]), "warning", evidence,
-                                f"The {kind} ({value:.4g}) is above the stability limit {limit.rule} = "
-                                f"{limit.limit:.4g} of {name} at lr={lr:.3g}{where}: steps along the sharpest "
-                                "direction grow instead of shrinking. Lower the learning rate (or add warm-up). " +
-                                REPLAY_HINT.format(step=step) + ".", limit.source))
+        clipped = f", × the clip factor {factor:.3g} of that step" if factor < 1 else ""
+        fix = ("The learning rate is still rising (warm-up): a lower peak or a longer warm-up. " if warming else
+               "Lower the learning rate (or add warm-up). ")
+        sparse = (f"Sharpness was estimated every {spacing} steps here: a dense self-replay of the window "
+                  f"(nbkit.replay(run, model, start=..., every=1) with curvature on) shows where it crossed. "
+                  if spacing > 2 * t.stability_window else "")
+        findings.append(Finding(
+            "over-stability-limit", [], step, int(data.steps[last]), "warning", evidence,
+            f"The {kind} ({value:.4g}{clipped}) is {ratio:.3g} × the stability limit {limit.rule} = "
+            f"{limit.limit:.4g} of {name} at lr={lr:.3g}{where}, and the loss rose {rise:.3g} × over the next "
+            f"{t.stability_window} steps: steps along the sharpest direction grow instead of shrinking. " + fix +
+            sparse + REPLAY_HINT.format(step=step) + ".", limit.source))
     return findings
+
+
+def _median(values) -> float:
+    values = np.asarray(values, dtype=np.float64)
+    values = values[np.isfinite(values)]
+    return float(np.median(values)) if len(values) else math.nan
+
+
+def _clip_factors(data) -> np.ndarray:
+    """(steps,) the recorded post-clip ÷ pre-clip gradient norm (NaN where not recorded)."""
+    try:
+        return np.asarray(data.run.clip_factor, dtype=np.float64)
+    except Exception:                              # noqa: BLE001 - recordings before backward statistics
+        return np.full(len(data.steps), math.nan)
+
+
+def _step_grad_norm(data) -> np.ndarray:
+    """(steps,) the pre-clip gradient norm of every step (NaN where not recorded)."""
+    try:
+        return np.asarray(data.run.grad_norm, dtype=np.float64)
+    except Exception:                              # noqa: BLE001 - recordings before backward statistics
+        return np.full(len(data.steps), math.nan)

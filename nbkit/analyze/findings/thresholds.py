@@ -26,6 +26,8 @@ class Thresholds:
     oversized_ratio: float = 0.25     # oversized-updates: 250× the common-practice 1e-3: weights rewritten
                                       # every few steps ...
     oversized_single_step: float = 1.0  # ... or any single step that moves a weight by more than its own norm
+    tiny_weight: float = 1e-3         # ... both ignore a weight while its RMS is below 1e-3 × the median weight's
+                                      # (class tokens and position embeddings initialised near 0, zero gates)
     stalled_ratio: float = 1e-5       # stalled-updates: 100× below 1e-3 while the learning rate is not decayed
     eps_share: float = 0.5            # "most coordinates": ε outweighs √v̂ for over half of them
     relevant_grad: float = 1e-4       # eps-dominated, lost-updates: only tensors whose gradient RMS is at
@@ -53,7 +55,10 @@ class Thresholds:
     plateau_flat: float = 0.02        # loss change within the window, as a share of the run's progress
     plateau_gap: float = 0.2          # window loss above the best by this share of the progress
     plateau_grad: float = 0.1         # global gradient norm below this share of its peak level
-    stability_margin: float = 1.25    # sharpness above 1.25× the limit (edge of stability hovers near 1×)
+    stability_margin: float = 1.0     # over-stability-limit: sharpness above the limit ...
+    stability_rise: float = 1.05      # ... with the loss's median over the next steps 5 % above the one before
+    stability_window: int = 10        # ... (steps in each of the two windows)
+    stability_far: float = 4.0        # or far above the limit with the loss rising at all
     noise_factor: float = 10.0        # batch size 10× below / above the gradient noise scale
 
 

@@ -5,6 +5,7 @@ oversized-updates and stalled-updates are the two sides of the update-to-weight 
 """
 from __future__ import annotations
 
+import warnings
 from dataclasses import replace
 
 import numpy as np
@@ -30,17 +31,18 @@ def oversized_updates(data, t) -> list[Finding]:
     weights = data.weight_columns()
     text = ("Each step changes this weight by a large share of its norm (common practice aims near 1e-3): the "
             "learning rate is likely too high for it.")
+    norm = data.series("weight_norm")
+    sized = ~_tiny_weights(data, norm, weights, t.tiny_weight)
     sustained = per_tensor_findings(data, t, "oversized-updates", "warning",
-                                    lambda k: ratio[:, k] > t.oversized_ratio, _ratio_evidence(ratio), text,
-                                    tensors=weights)
+                                    lambda k: (ratio[:, k] > t.oversized_ratio) & sized[:, k], _ratio_evidence(ratio),
+                                    text, tensors=weights)
     # one step larger than the weight itself; a zero-initialised weight (norm 0 at its first recorded step)
     # is left alone for its first `window` rows, where such steps are harmless
-    norm = data.series("weight_norm")
     grown = np.ones_like(norm, dtype=bool)
     grown[:t.window, norm[0] == 0] = False
     single = []
     for k in weights:
-        rows = np.flatnonzero((ratio[:, k] > t.oversized_single_step) & grown[:, k])
+        rows = np.flatnonzero((ratio[:, k] > t.oversized_single_step) & grown[:, k] & sized[:, k])
         if len(rows) and not any(data.tensors[k] in f.tensors and f.first_step <= data.heavy_steps[rows[0]]
                                  for f in sustained):
             first = int(data.heavy_steps[rows[0]])
@@ -49,6 +51,22 @@ def oversized_updates(data, t) -> list[Finding]:
                                   text + " One step moved it by more than its own norm. " +
                                   REPLAY_HINT.format(step=first) + ".", "common practice"))
     return merge_findings(sustained + single)
+
+
+def _tiny_weights(data, norm, weights, floor) -> np.ndarray:
+    """(heavy rows, tensors) True where a weight's RMS (‖θ‖/√n) is below `floor` × the median RMS of the
+    weights at that row: a class token or position embedding initialised near 0, a zero-initialised
+    gate. Its update ratio divides by almost nothing, so a normal first step reads as a huge one."""
+    tiny = np.zeros(norm.shape, dtype=bool)
+    if not weights:
+        return tiny
+    sizes = np.array([max(1, int(np.prod(data.shape(k)))) for k in weights], dtype=np.float64)
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        rms = norm[:, weights] / np.sqrt(sizes)
+        typical = np.nanmedian(rms, axis=1, keepdims=True)
+        tiny[:, weights] = rms < floor * typical
+    return tiny
 
 
 def stalled_updates(data, t) -> list[Finding]:
