@@ -103,7 +103,7 @@ class RecordingEstimates:
         try:
             value = compute()
         except Exception as exc:
-            recorder.report_problem(f"the {quantity} estimate failed", exc)
+            recorder.report_problem(f"the {quantity} estimate failed (said once; training goes on)", exc, traceback=True)
             return
         row.set_quantity(quantity, value if value is not None else math.nan)
 

@@ -15,6 +15,7 @@ import functools
 import time
 import weakref
 from pathlib import Path
+from traceback import format_exception
 
 import numpy as np
 import torch
@@ -248,9 +249,10 @@ class Recorder:
         self._step_hooks[handle.id] = hook
         return handle
 
-    def report_problem(self, what: str, exc: BaseException | None = None) -> None:
-        """Report a problem once (RecorderWarning; raised in strict mode); recording continues."""
-        self._fail(what, exc, stop=False)
+    def report_problem(self, what: str, exc: BaseException | None = None, *, traceback: bool = False) -> None:
+        """Report a problem once (RecorderWarning; raised in strict mode); recording continues. traceback:
+        the warning shows where `exc` was raised (user code such as a step_fn)."""
+        self._fail(what, exc, stop=False, traceback=traceback)
 
     def note(self, **entries) -> None:
         """Add entries to the recording's metadata (written by the writer thread, in order)."""
@@ -313,9 +315,10 @@ class Recorder:
         return f"Recorder({str(self.recording_path)!r}, step {self.step}, {len(self._tensors)} tensors, {state})"
 
     # --- reporting ------------------------------------------------------------------------------
-    def _fail(self, what: str, exc: BaseException | None = None, *, stop: bool = True):
+    def _fail(self, what: str, exc: BaseException | None = None, *, stop: bool = True, traceback: bool = False):
         """Report a recorder problem once; stop recording unless `stop` is False; raise in strict mode."""
-        self._reports.problem(what, exc, stop=stop, strict=self.strict)
+        detail = "".join(format_exception(exc)) if traceback and exc is not None else ""
+        self._reports.problem(what, exc, stop=stop, strict=self.strict, detail=detail)
         if stop:
             self._failed = True
             try:                     # the previous step's row is complete: keep it
@@ -511,6 +514,7 @@ class Recorder:
         probes, self._backward.probes = self._backward.probes, None
         result = trained_loss.verify(self.model, self._tensors, before, probes, taken, self.criterion, self.step_fn,
                                      self.pause, self.step)
+        exc = result.pop("exception", None)        # the user's code raised: the warning shows where
         self._loss_checks = (self._loss_checks + [result])[-20:]
         self.loss_rebuildable = result["verdict"] in (trained_loss.EXACT, trained_loss.CLOSE)
         self.note(trained_loss={"rebuildable": self.loss_rebuildable,
@@ -518,7 +522,7 @@ class Recorder:
                                 "checks": self._loss_checks})
         problem = trained_loss.problem(result, estimates=bool(self.options.curvature_every or self.options.noise_every))
         if problem:
-            self.report_problem(problem)
+            self.report_problem(problem, exc, traceback=exc is not None)
 
     def _finalize_rows(self, force: bool = False):
         """Hand finished rows to the writer, in step order. The open row (the last step's, kept for a

@@ -99,12 +99,19 @@ def rebuilt_gradient(model, params: list, micro_batches: list[dict], scales: lis
         with autocast_context(autocast):
             loss = loss_fn(model, micro_batch)
         objective = scaled(loss, scale)
-        if not (isinstance(objective, torch.Tensor) and objective.requires_grad):
-            raise ValueError("the rebuilt loss is not a tensor that requires grad (it ran backward itself, or "
-                             "returned a number)")
+        if not (isinstance(objective, torch.Tensor) and objective.numel() == 1 and objective.requires_grad):
+            raise ValueError(f"the rebuilt loss must be a scalar tensor that requires grad (the mean loss of the "
+                             f"micro-batch, from model(...) with gradients on), got {_described(loss)}")
         grads = torch.autograd.grad(objective, params, allow_unused=True)
         total = [g if t is None else (t if g is None else t + g) for t, g in zip(total, grads)]
     return total
+
+
+def _described(value) -> str:
+    if not isinstance(value, torch.Tensor):
+        return f"a {type(value).__name__} ({value!r:.40})"
+    return (f"a tensor of shape {tuple(value.shape)}, dtype {str(value.dtype).removeprefix('torch.')}, "
+            + ("requiring grad" if value.requires_grad else "without grad (no autograd graph)"))
 
 
 def compare_probes(recorded: list, rebuilt: list, probes: list) -> dict:
@@ -193,7 +200,7 @@ def verify(model, tensors, before, probes, taken, criterion, step_fn, pause, ste
         try:
             result.update(check_step(model, tensors, before, probes, taken, kind, criterion, step_fn, pause))
         except Exception as exc:           # the rebuild itself failed: it is not the trained loss
-            result.update(verdict=DIFFERENT, error=f"{type(exc).__name__}: {exc}")
+            result.update(verdict=DIFFERENT, error=f"{type(exc).__name__}: {exc}", exception=exc)
     elif kind is not None:
         result["why"] = "no backward pass of the recorded tensors was seen at this step"
     return result
