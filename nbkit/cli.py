@@ -10,6 +10,7 @@ import argparse
 import sys
 
 from nbkit.commands import demo, findings, info, replay, report
+from nbkit.version import __version__
 
 COMMANDS = {
     "demo": (demo, "record, replay and diagnose the demo scenario; write an HTML report"),
@@ -22,6 +23,8 @@ COMMANDS = {
 
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(prog="nbkit", description="Training-run forensics for PyTorch.")
+    # argparse's "version" action prints the string and exits 0 (Python docs, argparse "action")
+    parser.add_argument("--version", action="version", version=f"nbkit {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name, (module, help_text) in COMMANDS.items():
         module.add_arguments(sub.add_parser(name, help=help_text, description=help_text))

@@ -9,6 +9,7 @@ import numpy as np
 
 from nbkit.analyze.curvature import keyframe_sharpness
 from nbkit.analyze.findings import find
+from nbkit.store import export
 from nbkit.store.annotate import write_series
 from nbkit.store.reader import RecordingReader
 
@@ -20,6 +21,17 @@ class Recording(RecordingReader):
         """The automatic findings (heuristics: verify each with a replay); keyword arguments override
         the thresholds of nbkit.analyze.findings.Thresholds."""
         return find(self, **thresholds)
+
+    def frame(self, q: str | None = None, *, dropna: bool = True):
+        """pandas DataFrame of quantity `q`: index step, one column per tensor (run.series(q)); no `q`:
+        a long table step, tensor, quantity, value (NaN values left out unless dropna=False).
+        Needs pandas: pip install 'nbkit[data]'. See nbkit.store.export.frame."""
+        return export.frame(self, q, dropna=dropna)
+
+    def to_xarray(self):
+        """xarray Dataset of the committed steps (dims step, tensor, group; probes and per-unit profiles
+        as their own variables). Needs xarray: pip install 'nbkit[data]'. See nbkit.store.export."""
+        return export.to_xarray(self)
 
     def curvature(self, model, step_fn, batch) -> dict[int, float]:
         """Estimate sharpness at every keyframe that has a recorded row, on `batch`, and store it in the
