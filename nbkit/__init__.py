@@ -15,6 +15,9 @@ from nbkit.record.distributed import record_local_gradients
 from nbkit.record.options import RecordOptions
 from nbkit.record.recorder import Recorder
 from nbkit.recording import Recording, load
+from nbkit.analyze.remedies import Remedy
+from nbkit.replay.changes import Change
+from nbkit.replay.remedies import try_remedies
 from nbkit.replay.replay import replay
 from nbkit.version import __version__
 
@@ -39,7 +42,7 @@ __all__ = [
     # inside the trainers practitioners use (extras nbkit[transformers], nbkit[lightning])
     "transformers_callback", "lightning_callback",
     # replays and their comparison
-    "replay", "compare", "landscape",
+    "replay", "compare", "landscape", "try_remedies", "Remedy", "Change",
     # analysis
     "sharpness", "noise_scale",
     # errors

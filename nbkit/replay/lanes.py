@@ -13,7 +13,8 @@ from nbkit.measure.fingerprint import fingerprint
 from nbkit.record.options import RecordOptions
 from nbkit.record.recorder import Recorder
 from nbkit.record.step_inputs import rng_digest
-from nbkit.replay import restore
+from nbkit.replay import changes, restore
+from nbkit.replay.changes import Change
 from nbkit.store.layout import OPTIMIZER_ONLY_LAYER
 
 
@@ -37,6 +38,8 @@ class Lane:
     handles: list = field(default_factory=list)
     mismatches: list = field(default_factory=list)
     rng_digest: float | None = None  # CRC32 of the CPU random state at this step's first training forward
+    change: object = None            # nbkit.replay.changes.Change: the recorded optimizer with one change
+    recorded_groups: int = 0         # the recorded optimizer's groups (a change may add one)
 
 
 def optimizer_only_tensors(lane, meta) -> dict:
@@ -47,14 +50,18 @@ def optimizer_only_tensors(lane, meta) -> dict:
 
 
 def make_lane(name, factory, model, meta, model_state, optimizer_state, extra_params, carried=()) -> Lane:
-    """A lane for `factory` (None: the recorded optimizer with the keyframe's state); carried: per group,
-    the settings a factory's groups carry (restore.carried_settings)."""
+    """A lane for `factory` (None: the recorded optimizer with the keyframe's state; a Change: the same with
+    that change, nbkit.replay.changes); carried: per group, the settings a factory's groups carry
+    (restore.carried_settings)."""
     copy = copy_model(model)
     copy.load_state_dict(model_state)
     copy.train()
     groups = restore.parameter_groups(meta, copy, restore.fresh_extra_params(extra_params))
-    if factory is None:
+    change = factory if isinstance(factory, Change) else None
+    if factory is None or change is not None:
         optimizer = restore.recorded_optimizer(meta, groups, optimizer_state)
+        if change is not None:
+            changes.build(change, optimizer, copy)
     else:
         try:
             optimizer = restore.factory_optimizer(factory, groups, list(carried) or [{} for _ in groups])
@@ -65,7 +72,8 @@ def make_lane(name, factory, model, meta, model_state, optimizer_state, extra_pa
         if not isinstance(optimizer, torch.optim.Optimizer):
             raise ReplayError(f"The optimizer factory {name!r} returned {type(optimizer).__name__}, not a "
                               "torch.optim.Optimizer")
-    lane = Lane(name, copy, optimizer, recorded=factory is None, closure=restore.needs_closure(optimizer))
+    lane = Lane(name, copy, optimizer, recorded=factory is None or change is not None,
+                closure=restore.needs_closure(optimizer), change=change, recorded_groups=len(groups))
 
     def collect(module, args, kwargs):
         if module.training and torch.is_grad_enabled():

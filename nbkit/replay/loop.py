@@ -26,7 +26,7 @@ from nbkit.measure.fingerprint import combine, describe_difference, matches
 from nbkit.record.trained_loss import autocast_context, clip_gradients, make_criterion, micro_batch_loss, scaled
 from nbkit.recording import load
 from nbkit.store.batches import KeptStep
-from nbkit.replay import restore
+from nbkit.replay import changes, restore
 from nbkit.replay.fidelity import compare_recordings
 from nbkit.replay.lanes import detach, lane_recorder, make_lane, optimizer_only_tensors
 from nbkit.replay.plan import DATALOADER_ADVICE, Plan
@@ -114,7 +114,7 @@ def _run(plan, run, model, step_fn, batches, names, progress, threads_note, posi
         info = {"fingerprint_mismatches": lane.mismatches[:MISMATCHES_KEPT],
                 "fingerprint_mismatch_count": len(lane.mismatches),
                 "targets_checked": lane.saw_criterion or meta.get("criterion") is None}
-        if lane.recorded:
+        if lane.recorded and lane.change is None:
             info["fidelity"] = compare_recordings(run, load(paths[lane.name]))
         replay_meta = dict(load(paths[lane.name]).meta["replay"], **info)
         update_meta(paths[lane.name], replay=replay_meta)
@@ -198,7 +198,8 @@ def _loop(lanes, recorded, step_fn, fetch, first, end, before_step, strict, bar)
             if several:
                 restore.set_rng(lane.rng)
             _step(lane, step_fn, batch, before_step, step, recorded, row)
-            _check_fingerprint(lane, recorded.fingerprints[row], step, strict, isinstance(batch, KeptStep))
+            if lane.change is None or not lane.change.data:     # a data remedy changes the batches on purpose
+                _check_fingerprint(lane, recorded.fingerprints[row], step, strict, isinstance(batch, KeptStep))
             _check_random_state(lane, recorded.rng_digests[row], step, strict)
             if several:
                 lane.rng = restore.get_rng()
@@ -265,6 +266,8 @@ def _kept_gradients(lane, loss_fn, kept: KeptStep):
     rebuild = getattr(loss_fn, "rebuild", None)
     total = 0.0
     for micro_batch, scale in zip(kept.micro_batches, kept.scales):
+        if lane.change is not None:
+            micro_batch = changes.scaled_inputs(lane.change, micro_batch)
         if lane.recorder is not None and rebuild == "training_step":
             lane.recorder.keep_training_step(micro_batch["args"], micro_batch["kwargs"])
         with autocast_context(kept.autocast):
@@ -282,10 +285,12 @@ def _before_update(lane, before_step, step, recorded, row):
     then, for the recorded optimizer, the recorded settings of the step."""
     if before_step is not None:
         before_step(lane.model, lane.optimizer, step)
-    else:
+    elif not (lane.change is not None and changes.clip(lane.change, lane.model)):
         clip_gradients(lane.model, lane.optimizer, recorded.clip, float(recorded.clip_factor[row]))
     if lane.recorded:
         _apply_settings(lane.optimizer, recorded, row)
+    if lane.change is not None:
+        changes.adjust(lane.change, lane.optimizer, lane.recorded_groups)
 
 
 def _apply_settings(optimizer, recorded, row):

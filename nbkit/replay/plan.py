@@ -9,6 +9,7 @@ import torch
 
 from nbkit.errors import ReplayError
 from nbkit.replay import restore
+from nbkit.replay.changes import Change
 from nbkit.store.files import is_recording, read_meta
 
 RECORDED = "recorded"    # the key of the recorded optimizer's replay
@@ -86,8 +87,9 @@ def make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before
     for name, factory in factories.items():
         if not isinstance(name, str) or not name or "/" in name or "\\" in name or name.startswith("."):
             raise ReplayError(f"Invalid replay name {name!r}: names become folder names; use plain words")
-        if factory is not None and not callable(factory):
-            raise ReplayError(f"optimizers[{name!r}] must be a factory(groups) -> optimizer, got {factory!r}")
+        if factory is not None and not callable(factory) and not isinstance(factory, Change):
+            raise ReplayError(f"optimizers[{name!r}] must be a factory(groups) -> optimizer, a "
+                              f"nbkit.Change(...) of the recorded optimizer or None, got {factory!r}")
     root = Path(f"{run.path}.replays") if to is None else Path(to)
     targets = {name: str(root / name) for name in factories}
     if record:
