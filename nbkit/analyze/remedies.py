@@ -39,7 +39,7 @@ def remedies_for(finding, meta: dict, grad_norm: np.ndarray | None = None, steps
     optimizer = (meta.get("optimizer") or {}).get("class", "")
     if kind in ("over-stability-limit", "oversized-updates"):
         return [Remedy("lower-lr", f"the recorded learning-rate schedule × {s} from the keyframe on", {"lr_scale": s})
-                for s in (0.5, 0.25)]
+                for s in (0.5, 0.25, 0.1)]
     if kind == "grad-spike":
         norm = _running_median(grad_norm, steps, finding.first_step)
         if not np.isfinite(norm) or norm <= 0:

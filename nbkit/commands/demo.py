@@ -25,6 +25,9 @@ def _say(message: str) -> None:
     print(message, flush=True)
 
 
+REMEDIED = ("over-stability-limit", "orphan", "eps-dominated")     # the planted faults' findings
+
+
 def spike_start(findings, run) -> int:
     """The step where the run's trouble begins: the earliest stability-limit or spike finding."""
     kinds = ("over-stability-limit", "grad-spike")
@@ -36,7 +39,7 @@ def run_demo(out: Path, steps: int | None = None) -> Path:
     out.mkdir(parents=True, exist_ok=True)
     steps = steps or scenario.STEPS
     began = time.perf_counter()
-    _say(f"1/4 recording the first run: {steps} Adam steps with curvature estimates -> {out / 'first-run'}")
+    _say(f"1/5 recording the first run: {steps} Adam steps with curvature estimates -> {out / 'first-run'}")
     run, batches = scenario.train_first_run(out / "first-run", steps=steps)
     findings = run.findings()
     for f in findings:
@@ -45,16 +48,26 @@ def run_demo(out: Path, steps: int | None = None) -> Path:
     trouble = spike_start(findings, run)
     keyframes = [k for k in run.keyframes if k < trouble] or run.keyframes[:1]
     start = keyframes[-1]
-    _say(f"2/4 replaying from keyframe {start} (last before step {trouble}) with "
+    _say(f"2/5 replaying from keyframe {start} (last before step {trouble}) with "
          f"{', '.join(scenario.REPLAY_OPTIMIZERS)} on the same mini-batches")
     replays = nbkit.replay(run, scenario.make_model(), scenario.step_fn, batches,
                            optimizers=dict(scenario.REPLAY_OPTIMIZERS), start=start,
                            steps=int(run.steps[-1]) + 1 - start, to=out / "replays", progress=True)
-    _say("3/4 slicing the loss landscape through the start point and two runs' end points")
+    _say("3/5 slicing the loss landscape through the start point and two runs' end points")
     landscape_runs = [run, replays["sgd-momentum"]]
     landscape = nbkit.landscape(scenario.make_model(), scenario.step_fn, batches(start), landscape_runs,
                                 resolution=21)
-    _say("4/4 writing the report")
+    _say("4/5 trying the remedies of the findings: each replayed beside the unchanged control from the keyframe "
+         "before it, on the kept batches")
+    tried = []
+    for finding in findings:
+        if finding.kind in REMEDIED:
+            outcome = nbkit.try_remedies(run, finding, scenario.make_model(), to=out / "remedies" /
+                                         f"{finding.kind}-{finding.first_step}", progress=False)
+            tried.append(outcome)
+            for line in outcome.table().splitlines():
+                _say("    " + line)
+    _say("5/5 writing the report")
     commands = ["make demo                       # or: nbkit demo --out demo-out",
                 f"nbkit findings {out / 'first-run'}",
                 f"nbkit report {out / 'first-run'} " + " ".join(str(r.path) for r in replays.values())
@@ -62,7 +75,7 @@ def run_demo(out: Path, steps: int | None = None) -> Path:
                 "jupyter lab notebooks/01-tour.ipynb"]
     report = write_report(
         [run, *replays.values()], out / "report.html", title="nbkit demo: greenhouse leaf temperature",
-        findings={str(run.path): findings}, landscape=landscape, commands=commands,
+        findings={str(run.path): findings}, landscape=landscape, commands=commands, remedies=tried,
         intro=("A small network predicts a greenhouse's leaf temperature one hour ahead from twelve sensor "
                "readings (data generated in code). Its first run has planted faults: a calibration offset "
                "left out of the optimizer, light sensors in the wrong unit, and a learning-rate warm-up "

@@ -103,12 +103,12 @@ def try_remedies(run, finding, model, step_fn=None, batches=None, steps=None, st
     control = replays[CONTROL]
     window = (finding.first_step, start + steps - 1)
     control_loss = _loss_over(control, *window)
-    control_fires = _still_fires(control, finding, window)
+    control_fires = _still_fires(control, finding, window, run)
     for name, remedy in names.items():
         recording = replays[name]
         loss = _loss_over(recording, *window)
         difference = paired_difference(loss, control_loss)
-        fires = _still_fires(recording, finding, window)
+        fires = _still_fires(recording, finding, window, run)
         verdicts.append(RemedyVerdict(remedy, fires, _mean(loss), _mean(control_loss), difference,
                                       outcome_of(difference, fires, loss), replay=recording))
     verdicts.sort(key=lambda v: next((i for i, r in enumerate(proposed) if r is v.remedy), len(proposed)))
@@ -152,17 +152,19 @@ def _mean(values) -> float:
     return float(values.mean()) if len(values) else np.nan
 
 
-def _still_fires(recording, finding, window) -> bool:
+def _still_fires(recording, finding, window, parent=None) -> bool:
     """The finding's kind is found again in the window. Replays estimate no sharpness, so for
-    over-stability-limit this is its loss condition: the loss's median over the window's last
-    stability_window steps above stability_rise × its median over the first ones (the divergence it names)."""
+    over-stability-limit this is the rule's loss condition at the finding's first step s: the loss's
+    median over steps s+1 … s+stability_window above stability_rise × its median over the window up to s
+    (taken from the parent where the replay starts at s), or a non-finite loss."""
     if finding.kind == "over-stability-limit":
-        t = Thresholds()
-        loss = _loss_over(recording, *window)
-        w = t.stability_window
-        if len(loss) < 2 * w:
+        t, s = Thresholds(), finding.first_step
+        after = _loss_over(recording, s + 1, s + t.stability_window)
+        source = recording if recording.steps[0] <= s - t.stability_window + 1 or parent is None else parent
+        before = _loss_over(source, s - t.stability_window + 1, s)
+        if not len(after) or not len(before):
             return False
-        return bool(np.nanmedian(loss[-w:]) > t.stability_rise * np.nanmedian(loss[:w]) or not np.isfinite(loss).all())
+        return bool(not np.isfinite(after).all() or np.median(after) > t.stability_rise * np.median(before))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         found = find(recording)

@@ -134,12 +134,12 @@ def _run_table(run) -> str:
 
 
 def write_report(runs, path, *, title: str = "nbkit report", findings=None, landscape=None,
-                 commands: list[str] | None = None, intro: str = "") -> Path:
+                 commands: list[str] | None = None, intro: str = "", remedies=None) -> Path:
     """Write the report of `runs` (Recordings) to `path`; returns the path.
 
     findings: {run path: [Finding]} to reuse already computed findings (else run.findings()).
     landscape: a landscape view (anything with .to_png) to include. commands: shell lines that
-    reproduce the report.
+    reproduce the report. remedies: nbkit.try_remedies results, shown as a table each.
     """
     runs = list(runs)
     parts = [f"<h1>{html.escape(title)}</h1>",
@@ -177,6 +177,8 @@ def write_report(runs, path, *, title: str = "nbkit report", findings=None, land
         parts.append("<h2>Loss landscape slice</h2>")
         parts.append(_figure("Loss on the plane through the start point and the runs' end points",
                              _png_data_uri(landscape)))
+    if remedies:
+        parts.append("<h2>Remedies tried</h2>" + "".join(remedies_table(t) for t in remedies))
     if commands:
         parts.append("<h2>Reproduce</h2><pre>" + html.escape("\n".join(commands)) + "</pre>")
     page = (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{html.escape(title)}</title>"
@@ -185,3 +187,23 @@ def write_report(runs, path, *, title: str = "nbkit report", findings=None, land
     path.parent.mkdir(parents=True, exist_ok=True)
     path.write_text(page, encoding="utf-8")
     return path
+
+
+def remedies_table(tried) -> str:
+    """One finding's remedies (nbkit.try_remedies) as an HTML table: outcome, whether the finding is still
+    found in the window, loss against the unchanged control and the 95 % interval of their difference."""
+    f = tried.finding
+    head = (f"<p><b>{html.escape(f.kind)}</b> from step {f.first_step}: steps {tried.start}-"
+            f"{tried.start + tried.steps - 1} replayed from keyframe {tried.start}; the control (the recorded "
+            f"optimizer, unchanged) {'still shows it' if tried.control_still_fires else 'does not show it'}. "
+            "A heuristic over this window: confirm before changing the run.</p>")
+    rows = []
+    for v in tried.verdicts:
+        mean, low, high = v.difference
+        fires = "-" if v.still_fires is None else ("still found" if v.still_fires else "gone")
+        numbers = (f"<td>{v.loss:.4g}</td><td>{v.control_loss:.4g}</td><td>{mean:+.3g} [{low:+.3g}, {high:+.3g}]</td>"
+                   if v.outcome not in ("skipped", "failed") else f"<td colspan='3'>{html.escape(v.why)}</td>")
+        rows.append(f"<tr><td>{html.escape(v.remedy.description)}</td><td>{html.escape(v.outcome)}</td>"
+                    f"<td>{fires}</td>{numbers}</tr>")
+    return (head + "<table><tr><th>remedy</th><th>outcome</th><th>finding</th><th>loss</th><th>control loss</th>"
+            "<th>per-step difference [95 % interval]</th></tr>" + "".join(rows) + "</table>")
