@@ -16,6 +16,7 @@ from nbkit.record.options import RecordOptions
 from nbkit.record.recorder import Recorder
 from nbkit.recording import Recording, load
 from nbkit.replay.replay import replay
+from nbkit.replay.step_quality import step_quality
 from nbkit.version import __version__
 
 # loaded on first use: the views, and the trainer callbacks with their optional frameworks
@@ -41,7 +42,7 @@ __all__ = [
     # replays and their comparison
     "replay", "compare", "landscape",
     # analysis
-    "sharpness", "noise_scale",
+    "sharpness", "noise_scale", "step_quality",
     # errors
     "NbkitError", "RecorderError", "RecorderWarning", "RecordingError", "RecordingWarning", "ReplayError",
     "__version__",
