@@ -19,6 +19,7 @@ from nbkit.analyze.remedies import Remedy
 from nbkit.replay.changes import Change
 from nbkit.replay.remedies import try_remedies
 from nbkit.replay.replay import replay
+from nbkit.replay.step_quality import step_quality
 from nbkit.version import __version__
 
 # loaded on first use: the views, and the trainer callbacks with their optional frameworks
@@ -44,7 +45,7 @@ __all__ = [
     # replays and their comparison
     "replay", "compare", "landscape", "try_remedies", "Remedy", "Change",
     # analysis
-    "sharpness", "noise_scale",
+    "sharpness", "noise_scale", "step_quality",
     # errors
     "NbkitError", "RecorderError", "RecorderWarning", "RecordingError", "RecordingWarning", "ReplayError",
     "__version__",

@@ -9,8 +9,10 @@ import numpy as np
 
 from nbkit.analyze.curvature import keyframe_sharpness
 from nbkit.analyze.findings import find
+from nbkit.analyze.step_quality import StepQuality
 from nbkit.store import export
 from nbkit.store.annotate import write_series
+from nbkit.store.quality import read_step_quality
 from nbkit.store.reader import RecordingReader
 
 
@@ -41,6 +43,12 @@ class Recording(RecordingReader):
         write_series(self.path, "sharpness", rows, np.array(list(values.values()), dtype=np.float32))
         self.refresh()
         return values
+
+    def step_quality(self) -> StepQuality | None:
+        """The step quality stored by nbkit.step_quality (ρ, predicted and actual change per step; which
+        steps have values: meta["step_quality"]), or None where none was computed."""
+        arrays = read_step_quality(self.path)
+        return None if arrays is None else StepQuality(tensors=list(self.tensors), **arrays)
 
 
 def load(path) -> Recording:

@@ -112,6 +112,10 @@ def test_series_equal_their_definitions_in_numpy(tmp_path):
             np.testing.assert_allclose(series("update_ratio"), np.linalg.norm(delta) / np.linalg.norm(theta), rtol=1e-5)
             cos = -(delta @ g) / (np.linalg.norm(delta) * np.linalg.norm(g))
             np.testing.assert_allclose(series("update_grad_cosine"), cos, rtol=1e-4, atol=1e-6)
+            # first-order predicted change of the loss from this tensor: g·Δθ (negative: a descent step)
+            np.testing.assert_allclose(series("predicted_change"), g @ delta, rtol=1e-4,
+                                       atol=1e-6 * np.linalg.norm(g) * np.linalg.norm(delta))
+            assert series("predicted_change") < 0 or not np.any(delta)
             if s:
                 g0 = seen[s - 1][1][tensor].ravel()
                 np.testing.assert_allclose(series("grad_cosine"), g0 @ g / (np.linalg.norm(g0) * np.linalg.norm(g)),

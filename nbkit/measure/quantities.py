@@ -16,6 +16,7 @@ QUANTITIES = (
     "zero_grad_share", "lost_update_share", "dead_rows", "nonfinite",
     "weight_nonfinite", "update_nonfinite", "state_nonfinite", "grad_missing",
     "sharpness", "noise_scale",
+    "predicted_change",
 )
 
 # Quantities that are shares of coordinates, in [0, 1]

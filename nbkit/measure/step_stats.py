@@ -16,7 +16,7 @@ NAN = float("nan")
 # What the recording states of its series: computed over every coordinate, or over the sampled ones
 EXACT_QUANTITIES = ["grad_norm", "grad_rms", "grad_max", "weight_norm", "update_norm", "update_ratio", "grad_cosine",
                     "update_grad_cosine", "dead_rows", "nonfinite", "weight_nonfinite", "update_nonfinite",
-                    "grad_missing"]
+                    "grad_missing", "predicted_change"]
 SAMPLED_QUANTITIES = ["gain_median", "accelerated", "damped", "reversed", "momentum_factor_median",
                       "scale_factor_median", "residual_median", "sign_flip", "eps_share", "zero_grad_share",
                       "lost_update_share", "state_nonfinite", "histograms"]
@@ -78,6 +78,9 @@ def whole_tensor_statistics(grads, minus_updates, previous_grads, previous_norms
     dots = torch.stack(update_dot).double() if T else empty
     previous_dots = torch.stack(previous_dot).double() if T else empty
     out["update_grad_cosine"] = cosine(dots, update_norm, grad_norm)
+    # g·Δθ = −(−Δθ)·g: the first-order change of the loss the step predicts from this tensor (the
+    # gradient the optimizer stepped with, so after clipping: ÷ the clip factor for the loss's own)
+    out["predicted_change"] = -dots
     out["grad_cosine"] = cosine(previous_dots, grad_norm, previous_norms)
     numel = torch.tensor([g.numel() for g in grads], dtype=torch.float64)
     out["grad_rms"] = grad_norm / numel.sqrt()

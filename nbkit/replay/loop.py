@@ -183,6 +183,12 @@ def _progress(progress, total, names, position=None):
     return tqdm(total=total, unit="step", desc=f"replay {', '.join(names)}", leave=True, position=position)
 
 
+def advance(lanes, recorded, step_fn, fetch, first, end, before_step=None, strict=True):
+    """Step every lane from step `first` to `end` − 1 in lockstep, each step in the module docstring's order,
+    checking batch fingerprints and random states against `recorded` (RecordedSteps)."""
+    _loop(lanes, recorded, step_fn, fetch, first, end, before_step, strict, None)
+
+
 def _loop(lanes, recorded, step_fn, fetch, first, end, before_step, strict, bar):
     """Steps first..end-1 of every lane, in lockstep on the same batches."""
     several = len(lanes) > 1

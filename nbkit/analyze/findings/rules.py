@@ -10,7 +10,7 @@ from dataclasses import dataclass
 from typing import Callable
 
 from nbkit.analyze.finding import Finding
-from nbkit.analyze.findings import configuration, gradients, loss, nonfinite, units, updates
+from nbkit.analyze.findings import configuration, gradients, loss, nonfinite, quality, units, updates
 from nbkit.analyze.findings.data import FindingInputs
 from nbkit.analyze.findings.thresholds import Thresholds, thresholds_from_keywords
 
@@ -42,6 +42,7 @@ RULES = (
     Rule(("over-stability-limit",), loss.over_stability_limit),
     Rule(("coupled-decay",), configuration.coupled_decay, without_rows=True),
     Rule(("noise-scale",), configuration.noise_scale),
+    Rule(("step-overran",), quality.step_overran),
 )
 
 SEVERITY_RANK = {"error": 0, "warning": 1, "info": 2}

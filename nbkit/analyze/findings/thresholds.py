@@ -60,6 +60,10 @@ class Thresholds:
     stability_window: int = 10        # ... (steps in each of the two windows)
     stability_far: float = 4.0        # or far above the limit with the loss rising at all
     noise_factor: float = 10.0        # batch size 10× below / above the gradient noise scale
+    overran_rho: float = 0.1          # step-overran: first-order ρ far below Nocedal & Wright's 1/4 ...
+    overran_window: int = 5           # ... sustained over this many computed steps (or ρ < 0 at any one)
+    overran_noise: float = 1e-4       # ... only steps predicted to change the loss by more than 1e-4 × |loss|
+                                      # (float32 losses round at about 1e-7 relative: common practice margin)
 
 
 # Old threshold name -> its new name. The finding kind update-ratio became oversized-updates and
