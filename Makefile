@@ -38,6 +38,8 @@ bench: $(STAMP)
 	$(PY) benchmarks/explorer_latency.py
 	$(PY) benchmarks/replay_speed.py
 	$(PY) benchmarks/analysis_cost.py
+	$(PY) benchmarks/profile_cost.py
+	$(PY) benchmarks/step_quality_cost.py
 
 # The README's pictures, rendered by the views themselves from the demo scenario.
 docs: $(STAMP)
