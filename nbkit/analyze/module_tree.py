@@ -102,7 +102,7 @@ def tree_rows(tree: ModuleTree, expanded: set[str] | frozenset = frozenset(), te
             rows.append(Row(b, block.tensors[0], block.labels[0]))
         elif block.name in expanded:
             rows.append(Row(b, None, f"▾ {block.name}"))
-            rows += [Row(b, k, "   " + label.split(SEPARATOR, 1)[-1]) for k, label in zip(block.tensors, block.labels)]
+            rows += [Row(b, k, "· " + label.split(SEPARATOR, 1)[-1]) for k, label in zip(block.tensors, block.labels)]
         else:
             rows.append(Row(b, None, f"▸ {block.name} ({len(block.tensors)})"))
     return rows

@@ -63,7 +63,7 @@ class Explorer(GuardedView, widgets.VBox):
         self._closed = False
         self.follower = None
         self.timeline = Timeline(self.data, self._pick_step)
-        self.layer_map = LayerMap(self.data, self._pick_tensor)
+        self.layer_map = LayerMap(self.data, self._pick_tensor, self.toggle_block)
         self.coordinates = CoordinateView(self.data)
         self.profile = ProfileView(run)
         for part in self._parts():
@@ -148,6 +148,19 @@ class Explorer(GuardedView, widgets.VBox):
         self.tensor_menu.add_class("nbkit-tensor")
         widgets.link((self.tensor_menu, "value"), (self, "tensor"))
         self.slider.observe(lambda c: self.guard(setattr, self, "step", int(c["new"])), "value")
+        self.filter_box = widgets.Text(value="", placeholder="filter tensors by name", description="filter",
+                                       continuous_update=True, layout=widgets.Layout(width="260px"))
+        self.filter_box.add_class("nbkit-filter")
+        self.filter_box.observe(lambda c: self.guard(self._set_rows, dict(filter_text=c["new"])), "value")
+        self.aggregate_menu = widgets.Dropdown(options=[("block: max", "max"), ("block: median", "median"),
+                                                        ("block: worst tensor", "worst")], value="max",
+                                               layout=widgets.Layout(width="170px"))
+        self.aggregate_menu.add_class("nbkit-aggregate")
+        self.aggregate_menu.observe(lambda c: self.guard(self._set_rows, dict(aggregate=c["new"])), "value")
+        self.per_row_toggle = widgets.ToggleButton(value=False, description="scale each row",
+                                                   layout=widgets.Layout(width="120px"))
+        self.per_row_toggle.add_class("nbkit-per-row")
+        self.per_row_toggle.observe(lambda c: self.guard(self._set_rows, dict(per_row=c["new"])), "value")
         self.coordinate_summary = widgets.HTML()
         self.coordinate_summary.add_class("nbkit-coordinate-summary")
         self.profile_summary = widgets.HTML()
@@ -157,7 +170,8 @@ class Explorer(GuardedView, widgets.VBox):
         controls = widgets.HBox([self.play, self.previous_button, self.slider, self.next_button, self.speed,
                                  self.log_toggle, self.step_label])
         menus = widgets.HBox([self.quantity_menu, self.tensor_menu, self.coordinate_summary])
-        menus = widgets.VBox([menus, self.detail.box])
+        rows = widgets.HBox([self.filter_box, self.aggregate_menu, self.per_row_toggle])
+        menus = widgets.VBox([menus, rows, self.detail.box])
         middle = widgets.HBox([self.layer_map.canvas, self.coordinates.canvas],
                               layout=widgets.Layout(flex_flow="row wrap"))   # narrow pages stack them
         profile = widgets.HBox([self.profile.canvas, self.profile_summary],
@@ -175,6 +189,29 @@ class Explorer(GuardedView, widgets.VBox):
 
     def _pick_tensor(self, tensor):
         self.guard(setattr, self, "tensor", tensor)
+
+    def toggle_block(self, block: str) -> None:
+        """Expand the layer map's block `block` (e.g. "layer3.0") to one row per tensor, or collapse it."""
+        expanded = set(self.layer_map.expanded)
+        expanded.symmetric_difference_update({block})
+        self.guard(self._set_rows, dict(expanded=expanded))
+
+    def expand(self, block: str) -> None:
+        self.guard(self._set_rows, dict(expanded=self.layer_map.expanded | {block}))
+
+    def collapse(self, block: str) -> None:
+        self.guard(self._set_rows, dict(expanded=self.layer_map.expanded - {block}))
+
+    def _set_rows(self, change: dict) -> None:
+        """New rows (expand, filter) or colour scale in the layer map: it alone is redrawn; the cursor stays."""
+        if "expanded" in change:
+            names = {b.name for b in self.layer_map.tree.blocks}
+            unknown = set(change["expanded"]) - names
+            if unknown:
+                raise ValueError(f"No block named {sorted(unknown)[0]!r} in the layer map; blocks are "
+                                 f"{', '.join(sorted(names)[:8])} …")
+        self.layer_map.set_rows(**change)        # keeps the cursor and its values
+        self.layer_map.blitter.full()
 
     def _pick_finding(self, finding):
         def jump():

@@ -1,0 +1,122 @@
+"""The explorer's layer map as a module tree on a ResNet-18-named recording: collapsed blocks,
+distinct labels, expand on click, the text filter; and the comparison's map in the same order."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+
+import nbkit
+from tests.test_module_tree import resnet18_names
+
+
+class Named(torch.nn.Module):
+    """A module whose parameters carry the given dotted names (small shapes; no torchvision)."""
+
+    def __init__(self, names):
+        super().__init__()
+        for name in names:
+            *path, leaf = name.split(".")
+            module = self
+            for part in path:
+                if not hasattr(module, part):
+                    module.add_module(part, torch.nn.Module())
+                module = getattr(module, part)
+            module.register_parameter(leaf, torch.nn.Parameter(torch.randn(3, 2) if leaf == "weight" else torch.randn(3)))
+
+    def forward(self, x):
+        return sum((p * x).square().mean() * (k + 1) for k, p in enumerate(self.parameters()))
+
+
+@pytest.fixture(scope="module")
+def resnet_path(tmp_path_factory):
+    torch.manual_seed(0)
+    path = tmp_path_factory.mktemp("tree") / "run"
+    model = Named(resnet18_names())
+    opt = torch.optim.Adam(model.parameters(), lr=1e-2)
+    with nbkit.record(model, opt, path, probes=4, keyframe_every=100, profiles=False) as rec:
+        for _ in range(12):
+            opt.zero_grad()
+            loss = model(torch.tensor(0.5))
+            loss.backward()
+            rec.loss(loss)
+            opt.step()
+    return path
+
+
+@pytest.fixture(scope="module")
+def view(resnet_path):
+    v = nbkit.explore(resnet_path)
+    v.wait_for_findings(60)
+    yield v
+    v.close()
+
+
+def _click_row(view, k):
+    from matplotlib.backend_bases import MouseEvent
+
+    lm = view.layer_map
+    px, py = lm.map_axes.transData.transform((float(view.data.steps[1]), k))
+    lm.canvas.callbacks.process("button_press_event", MouseEvent("button_press_event", lm.canvas, px, py, button=1))
+
+
+def test_blocks_start_collapsed_with_distinct_labels(view):
+    labels = [t.get_text() for t in view.layer_map.map_axes.get_yticklabels()]
+    assert len(view.layer_map.rows) == 11
+    assert "▸ layer3.0 (9)" in labels and "▸ layer4.0 (9)" in labels
+    assert len(set(labels)) == len(labels)
+    assert view.layer_map.image.get_array().shape[0] == 11
+
+
+def test_clicking_a_block_expands_it_and_a_tensor_row_picks_it(view):
+    rows = [row.label for row in view.layer_map.rows]
+    step = view.step
+    _click_row(view, rows.index("▸ layer3.0 (9)"))
+    labels = [row.label for row in view.layer_map.rows]
+    assert "▾ layer3.0" in labels and len(labels) == 11 + 9
+    assert view.layer_map.image.get_array().shape[0] == 20
+    k = labels.index("· downsample.0.weight")
+    _click_row(view, k)
+    assert view.tensor == "layer3.0.downsample.0.weight" and view.step == step
+    view.collapse("layer3.0")
+    assert len(view.layer_map.rows) == 11
+
+
+def test_filter_narrows_rows_and_keeps_the_cursor(view):
+    view.step = 7
+    tensor = view.tensor
+    view.filter_box.value = "downsample.0"
+    labels = [t.get_text() for t in view.layer_map.map_axes.get_yticklabels()]
+    assert labels == [f"layer{k}.0 · downsample.0.weight" for k in (2, 3, 4)]
+    view.filter_box.value = "no-such-layer"
+    assert view.layer_map.note.get_text() == "no tensor matches “no-such-layer”"
+    assert view.step == 7 and view.tensor == tensor and not view.errors.value
+    view.filter_box.value = ""
+    assert len(view.layer_map.rows) == 11
+
+
+def test_aggregates_and_per_row_scale_change_the_block_rows(view, resnet_path):
+    run = nbkit.load(resnet_path)
+    view.quantity = "grad_norm"
+    block = [r for r, row in enumerate(view.layer_map.rows) if row.label == "▸ layer2.0 (9)"][0]
+    members = [run.tensor_index(t) for t in run.tensors if t.startswith("layer2.0.")]
+    series = run.series("grad_norm").astype(np.float64)[:, members]        # (steps, 9)
+    view.aggregate_menu.value = "max"
+    np.testing.assert_allclose(np.ma.filled(view.layer_map.image.get_array(), np.nan)[block], series.max(axis=1), rtol=1e-6)
+    view.aggregate_menu.value = "median"
+    np.testing.assert_allclose(np.ma.filled(view.layer_map.image.get_array(), np.nan)[block], np.median(series, axis=1),
+                               rtol=1e-6)
+    view.per_row_toggle.value = True
+    assert "each row scaled" in view.layer_map.colourbar.ax.get_ylabel()
+    view.per_row_toggle.value = False
+    assert "1st–99th percentile" in view.layer_map.colourbar.ax.get_ylabel()
+    view.aggregate_menu.value = "max"
+
+
+def test_png_of_the_tree(view, tmp_path):
+    view.expand("layer2.0")
+    path = view.to_png(tmp_path / "tree.png")
+    assert path.read_bytes()[:4] == b"\x89PNG"
+    view.collapse("layer2.0")
+    with pytest.raises(ValueError):
+        view.layer_map.set_rows(aggregate="mean")
