@@ -186,7 +186,8 @@ def test_quantity_pick_redraws_the_heatmap_with_the_recorded_values(view, run_pa
     image = view.layer_map.image.get_array()                               # (rows, columns)
     rows, tensors = _tensor_rows(view.layer_map)
     np.testing.assert_allclose(np.ma.filled(image, np.nan)[rows], run.series("grad_norm").T[tensors], rtol=1e-6)
-    assert "gradient" in view.layer_map.colourbar.ax.get_ylabel()
+    assert "gradient" in view.layer_map.title.get_text()
+    assert "1st–99th percentile" in view.layer_map.colourbar.ax.get_ylabel()
     assert view.layer_map.image.get_cmap().name == "viridis"
     view.quantity = "grad_cosine"
     assert view.layer_map.image.get_cmap().name == "PuOr_r"                # signed: diverging map
