@@ -120,3 +120,16 @@ def test_png_of_the_tree(view, tmp_path):
     view.collapse("layer2.0")
     with pytest.raises(ValueError):
         view.layer_map.set_rows(aggregate="mean")
+
+
+def test_comparison_map_follows_the_tree_and_shows_blocks_when_rows_are_thin(resnet_path):
+    run = nbkit.load(resnet_path)
+    view = nbkit.compare(run, nbkit.load(resnet_path))
+    try:
+        labels = [t.get_text() for t in view.map_axes.get_yticklabels()]
+        assert view.map_blocks and len(labels) == 11
+        assert labels[:3] == ["conv1 · weight", "bn1 (2)", "layer1.0 (6)"] and "layer3.0 (9)" in labels
+        assert np.ma.getdata(view.map_image.get_array()).shape[0] == 11
+        assert "largest per block" in view.map_axes.get_title(loc="left")
+    finally:
+        view.close()

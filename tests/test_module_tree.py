@@ -80,6 +80,8 @@ def test_block_aggregates_median_max_and_worst():
     assert row_tensor(rows[0], tree, values) == 1
     # low is worse for cosines
     assert row_tensor(rows[0], tree, -values, "grad_cosine") == 1
+    signed = np.array([[1.0, -9.0], [-4.0, 2.0], [np.nan, np.nan], [0.0, 0.0]])
+    assert row_values(rows, tree, signed, "largest")[0].tolist() == [-4.0, -9.0]
     with pytest.raises(ValueError, match="aggregate"):
         row_values(rows, tree, values, "mean")
     assert [r.label for r in block_rows(tree, [0, 3])] == ["a.0 (3)", "head · w"]

@@ -129,8 +129,9 @@ def row_values(rows: list[Row], tree: ModuleTree, values: np.ndarray, how: str =
                quantity: str = "") -> np.ndarray:
     """(rows, columns) values of the drawn rows from (tensors, columns) `values`: a tensor row is its
     tensor; a block row (collapsed, or an expanded header) aggregates its tensors column by column:
-    "median", "max" (NaN ignored; NaN where all are) or "worst" (the row of worst_tensor)."""
-    if how not in AGGREGATES:
+    "median", "max" (NaN ignored; NaN where all are), "worst" (the row of worst_tensor) or "largest"
+    (per column the value of largest magnitude, sign kept: for maps of differences)."""
+    if how not in (*AGGREGATES, "largest"):
         raise ValueError(f"Unknown aggregate {how!r}; choose one of {', '.join(AGGREGATES)}")
     out = np.full((len(rows), values.shape[1]), np.nan)
     import warnings
@@ -142,6 +143,11 @@ def row_values(rows: list[Row], tree: ModuleTree, values: np.ndarray, how: str =
         members = values[list(tree.blocks[row.block].tensors)]
         if how == "worst":
             out[r] = members[worst_tensor(members, quantity)]
+            continue
+        if how == "largest":
+            size = np.where(np.isfinite(members), np.abs(members), -1.0)
+            pick = members[np.argmax(size, axis=0), np.arange(members.shape[1])]
+            out[r] = np.where(size.max(axis=0) >= 0, pick, np.nan)
             continue
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)       # all-NaN columns stay NaN
@@ -158,6 +164,11 @@ def row_tensor(row: Row, tree: ModuleTree, values: np.ndarray | None = None, qua
     if values is None:
         return members[0]
     return members[worst_tensor(values[members], quantity)]
+
+
+def tree_order(tree: ModuleTree) -> list[int]:
+    """Tensor positions in tree order (blocks in model order, each block's tensors together)."""
+    return [k for block in tree.blocks for k in block.tensors]
 
 
 def block_rows(tree: ModuleTree, tensors: list[int]) -> list[Row]:

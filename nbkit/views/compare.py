@@ -17,6 +17,7 @@ import numpy as np
 import traitlets
 
 from nbkit.analyze.landscape import landscape_slice
+from nbkit.analyze.module_tree import block_rows, build_tree, row_values, tree_order
 from nbkit.views.base import GuardedView
 from nbkit.views.common import (DEFAULT_QUANTITY, GAIN_CLASS_COLOURS, SIGNED_MAP, Blitter, compose_png, figure_png,
                                 label_of, make_canvas)
@@ -28,10 +29,15 @@ RATIO_QUANTITIES = {"grad_norm", "grad_rms", "grad_max", "weight_norm", "update_
                     "noise_scale"}
 
 
+MIN_ROW_PIXELS = 10      # a difference map with thinner rows shows one row per block
+
+
 def difference_map(a, b, quantity: str):
-    """(common steps, (tensors, steps) difference, what it is) of `quantity` between recordings a and b."""
+    """(common steps, (tensors, steps) difference, tensor names, what it is) of `quantity` between
+    recordings a and b; tensors in a's module-tree order (nbkit.analyze.module_tree)."""
     common, rows_a, rows_b = np.intersect1d(a.steps, b.steps, return_indices=True)
-    tensors = [t for t in a.tensors if t in b.tensors]
+    tree = build_tree(a.tensors, a.layers)
+    tensors = [a.tensors[k] for k in tree_order(tree) if a.tensors[k] in b.tensors]
     ka = [a.tensors.index(t) for t in tensors]
     kb = [b.tensors.index(t) for t in tensors]
     va = a.series(quantity)[rows_a][:, ka].astype(np.float64).T
@@ -235,13 +241,25 @@ class Comparison(GuardedView, widgets.VBox):
         finite = np.abs(diff[np.isfinite(diff)])
         limit = float(np.percentile(finite, 99)) if finite.size else 1.0
         limit = limit if limit > 0 else 1.0
+        pixels = self.map_axes.get_position().height * self.detail_figure.get_figheight() * self.detail_figure.dpi
+        tree = build_tree(tensors, self.runs[a].layers)
+        labels = [tree.label(k) for k in range(len(tensors))]
+        self.map_blocks = bool(len(tensors)) and pixels / len(tensors) < MIN_ROW_PIXELS
+        if self.map_blocks:          # too thin to read: one row per block, its largest difference
+            rows = block_rows(tree, list(range(len(tensors))))
+            diff = row_values(rows, tree, diff, "largest")
+            labels = [row.label for row in rows]
+            what_rows = "largest per block"
+        else:
+            what_rows = "per tensor"
+        tensors = labels
         self.map_image.set_data(np.ma.masked_invalid(diff))
         self.map_image.set_clim(-limit, limit)
         span = (common[0] - 0.5, common[-1] + 0.5) if len(common) else (0, 1)
         self.map_image.set_extent((*span, len(tensors) - 0.5, -0.5))
         self.map_axes.set_yticks(range(len(tensors)), tensors, fontsize=7)
         self.map_axes.set_xlabel("step")
-        self.map_axes.set_title(f"{what} of {self.quantity}: {a} vs {b}", fontsize=9, loc="left")
+        self.map_axes.set_title(f"{what} of {self.quantity}, {what_rows}: {a} vs {b}", fontsize=9, loc="left")
         self.map_colorbar.set_label(f"{what} ({a} vs {b})", fontsize=8)
         top = max([np.nanmax(self._series(n, s, self.tensor), initial=0.0) for n in self.names for s in GAIN_CLASS_SHARES])
         self.share_axes.set_ylim(0, max(1e-3, min(1.0, 1.15 * top)))
