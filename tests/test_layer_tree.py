@@ -133,3 +133,51 @@ def test_comparison_map_follows_the_tree_and_shows_blocks_when_rows_are_thin(res
         assert "largest per block" in view.map_axes.get_title(loc="left")
     finally:
         view.close()
+
+
+def test_opening_state_first_learning_step_then_the_first_finding(tmp_path, monkeypatch):
+    from nbkit.analyze.finding import Finding
+
+    torch.manual_seed(0)
+    model = torch.nn.Linear(3, 1)
+    model.register_parameter("unused", torch.nn.Parameter(torch.ones(4)))   # its gradient is exactly 0
+    opt = torch.optim.SGD(model.parameters(), lr=0.0)
+    x = torch.randn(8, 3)
+    with nbkit.record(model, opt, tmp_path / "warm", probes=4) as rec:
+        for step in range(10):
+            opt.param_groups[0]["lr"] = 0.0 if step < 3 else 0.01        # warm-up from zero
+            opt.zero_grad()
+            loss = model(x).square().mean() + 0 * model.unused.sum()
+            loss.backward()
+            rec.loss(loss)
+            opt.step()
+    run = nbkit.load(tmp_path / "warm")
+    finding = Finding(kind="grad-spike", tensors=["bias"], first_step=6, last_step=7, severity="warning",
+                      evidence={}, suggestion="", source="common practice")
+    monkeypatch.setattr(type(run), "findings", lambda self, **kw: [])
+    v = nbkit.explore(run)
+    try:
+        assert v.step == 3                                                  # first non-zero learning rate
+        v.wait_for_findings(60)
+        assert v.step == 3
+        assert "nan" not in v.coordinate_summary.value
+        v.tensor = "unused"
+        assert "median gain undefined: every probe coordinate has a zero gradient" in v.coordinate_summary.value
+        assert "nan" not in v.coordinate_summary.value.lower()
+    finally:
+        v.close()
+    monkeypatch.setattr(type(run), "findings", lambda self, **kw: [finding])
+    v = nbkit.explore(run)
+    try:
+        v.wait_for_findings(60)
+        assert v.step == 6 and v.tensor == "bias"                           # moved to the first finding
+    finally:
+        v.close()
+    v = nbkit.explore(run)
+    try:
+        v.step = 8                                                          # the user moved first
+        v.wait_for_findings(60)
+        assert v.step == 8
+    finally:
+        v.close()
+

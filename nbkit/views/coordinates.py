@@ -176,7 +176,13 @@ class CoordinateView:
         self.step_note.set_text("" if keep.any() else "no coordinate with a non-zero gradient and update")
         full |= self._set_factors(probes, classes, keep)
         counts = {n: int((classes == k).sum()) for k, n in enumerate(GAIN_CLASS_NAMES)}
-        self.summary = (f"{tensor} at step {int(data.steps[row])}: median gain {median:.3g}; {len(gain)} probe "
+        if np.isfinite(median):
+            said = f"median gain {median:.3g}"
+        elif not np.isfinite(gain).any():
+            said = "median gain undefined: every probe coordinate has a zero gradient at this step"
+        else:
+            said = "median gain undefined: no probe coordinate has a positive gain at this step"
+        self.summary = (f"{tensor} at step {int(data.steps[row])}: {said}; {len(gain)} probe "
                         "coordinates: " + ", ".join(f"{v} {n}" for n, v in counts.items()))
         return full
 

@@ -77,7 +77,9 @@ class Explorer(GuardedView, widgets.VBox):
         super().__init__(children=self._layout())
         self.add_class("nbkit-explorer")
         live = recorder is not None or not run.closed_cleanly
-        first = int(self.data.steps[-1] if live else self.data.steps[0]) if self.data.row_count else 0
+        first = (int(self.data.steps[-1]) if live else self._first_learning_step()) if self.data.row_count else 0
+        self._opened_at = first          # until the cursor leaves it, the first finding may move it
+        self._live = live
         with self.hold_trait_notifications():
             self.quantity = quantity
             self.tensor = run.tensors[0] if run.tensors else ""
@@ -179,10 +181,21 @@ class Explorer(GuardedView, widgets.VBox):
         return [controls, self.timeline.canvas, menus, middle, profile, self.findings_panel.box, self.errors]
 
     # --- reacting -------------------------------------------------------------------------------
+    def _first_learning_step(self) -> int:
+        """The first recorded step at which some parameter group's learning rate is non-zero (a
+        warm-up from 0 opens where the run starts moving), else the first step."""
+        lr = np.asarray(self.run.lr, dtype=np.float64)                # (steps, groups)
+        moving = np.flatnonzero(np.nan_to_num(np.abs(lr)).max(axis=1, initial=0.0) > 0) if lr.size else []
+        return int(self.data.steps[moving[0] if len(moving) else 0])
+
     def _show_finding_marks(self):
         if self.data.row_count:
             self.timeline.load(self.findings)
             self.timeline.blitter.full()
+            # Opening state: the cursor goes to the first finding, unless the user moved it meanwhile.
+            if not self._live and self.findings and self._opened_at is not None:
+                self._opened_at = None
+                self._pick_finding(self.findings[0])
 
     def _pick_step(self, step):
         self.guard(setattr, self, "step", int(step))
@@ -228,6 +241,7 @@ class Explorer(GuardedView, widgets.VBox):
             self._pick_step(int(self.data.steps[row]))
 
     def _on_step(self, change):
+        self._opened_at = None                  # the cursor moved: a finding found later leaves it be
         self.guard(self._move_cursor, change["new"])
 
     def _on_tensor(self, change):
