@@ -67,3 +67,10 @@ def test_fidelity_words():
 def test_one_step_runs_have_no_margin_but_a_reason():
     v = verdict({"a": (np.array([0]), np.array([1.0])), "b": (np.array([0]), np.array([2.0]))})
     assert v.best == "a" and v.margin is None and "too few" in v.note
+
+
+def test_a_bit_exact_replay_ties_and_the_margin_is_over_the_next_run():
+    steps = np.arange(50)
+    a = np.linspace(2, 1, 50)
+    v = verdict({"a": (steps, a), "replay": (steps, a.copy()), "c": (steps, a + 0.5)})
+    assert v.best == "a" and v.ties == ("replay",) and v.margin.runner_up == "c" and v.margin.clear

@@ -65,6 +65,7 @@ class Verdict:
     margin: Margin | None
     note: str = ""
     ranges: dict = field(default_factory=dict)     # {name: (first, last)} of every run's own steps
+    ties: tuple = ()     # runs whose losses over the shared window equal the best run's, step for step
 
 
 def shared_steps(steps: dict[str, np.ndarray]) -> np.ndarray:
@@ -149,8 +150,10 @@ def verdict(losses: dict[str, tuple[np.ndarray, np.ndarray]], *, findings: dict[
     ranked = sorted((r for r in rows_out if np.isfinite(r.final_loss)), key=lambda r: r.final_loss)
     best = ranked[0].name if ranked else None
     margin, note = None, ""
-    if len(ranked) >= 2:
-        second = ranked[1].name
+    ties = tuple(r.name for r in ranked[1:] if np.array_equal(aligned[r.name], aligned[best], equal_nan=True))
+    others = [r for r in ranked[1:] if r.name not in ties]      # a bit-exact self-replay is no rival
+    if others:
+        second = others[0].name
         d = aligned[second][-count:] - aligned[best][-count:]
         d = d[np.isfinite(d)]
         if len(d) >= 2:
@@ -160,4 +163,4 @@ def verdict(losses: dict[str, tuple[np.ndarray, np.ndarray]], *, findings: dict[
             note = (f"only {len(d)} paired final-window step(s): too few to judge the margin against noise; "
                     "record or replay more steps in common")
     return Verdict((int(common[0]), int(common[-1])), (int(final_steps[0]), int(final_steps[-1])), rows_out, best,
-                   margin, note, ranges)
+                   margin, note, ranges, ties)

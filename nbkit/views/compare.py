@@ -22,6 +22,7 @@ from nbkit.views.base import GuardedView
 from nbkit.views.common import (DEFAULT_QUANTITY, GAIN_CLASS_COLOURS, SIGNED_MAP, Blitter, compose_png, figure_png,
                                 label_of, make_canvas)
 from nbkit.views.landscape import RUN_COLOURS, LandscapePanel, run_names
+from nbkit.views.verdict_table import verdict_html, verdict_lines, verdict_of
 
 GAIN_CLASS_SHARES = ("damped", "accelerated", "reversed")
 # positive magnitudes are compared as log10(a / b); the rest as a - b
@@ -78,10 +79,19 @@ class Comparison(GuardedView, widgets.VBox):
             if model is not None and step_fn is not None and batch is not None:
                 self._build_landscape(model, step_fn, batch)
         self._build_controls(quantity)
-        parts = [self.controls, self.timeline_canvas, self.detail_canvas]
+        self.verdict = verdict_of(self.runs)
+        self.verdict_box = widgets.HTML(verdict_html(self.verdict, self.colours))
+        self.verdict_box.add_class("nbkit-verdict")
+        self.range_buttons = []
+        if self.verdict.window is None:          # no shared step: offer each run's own range
+            for name, (a, b) in self.verdict.ranges.items():
+                button = widgets.Button(description=f"{name}: steps {a}–{b}", layout={"width": "auto"})
+                button.on_click(lambda _, a=a, b=b: self.guard(self.show_range, a, b))
+                self.range_buttons.append(button)
+        parts = [self.verdict_box, widgets.HBox(self.range_buttons), self.controls, self.timeline_canvas, self.detail_canvas]
         if self.landscape is not None:
             parts.append(self.landscape_canvas)
-        super().__init__(children=[self.header, *parts, self.errors])
+        super().__init__(children=[parts[0], self.header, *parts[1:], self.errors])
         self.add_class("nbkit-comparison")
         with self.hold_trait_notifications():
             self.quantity = quantity
@@ -98,7 +108,8 @@ class Comparison(GuardedView, widgets.VBox):
         n = len(self.names)
         self.timeline_figure, self.timeline_canvas = make_canvas(max(760, 250 * n), 440,
                                                                  css_class="nbkit-comparison-timeline")
-        grid = self.timeline_figure.add_gridspec(2, n, height_ratios=[1.1, 1.0], hspace=0.45, wspace=0.08)
+        grid = self.timeline_figure.add_gridspec(2, n, height_ratios=[1.1, 1.0], hspace=0.45, wspace=0.08,
+                                                 left=0.08, right=0.86)
         self.loss_axes = self.timeline_figure.add_subplot(grid[0, :])
         self.quantity_axes = [self.timeline_figure.add_subplot(grid[1, 0])]
         for k in range(1, n):
@@ -114,7 +125,7 @@ class Comparison(GuardedView, widgets.VBox):
         losses = losses[np.isfinite(losses)]
         if losses.size and losses.min() > 0 and losses.max() / losses.min() > 100:
             self.loss_axes.set_yscale("log")            # a spike would flatten everything else
-        self.loss_axes.legend(fontsize=8, loc="upper right", ncol=min(4, n))
+        self.end_labels = self._label_ends()
         self.quantity_lines = {name: ax.plot([], [], color=self.colours[name], linewidth=1.1)[0]
                                for name, ax in zip(self.names, self.quantity_axes)}
         for name, ax in zip(self.names, self.quantity_axes):
@@ -148,6 +159,44 @@ class Comparison(GuardedView, widgets.VBox):
         self.share_axes.set_ylabel("share of coordinates with defined gain")
         self.share_axes.legend(fontsize=7, loc="upper right")
         self.share_title = self.detail_blitter.add(self.share_axes.set_title("", fontsize=9, loc="left"))
+
+    def _label_ends(self):
+        """Each run's name at the right end of its loss curve, in its colour; ends closer than a line of
+        text are spread apart so that names never sit on each other."""
+        ax = self.loss_axes
+        ax.set_xlim(self.steps[0], max(self.steps[-1], self.steps[0] + 1))
+        ends = {}
+        for name in self.names:
+            loss = np.asarray(self.runs[name].loss, dtype=np.float64)
+            finite = np.flatnonzero(np.isfinite(loss))
+            if len(finite):
+                ends[name] = float(loss[finite[-1]])
+        ax.relim()
+        ax.autoscale_view(scalex=False)
+        low, high = ax.get_ylim()
+        log = ax.get_yscale() == "log"
+        def fraction(y):
+            if log:
+                return (np.log10(y) - np.log10(low)) / (np.log10(high) - np.log10(low))
+            return (y - low) / (high - low) if high > low else 0.5
+        placed = sorted(((float(np.clip(fraction(y), 0, 1)), name) for name, y in ends.items()))
+        gap, positions = 0.09, []
+        for f, name in placed:
+            f = max(f, positions[-1][0] + gap) if positions else f
+            positions.append((f, name))
+        overflow = positions[-1][0] - 1.0 if positions else 0
+        labels = []
+        for f, name in positions:
+            labels.append(ax.text(1.01, f - max(overflow, 0), name, transform=ax.transAxes, color=self.colours[name],
+                                  fontsize=8, va="center", ha="left", fontweight="bold", clip_on=False))
+        return labels
+
+    def show_range(self, first: int, last: int) -> None:
+        """Show steps first–last on every step axis and put the cursor at `first` (a run's own range)."""
+        for ax in (self.loss_axes, *self.quantity_axes):
+            ax.set_xlim(first, max(last, first + 1))
+        self.step = self.snap(first)
+        self.timeline_blitter.full()
 
     def _build_landscape(self, model, step_fn, batch):
         self.landscape = landscape_slice(model, step_fn, batch, self.runs)
@@ -318,7 +367,8 @@ class Comparison(GuardedView, widgets.VBox):
         rows = [[figure_png(self.timeline_figure)], [figure_png(self.detail_figure)]]
         if self.landscape is not None:
             rows.append([figure_png(self.landscape_figure)])
-        footer = f"comparison of {', '.join(self.names)}: step {self.step}, tensor {self.tensor}, {self.quantity}"
+        footer = "\n".join([*verdict_lines(self.verdict),
+                             f"comparison of {', '.join(self.names)}: step {self.step}, tensor {self.tensor}, {self.quantity}"])
         return compose_png(rows, footer)
 
     def close(self):

@@ -44,7 +44,7 @@ def verdict_html(v: Verdict, colours: dict | None = None) -> str:
     rows = []
     for r in v.rows:
         swatch = f"<span style='color:{colours[r.name]}'>■</span> " if colours and r.name in colours else ""
-        mark = " ★ best" if r.name == v.best else ""
+        mark = " ★ best" if r.name == v.best else (" ★ tied with the best" if r.name in v.ties else "")
         kinds = ", ".join(f"{k} ×{n}" for k, n in r.findings.items()) or "none"
         best = f"{_number(r.best_loss)} (step {r.best_step})" if r.best_step is not None else _number(r.best_loss)
         rows.append(f"<tr><td>{swatch}<b>{html.escape(r.name)}</b>{mark}</td><td>{_number(r.final_loss)}</td>"
@@ -60,3 +60,23 @@ def verdict_html(v: Verdict, colours: dict | None = None) -> str:
     else:
         tail = f"<p>{html.escape(v.note)}</p>" if v.note else ""
     return f"<div class='nbkit-verdict'>{head}{table}{tail}</div>"
+
+
+def verdict_lines(v: Verdict) -> list[str]:
+    """The verdict as plain lines (a static picture's footer)."""
+    if v.window is None:
+        return [f"Verdict: {v.note}"]
+    lines = [f"Verdict over steps {v.window[0]}–{v.window[1]} (final window {v.final[0]}–{v.final[1]}):"]
+    for r in v.rows:
+        kinds = ", ".join(f"{k} ×{n}" for k, n in r.findings.items()) or "no findings"
+        fidelity = f"; {r.fidelity}" if r.fidelity else ""
+        best = " (best)" if r.name == v.best else (" (tied with the best)" if r.name in v.ties else "")
+        lines.append(f"  {r.name}{best}: final-window loss {_number(r.final_loss)}, "
+                     f"best {_number(r.best_loss)}; {kinds}{fidelity}")
+    if v.margin is not None:
+        m = v.margin
+        lines.append(f"  margin over {m.runner_up}: {m.difference:.3g} (95 % {m.low:.3g} … {m.high:.3g}, moving-block "
+                     f"bootstrap, Künsch 1989): {'clear' if m.clear else 'within the noise'}")
+    elif v.note:
+        lines.append("  " + v.note)
+    return lines
