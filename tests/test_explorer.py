@@ -90,7 +90,7 @@ def test_cursor_moves_every_part_to_the_recorded_values(view, run_path):
     gain = probes["update"][0].astype(np.float64) / (-lr * probes["grad"][0].astype(np.float64))
     median = run.series("gain_median", view.tensor)[row]
     np.testing.assert_array_equal(view.coordinates.classes, classify_gain(gain, median))
-    assert list(view.coordinates.histogram_cursor.get_xdata()) == [37, 37]
+    assert list(view.coordinates.classes_cursor.get_xdata()) == [37, 37]
 
 
 def test_step_outside_the_recording_snaps_to_its_end(view):
@@ -134,15 +134,16 @@ def test_clicking_a_row_picks_its_tensor_and_loads_its_histogram(view, run_path)
     _click(view.layer_map.canvas, view.layer_map.map_axes, 10, rows[tensors.index(2)])
     assert view.tensor == target and view.tensor_menu.value == target
     assert view.coordinates.tensor == target
-    _, counts = run.histogram("gain", target)                              # (steps, bins)
-    any_tensor = sum(run.histogram("gain", t)[1].sum(axis=1) for t in run.tensors) > 0
-    counts = counts[any_tensor]                                             # one column per such step
-    totals = counts.sum(axis=1, keepdims=True)
-    with np.errstate(invalid="ignore"):
-        share = np.where(totals > 0, counts / np.maximum(totals, 1), 0.0)
-    shown = np.asarray(view.coordinates.mesh.get_array().filled(0))
-    np.testing.assert_allclose(shown.reshape(share.T.shape), share.T, rtol=1e-6)
-    assert target in view.coordinates.histogram_note.get_text()
+    # the stacked gain classes are the recorded shares (ordinary the rest) and sum to 1 at each step
+    heavy = np.flatnonzero(np.isfinite(run.series("reversed", target)))
+    shares = view.coordinates.share_values                                  # (4, columns): reversed at the bottom
+    np.testing.assert_array_equal(view.coordinates.share_steps, run.steps[heavy])
+    np.testing.assert_allclose(shares[0], run.series("reversed", target)[heavy], rtol=1e-6)
+    np.testing.assert_allclose(shares[3], run.series("accelerated", target)[heavy], rtol=1e-6)
+    np.testing.assert_allclose(shares.sum(axis=0), 1.0)
+    assert len(view.coordinates.shares) == 4
+    assert not any(type(a).__name__ in ("QuadMesh", "AxesImage") for a in view.coordinates.figure.axes[2].get_children())
+    assert target in view.coordinates.classes_note.get_text()
 
 
 def test_dragging_on_the_timeline_moves_the_cursor(view):

@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 from matplotlib import colormaps
 from matplotlib.colors import LogNorm, Normalize
-from matplotlib.ticker import LogLocator
+from matplotlib.ticker import FormatStrFormatter, LogLocator, MaxNLocator
 
 from nbkit.analyze.module_tree import AGGREGATES, build_tree, row_tensor, row_values, tree_rows
 from nbkit.analyze.scales import normalise_rows, robust_limits
@@ -170,6 +170,9 @@ class LayerMap:
         plain_log_ticks(self.value_axes.xaxis)
         if is_log:                                   # a narrow axis: three labels at most
             self.value_axes.xaxis.set_major_locator(LogLocator(numticks=3))
+        else:
+            self.value_axes.xaxis.set_major_locator(MaxNLocator(3))
+            self.value_axes.xaxis.set_major_formatter(FormatStrFormatter("%.2g"))
         plain_log_ticks(self.colourbar.ax.yaxis)
         if limits is not None:
             if is_log:
