@@ -181,3 +181,20 @@ def test_opening_state_first_learning_step_then_the_first_finding(tmp_path, monk
     finally:
         v.close()
 
+
+
+def test_no_title_or_label_clips_and_pictures_fit_1000_px(view, resnet_path, tmp_path):
+    from PIL import Image
+
+    from nbkit.views.common import clipped_texts
+
+    for part in (view.timeline, view.layer_map, view.coordinates, view.profile):
+        assert clipped_texts(part.figure) == [], type(part).__name__
+    assert Image.open(view.to_png(tmp_path / "e.png")).width <= 1000
+    runs = [nbkit.load(resnet_path) for _ in range(5)]
+    comparison = nbkit.compare(*runs)
+    try:
+        assert clipped_texts(comparison.timeline_figure) == [] and clipped_texts(comparison.detail_figure) == []
+        assert Image.open(comparison.to_png(tmp_path / "c.png")).width <= 1000
+    finally:
+        comparison.close()

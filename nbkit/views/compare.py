@@ -30,6 +30,7 @@ RATIO_QUANTITIES = {"grad_norm", "grad_rms", "grad_max", "weight_norm", "update_
                     "noise_scale"}
 
 
+MAX_WIDTH = 1000         # px: figures fit a report page (and a notebook cell) without scaling
 MIN_ROW_PIXELS = 10      # a difference map with thinner rows shows one row per block
 
 
@@ -106,7 +107,7 @@ class Comparison(GuardedView, widgets.VBox):
     # --- building -------------------------------------------------------------------------------
     def _build_figures(self):
         n = len(self.names)
-        self.timeline_figure, self.timeline_canvas = make_canvas(max(760, 250 * n), 440,
+        self.timeline_figure, self.timeline_canvas = make_canvas(min(MAX_WIDTH, max(760, 250 * n)), 440,
                                                                  css_class="nbkit-comparison-timeline")
         grid = self.timeline_figure.add_gridspec(2, n, height_ratios=[1.1, 1.0], hspace=0.45, wspace=0.08,
                                                  left=0.08, right=0.86)
@@ -139,9 +140,14 @@ class Comparison(GuardedView, widgets.VBox):
                                                                      markeredgecolor="black", markersize=6)[0])
                             for name, ax in zip(self.names, self.quantity_axes)}
 
-        self.detail_figure, self.detail_canvas = make_canvas(max(760, 250 * n), 360,
+        width = min(MAX_WIDTH, max(760, 250 * n))
+        self.detail_figure, self.detail_canvas = make_canvas(width, 360,
                                                              css_class="nbkit-comparison-detail")
-        grid = self.detail_figure.add_gridspec(1, 2, width_ratios=[2.2, 1.0], wspace=0.55, bottom=0.2, left=0.14)
+        tree = build_tree(self.tensors, self.runs[self.names[0]].layers)
+        longest = max((len(tree.label(k)) for k in range(len(self.tensors))), default=8)
+        left = float(np.clip((14 + 4.4 * longest) / width, 0.1, 0.35))     # tree labels fit at 7 pt
+        grid = self.detail_figure.add_gridspec(1, 2, width_ratios=[2.2, 1.0], wspace=0.55, bottom=0.2, left=left,
+                                               right=0.96, top=0.86)
         self.map_axes = self.detail_figure.add_subplot(grid[0, 0])
         self.share_axes = self.detail_figure.add_subplot(grid[0, 1])
         self.detail_blitter = Blitter(self.detail_figure)
@@ -158,7 +164,7 @@ class Comparison(GuardedView, widgets.VBox):
         self.share_axes.set_xticks(positions, self.names, rotation=30, ha="right", fontsize=8)
         self.share_axes.set_ylabel("share of coordinates with defined gain")
         self.share_axes.legend(fontsize=7, loc="upper right")
-        self.share_title = self.detail_blitter.add(self.share_axes.set_title("", fontsize=9, loc="left"))
+        self.share_title = self.detail_blitter.add(self.share_axes.set_title("", fontsize=8, loc="left", wrap=True))
 
     def _label_ends(self):
         """Each run's name at the right end of its loss curve, in its colour; ends closer than a line of
@@ -342,7 +348,7 @@ class Comparison(GuardedView, widgets.VBox):
             for bar, name in zip(self.bars[share], self.names):
                 value = shares[name][share]
                 bar.set_height(0.0 if not np.isfinite(value) else value)
-        self.share_title.set_text(f"gain classes of {self.tensor} at step {step}")
+        self.share_title.set_text(f"gain classes at step {step}\nof {self.tensor}")
         if self.landscape is not None:
             self.landscape_panel.set_cursor(step)
         return step

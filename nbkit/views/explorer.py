@@ -31,6 +31,9 @@ from nbkit.views.timeline import Timeline
 
 
 
+MAX_PICTURE_WIDTH = 1000     # px: the static picture fits a report page without scaling
+
+
 def _open(source):
     """(Recording, live Recorder or None) for a Recording, a path, or a Recorder."""
     if isinstance(source, Recording):
@@ -402,9 +405,10 @@ class Explorer(GuardedView, widgets.VBox):
     # --- static output --------------------------------------------------------------------------
     def png_bytes(self) -> bytes:
         with self.lock:
-            images = [[figure_png(self.timeline.figure)],
-                      [figure_png(self.layer_map.figure), figure_png(self.coordinates.figure)],
-                      [figure_png(self.profile.figure)]]
+            middle = [figure_png(self.layer_map.figure), figure_png(self.coordinates.figure)]
+            # side by side only when both fit MAX_PICTURE_WIDTH (a report page); else one under the other
+            middle = [middle] if sum(m.shape[1] for m in middle) <= MAX_PICTURE_WIDTH else [[m] for m in middle]
+            images = [[figure_png(self.timeline.figure)], *middle, [figure_png(self.profile.figure)]]
             lines = [f"{self.run.path.name}: step {self.step}, layer map of {self.quantity}; {self.coordinates.summary}"]
             lines += self.profile.text.splitlines()
             lines += [label for label, _ in self.finding_options()[:8]] or [self.findings_panel.note_text()]
