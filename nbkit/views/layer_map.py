@@ -80,7 +80,8 @@ class LayerMap:
         self.colourbar.ax.tick_params(labelsize=7)
         self.map_axes.set_xlabel("optimizer step", fontsize=8)
         self.map_axes.tick_params(labelsize=7)
-        self.value_axes.tick_params(labelleft=False, labelsize=7)
+        self.value_axes.tick_params(labelleft=False, left=False, labelsize=7)   # rows: labelled on the map only
+        self.map_axes.tick_params(axis="y", length=0)
         self.value_axes.grid(axis="x", color="#dddddd", lw=0.5)
         self.separators = []
         self.blitter = Blitter(self.figure)
@@ -198,10 +199,12 @@ class LayerMap:
         every = max(1, int(np.ceil(PIXELS_PER_LABEL / per_row)))
         ticks = list(range(0, len(rows), every))
         self.map_axes.set_yticks(ticks, [rows[k].label for k in ticks], fontsize=float(np.clip(per_row * every * 0.75, 5, 8)))
-        for k in range(1, len(rows)):                    # thin separators between blocks
-            if rows[k].block != rows[k - 1].block:
-                self.separators.append(self.map_axes.axhline(k - 0.5, color="white", lw=0.6))
-                self.separators.append(self.value_axes.axhline(k - 0.5, color="#cccccc", lw=0.6))
+        edges = [k - 0.5 for k in range(1, len(rows)) if rows[k].block != rows[k - 1].block]
+        if edges:                                        # thin separators between blocks: one collection each
+            self.separators.append(self.map_axes.hlines(edges, 0, 1, transform=self.map_axes.get_yaxis_transform(),
+                                                        colors="white", lw=0.6))
+            self.separators.append(self.value_axes.hlines(edges, 0, 1, transform=self.value_axes.get_yaxis_transform(),
+                                                          colors="#cccccc", lw=0.6))
 
     def row_of_tensor(self, tensor: str) -> int | None:
         """The row that shows `tensor` (its own, or its collapsed block's), None when filtered out."""
