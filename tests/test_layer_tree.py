@@ -198,3 +198,28 @@ def test_no_title_or_label_clips_and_pictures_fit_1000_px(view, resnet_path, tmp
         assert Image.open(comparison.to_png(tmp_path / "c.png")).width <= 1000
     finally:
         comparison.close()
+
+
+@pytest.mark.parametrize("steps, tensors", [(1, 1), (1, 5), (30, 1)])
+def test_one_tensor_or_one_step_draws_without_errors(tmp_path, steps, tensors):
+    from nbkit.store.synthetic import write_synthetic
+
+    path = write_synthetic(tmp_path / "tiny", steps=steps, tensors=tensors, probes=2, heavy_every=1)
+    view = nbkit.explore(path)
+    try:
+        view.wait_for_findings(60)
+        view.draw()
+        view.filter_box.value = "block"
+        view.per_row_toggle.value = True
+        view.aggregate_menu.value = "worst"
+        view.to_png(tmp_path / "tiny.png")
+        assert view.errors.value == ""
+        assert "nan" not in view.coordinate_summary.value.lower()
+    finally:
+        view.close()
+    comparison = nbkit.compare(nbkit.load(path), nbkit.load(path))
+    try:
+        comparison.to_png(tmp_path / "tiny-compare.png")
+        assert comparison.errors.value == ""
+    finally:
+        comparison.close()
