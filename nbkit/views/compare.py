@@ -13,6 +13,7 @@ import html
 
 import ipywidgets as widgets
 import matplotlib.pyplot as plt
+from matplotlib import colormaps
 import numpy as np
 import traitlets
 
@@ -151,8 +152,11 @@ class Comparison(GuardedView, widgets.VBox):
         self.map_axes = self.detail_figure.add_subplot(grid[0, 0])
         self.share_axes = self.detail_figure.add_subplot(grid[0, 1])
         self.detail_blitter = Blitter(self.detail_figure)
-        self.map_image = self.map_axes.imshow(np.zeros((1, 1)), aspect="auto", cmap=SIGNED_MAP, interpolation="nearest")
-        self.map_colorbar = self.detail_figure.colorbar(self.map_image, ax=self.map_axes, shrink=0.9)
+
+        signed = colormaps[SIGNED_MAP].with_extremes(over="#E8000B", under="#000000", bad="#E4E4E4")
+        self.map_image = self.map_axes.imshow(np.zeros((1, 1)), aspect="auto", cmap=signed, interpolation="nearest")
+        # the range is ±(99th percentile of |difference|): the ends mark what lies beyond it
+        self.map_colorbar = self.detail_figure.colorbar(self.map_image, ax=self.map_axes, shrink=0.9, extend="both")
         self.map_cursor = self.detail_blitter.add(self.map_axes.axvline(0, color="black", linewidth=0.9))
         width = 0.8 / len(GAIN_CLASS_SHARES)
         positions = np.arange(n)
@@ -315,7 +319,7 @@ class Comparison(GuardedView, widgets.VBox):
         self.map_axes.set_yticks(range(len(tensors)), tensors, fontsize=7)
         self.map_axes.set_xlabel("step")
         self.map_axes.set_title(f"{what} of {self.quantity}, {what_rows}: {a} vs {b}", fontsize=9, loc="left")
-        self.map_colorbar.set_label(f"{what} ({a} vs {b})", fontsize=8)
+        self.map_colorbar.set_label(f"{what}, ±99th percentile of |{what}|", fontsize=7)
         top = max([np.nanmax(self._series(n, s, self.tensor), initial=0.0) for n in self.names for s in GAIN_CLASS_SHARES])
         self.share_axes.set_ylim(0, max(1e-3, min(1.0, 1.15 * top)))
         self._moving = False
