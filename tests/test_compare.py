@@ -130,3 +130,20 @@ def test_runs_with_no_shared_step_are_explained_with_their_ranges(runs, tmp_path
         assert view.step == 40 and view.loss_axes.get_xlim() == (40, 49) and view.errors.value == ""
     finally:
         view.close()
+
+
+def test_the_report_opens_with_the_verdict_and_its_pictures_fit_1000_px(runs, tmp_path):
+    import base64
+    import io
+    import re
+
+    from PIL import Image
+
+    from nbkit.views.report import write_report
+
+    page = write_report(list(runs), tmp_path / "report.html", findings={str(r.path): [] for r in runs}).read_text()
+    assert page.index("<h2>Verdict</h2>") < page.index("<h2>run</h2>")
+    assert "identical to its parent" in page and "★ best" in page
+    widths = [Image.open(io.BytesIO(base64.b64decode(uri))).width
+              for uri in re.findall(r"src='data:image/png;base64,([^']+)'", page)]
+    assert widths and max(widths) <= 1000
