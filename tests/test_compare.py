@@ -97,3 +97,53 @@ def test_comparison_rejects_an_unknown_quantity(runs):
 
     with pytest.raises(ValueError, match="Unknown quantity"):
         Comparison(*runs, quantity="nope")
+
+
+def test_the_comparison_opens_with_the_verdict_and_labels_curve_ends(view, runs):
+    parent, recorded, sgd = runs
+    v = view.verdict
+    assert v.window == (20, 59) and [r.name for r in v.rows] == ["run", "recorded", "sgd-m"]
+    rows = {r.name: r for r in v.rows}
+    assert rows["recorded"].fidelity == "identical to its parent"
+    assert rows["run"].final_loss == pytest.approx(float(np.mean(parent.loss[-4:])))
+    assert v.best == "run" and v.ties == ("recorded",) and v.margin.runner_up == "sgd-m"
+    assert v.best in rows and "★ best" in view.verdict_box.value and "Künsch 1989" in view.verdict_box.value
+    assert view.children[0] is view.verdict_box
+    assert sorted(t.get_text() for t in view.end_labels) == ["recorded", "run", "sgd-m"]
+    assert {t.get_text(): t.get_color() for t in view.end_labels}["sgd-m"] == view.colours["sgd-m"]
+    ys = sorted(t.get_position()[1] for t in view.end_labels)
+    assert min(np.diff(ys)) >= 0.08                                 # identical ends are spread apart
+
+
+def test_runs_with_no_shared_step_are_explained_with_their_ranges(runs, tmp_path):
+    parent = runs[0]
+    early = nbkit.replay(parent, rs.make_model(), rs.step_fn, rs.Batches(), start=0, steps=10, progress=False,
+                         to=tmp_path / "early")["recorded"]
+    late = nbkit.replay(parent, rs.make_model(), rs.step_fn, rs.Batches(), start=40, steps=10, progress=False,
+                        to=tmp_path / "late")["recorded"]
+    view = nbkit.compare(early, late)
+    try:
+        assert view.verdict.window is None
+        assert "share no step" in view.verdict_box.value and "0–9" in view.verdict_box.value
+        assert [b.description.split(": ")[1] for b in view.range_buttons] == ["steps 0–9", "steps 40–49"]
+        view.range_buttons[1].click()
+        assert view.step == 40 and view.loss_axes.get_xlim() == (40, 49) and view.errors.value == ""
+    finally:
+        view.close()
+
+
+def test_the_report_opens_with_the_verdict_and_its_pictures_fit_1000_px(runs, tmp_path):
+    import base64
+    import io
+    import re
+
+    from PIL import Image
+
+    from nbkit.views.report import write_report
+
+    page = write_report(list(runs), tmp_path / "report.html", findings={str(r.path): [] for r in runs}).read_text()
+    assert page.index("<h2>Verdict</h2>") < page.index("<h2>run</h2>")
+    assert "identical to its parent" in page and "★ best" in page
+    widths = [Image.open(io.BytesIO(base64.b64decode(uri))).width
+              for uri in re.findall(r"src='data:image/png;base64,([^']+)'", page)]
+    assert widths and max(widths) <= 1000

@@ -53,6 +53,12 @@ def _row(run, step):
     return int(np.flatnonzero(run.steps == step)[0])
 
 
+def _tensor_rows(layer_map):
+    """(row positions, tensor positions) of the layer map's rows that show one tensor each."""
+    pairs = [(r, row.tensor) for r, row in enumerate(layer_map.rows) if row.tensor is not None]
+    return [r for r, _ in pairs], [t for _, t in pairs]
+
+
 def _click(canvas, axes, x, y, kind="button_press_event"):
     from matplotlib.backend_bases import MouseEvent
 
@@ -69,8 +75,10 @@ def test_cursor_moves_every_part_to_the_recorded_values(view, run_path):
     assert list(view.timeline.cursors[0].get_xdata()) == [37, 37]
     assert list(view.layer_map.cursor.get_xdata()) == [37, 37]
     # layer map: the values at the cursor are the recording's series at that row
-    shown = np.asarray(view.layer_map.values.get_xdata(), dtype=np.float64)
-    expected = run.series(view.quantity)[row].astype(np.float64)
+    rows, tensors = _tensor_rows(view.layer_map)
+    assert sorted(tensors) == list(range(len(run.tensors)))                 # a small model starts expanded
+    shown = np.asarray(view.layer_map.values.get_xdata(), dtype=np.float64)[rows]
+    expected = run.series(view.quantity)[row].astype(np.float64)[tensors]
     np.testing.assert_allclose(shown, np.where(expected > 0, expected, np.nan) if view.layer_map.is_log else expected)
     # coordinate view: |lr*g| and |update| of the tensor's probes at that row, classes as classify_gain
     probes = run.probes(view.tensor, rows=slice(row, row + 1))
@@ -82,7 +90,7 @@ def test_cursor_moves_every_part_to_the_recorded_values(view, run_path):
     gain = probes["update"][0].astype(np.float64) / (-lr * probes["grad"][0].astype(np.float64))
     median = run.series("gain_median", view.tensor)[row]
     np.testing.assert_array_equal(view.coordinates.classes, classify_gain(gain, median))
-    assert list(view.coordinates.histogram_cursor.get_xdata()) == [37, 37]
+    assert list(view.coordinates.classes_cursor.get_xdata()) == [37, 37]
 
 
 def test_step_outside_the_recording_snaps_to_its_end(view):
@@ -122,18 +130,20 @@ def test_scrubbing_blits_and_never_redraws_or_rebuilds_figures(view):
 def test_clicking_a_row_picks_its_tensor_and_loads_its_histogram(view, run_path):
     run = nbkit.load(run_path)
     target = run.tensors[2]
-    _click(view.layer_map.canvas, view.layer_map.map_axes, 10, 2)
+    rows, tensors = _tensor_rows(view.layer_map)
+    _click(view.layer_map.canvas, view.layer_map.map_axes, 10, rows[tensors.index(2)])
     assert view.tensor == target and view.tensor_menu.value == target
     assert view.coordinates.tensor == target
-    _, counts = run.histogram("gain", target)                              # (steps, bins)
-    any_tensor = sum(run.histogram("gain", t)[1].sum(axis=1) for t in run.tensors) > 0
-    counts = counts[any_tensor]                                             # one column per such step
-    totals = counts.sum(axis=1, keepdims=True)
-    with np.errstate(invalid="ignore"):
-        share = np.where(totals > 0, counts / np.maximum(totals, 1), 0.0)
-    shown = np.asarray(view.coordinates.mesh.get_array().filled(0))
-    np.testing.assert_allclose(shown.reshape(share.T.shape), share.T, rtol=1e-6)
-    assert target in view.coordinates.histogram_note.get_text()
+    # the stacked gain classes are the recorded shares (ordinary the rest) and sum to 1 at each step
+    heavy = np.flatnonzero(np.isfinite(run.series("reversed", target)))
+    shares = view.coordinates.share_values                                  # (4, columns): reversed at the bottom
+    np.testing.assert_array_equal(view.coordinates.share_steps, run.steps[heavy])
+    np.testing.assert_allclose(shares[0], run.series("reversed", target)[heavy], rtol=1e-6)
+    np.testing.assert_allclose(shares[3], run.series("accelerated", target)[heavy], rtol=1e-6)
+    np.testing.assert_allclose(shares.sum(axis=0), 1.0)
+    assert len(view.coordinates.shares) == 4
+    assert not any(type(a).__name__ in ("QuadMesh", "AxesImage") for a in view.coordinates.figure.axes[2].get_children())
+    assert target in view.coordinates.classes_note.get_text()
 
 
 def test_dragging_on_the_timeline_moves_the_cursor(view):
@@ -174,9 +184,11 @@ def test_findings_note_says_they_are_heuristics(view):
 def test_quantity_pick_redraws_the_heatmap_with_the_recorded_values(view, run_path):
     run = nbkit.load(run_path)
     view.quantity = "grad_norm"
-    image = view.layer_map.image.get_array()                               # (tensors, columns)
-    np.testing.assert_allclose(np.ma.filled(image, np.nan), run.series("grad_norm").T, rtol=1e-6)
-    assert "gradient" in view.layer_map.colourbar.ax.get_ylabel()
+    image = view.layer_map.image.get_array()                               # (rows, columns)
+    rows, tensors = _tensor_rows(view.layer_map)
+    np.testing.assert_allclose(np.ma.filled(image, np.nan)[rows], run.series("grad_norm").T[tensors], rtol=1e-6)
+    assert "gradient" in view.layer_map.title.get_text()
+    assert "1st–99th percentile" in view.layer_map.colourbar.ax.get_ylabel()
     assert view.layer_map.image.get_cmap().name == "viridis"
     view.quantity = "grad_cosine"
     assert view.layer_map.image.get_cmap().name == "PuOr_r"                # signed: diverging map

@@ -267,3 +267,28 @@ def compose_png(rows: list[list[np.ndarray]], footer: str = "") -> bytes:
     buffer = io.BytesIO()
     out.convert("RGB").save(buffer, format="png")
     return buffer.getvalue()
+
+
+def clipped_texts(figure) -> list[str]:
+    """What of `figure` reaches past its edges once drawn: each visible axes whose drawn titles, labels
+    and tick labels stick out (named by its title or axis labels), and each figure-level text, as
+    "name (how far past, px)"; [] when everything fits. For tests and checks."""
+    figure.canvas.draw()
+    renderer = figure.canvas.get_renderer()
+    box = figure.bbox
+
+    def past(extent):
+        return max(box.x0 - extent.x0, extent.x1 - box.x1, box.y0 - extent.y0, extent.y1 - box.y1)
+
+    out = []
+    for ax in figure.axes:
+        if not ax.get_visible() or not ax.axison:
+            continue
+        extent = ax.get_tightbbox(renderer, bbox_extra_artists=[t for t in ax.texts if t.get_visible()])
+        if extent is not None and past(extent) > 1:
+            name = ax.get_title(loc="left") or ax.get_title() or ax.get_ylabel() or ax.get_xlabel() or "an axes"
+            out.append(f"{name!r} ({past(extent):.0f} px past the edge)")
+    for text in figure.texts:
+        if text.get_visible() and str(text.get_text()).strip() and past(text.get_window_extent(renderer)) > 1:
+            out.append(f"{text.get_text()!r} ({past(text.get_window_extent(renderer)):.0f} px past the edge)")
+    return out

@@ -13,14 +13,17 @@ import html
 
 import ipywidgets as widgets
 import matplotlib.pyplot as plt
+from matplotlib import colormaps
 import numpy as np
 import traitlets
 
 from nbkit.analyze.landscape import landscape_slice
+from nbkit.analyze.module_tree import block_rows, build_tree, row_values, tree_order
 from nbkit.views.base import GuardedView
 from nbkit.views.common import (DEFAULT_QUANTITY, GAIN_CLASS_COLOURS, SIGNED_MAP, Blitter, compose_png, figure_png,
                                 label_of, make_canvas)
 from nbkit.views.landscape import RUN_COLOURS, LandscapePanel, run_names
+from nbkit.views.verdict_table import verdict_html, verdict_lines, verdict_of
 
 GAIN_CLASS_SHARES = ("damped", "accelerated", "reversed")
 # positive magnitudes are compared as log10(a / b); the rest as a - b
@@ -28,10 +31,16 @@ RATIO_QUANTITIES = {"grad_norm", "grad_rms", "grad_max", "weight_norm", "update_
                     "noise_scale"}
 
 
+MAX_WIDTH = 1000         # px: figures fit a report page (and a notebook cell) without scaling
+MIN_ROW_PIXELS = 10      # a difference map with thinner rows shows one row per block
+
+
 def difference_map(a, b, quantity: str):
-    """(common steps, (tensors, steps) difference, what it is) of `quantity` between recordings a and b."""
+    """(common steps, (tensors, steps) difference, tensor names, what it is) of `quantity` between
+    recordings a and b; tensors in a's module-tree order (nbkit.analyze.module_tree)."""
     common, rows_a, rows_b = np.intersect1d(a.steps, b.steps, return_indices=True)
-    tensors = [t for t in a.tensors if t in b.tensors]
+    tree = build_tree(a.tensors, a.layers)
+    tensors = [a.tensors[k] for k in tree_order(tree) if a.tensors[k] in b.tensors]
     ka = [a.tensors.index(t) for t in tensors]
     kb = [b.tensors.index(t) for t in tensors]
     va = a.series(quantity)[rows_a][:, ka].astype(np.float64).T
@@ -72,10 +81,19 @@ class Comparison(GuardedView, widgets.VBox):
             if model is not None and step_fn is not None and batch is not None:
                 self._build_landscape(model, step_fn, batch)
         self._build_controls(quantity)
-        parts = [self.controls, self.timeline_canvas, self.detail_canvas]
+        self.verdict = verdict_of(self.runs)
+        self.verdict_box = widgets.HTML(verdict_html(self.verdict, self.colours))
+        self.verdict_box.add_class("nbkit-verdict")
+        self.range_buttons = []
+        if self.verdict.window is None:          # no shared step: offer each run's own range
+            for name, (a, b) in self.verdict.ranges.items():
+                button = widgets.Button(description=f"{name}: steps {a}–{b}", layout={"width": "auto"})
+                button.on_click(lambda _, a=a, b=b: self.guard(self.show_range, a, b))
+                self.range_buttons.append(button)
+        parts = [self.verdict_box, widgets.HBox(self.range_buttons), self.controls, self.timeline_canvas, self.detail_canvas]
         if self.landscape is not None:
             parts.append(self.landscape_canvas)
-        super().__init__(children=[self.header, *parts, self.errors])
+        super().__init__(children=[parts[0], self.header, *parts[1:], self.errors])
         self.add_class("nbkit-comparison")
         with self.hold_trait_notifications():
             self.quantity = quantity
@@ -90,9 +108,10 @@ class Comparison(GuardedView, widgets.VBox):
     # --- building -------------------------------------------------------------------------------
     def _build_figures(self):
         n = len(self.names)
-        self.timeline_figure, self.timeline_canvas = make_canvas(max(760, 250 * n), 440,
+        self.timeline_figure, self.timeline_canvas = make_canvas(min(MAX_WIDTH, max(760, 250 * n)), 440,
                                                                  css_class="nbkit-comparison-timeline")
-        grid = self.timeline_figure.add_gridspec(2, n, height_ratios=[1.1, 1.0], hspace=0.45, wspace=0.08)
+        grid = self.timeline_figure.add_gridspec(2, n, height_ratios=[1.1, 1.0], hspace=0.45, wspace=0.08,
+                                                 left=0.08, right=0.86)
         self.loss_axes = self.timeline_figure.add_subplot(grid[0, :])
         self.quantity_axes = [self.timeline_figure.add_subplot(grid[1, 0])]
         for k in range(1, n):
@@ -108,7 +127,7 @@ class Comparison(GuardedView, widgets.VBox):
         losses = losses[np.isfinite(losses)]
         if losses.size and losses.min() > 0 and losses.max() / losses.min() > 100:
             self.loss_axes.set_yscale("log")            # a spike would flatten everything else
-        self.loss_axes.legend(fontsize=8, loc="upper right", ncol=min(4, n))
+        self.end_labels = self._label_ends()
         self.quantity_lines = {name: ax.plot([], [], color=self.colours[name], linewidth=1.1)[0]
                                for name, ax in zip(self.names, self.quantity_axes)}
         for name, ax in zip(self.names, self.quantity_axes):
@@ -122,14 +141,22 @@ class Comparison(GuardedView, widgets.VBox):
                                                                      markeredgecolor="black", markersize=6)[0])
                             for name, ax in zip(self.names, self.quantity_axes)}
 
-        self.detail_figure, self.detail_canvas = make_canvas(max(760, 250 * n), 360,
+        width = min(MAX_WIDTH, max(760, 250 * n))
+        self.detail_figure, self.detail_canvas = make_canvas(width, 360,
                                                              css_class="nbkit-comparison-detail")
-        grid = self.detail_figure.add_gridspec(1, 2, width_ratios=[2.2, 1.0], wspace=0.55, bottom=0.2, left=0.14)
+        tree = build_tree(self.tensors, self.runs[self.names[0]].layers)
+        longest = max((len(tree.label(k)) for k in range(len(self.tensors))), default=8)
+        left = float(np.clip((14 + 4.4 * longest) / width, 0.1, 0.35))     # tree labels fit at 7 pt
+        grid = self.detail_figure.add_gridspec(1, 2, width_ratios=[2.2, 1.0], wspace=0.55, bottom=0.2, left=left,
+                                               right=0.96, top=0.86)
         self.map_axes = self.detail_figure.add_subplot(grid[0, 0])
         self.share_axes = self.detail_figure.add_subplot(grid[0, 1])
         self.detail_blitter = Blitter(self.detail_figure)
-        self.map_image = self.map_axes.imshow(np.zeros((1, 1)), aspect="auto", cmap=SIGNED_MAP, interpolation="nearest")
-        self.map_colorbar = self.detail_figure.colorbar(self.map_image, ax=self.map_axes, shrink=0.9)
+
+        signed = colormaps[SIGNED_MAP].with_extremes(over="#E8000B", under="#000000", bad="#E4E4E4")
+        self.map_image = self.map_axes.imshow(np.zeros((1, 1)), aspect="auto", cmap=signed, interpolation="nearest")
+        # the range is ±(99th percentile of |difference|): the ends mark what lies beyond it
+        self.map_colorbar = self.detail_figure.colorbar(self.map_image, ax=self.map_axes, shrink=0.9, extend="both")
         self.map_cursor = self.detail_blitter.add(self.map_axes.axvline(0, color="black", linewidth=0.9))
         width = 0.8 / len(GAIN_CLASS_SHARES)
         positions = np.arange(n)
@@ -141,7 +168,45 @@ class Comparison(GuardedView, widgets.VBox):
         self.share_axes.set_xticks(positions, self.names, rotation=30, ha="right", fontsize=8)
         self.share_axes.set_ylabel("share of coordinates with defined gain")
         self.share_axes.legend(fontsize=7, loc="upper right")
-        self.share_title = self.detail_blitter.add(self.share_axes.set_title("", fontsize=9, loc="left"))
+        self.share_title = self.detail_blitter.add(self.share_axes.set_title("", fontsize=8, loc="left", wrap=True))
+
+    def _label_ends(self):
+        """Each run's name at the right end of its loss curve, in its colour; ends closer than a line of
+        text are spread apart so that names never sit on each other."""
+        ax = self.loss_axes
+        ax.set_xlim(self.steps[0], max(self.steps[-1], self.steps[0] + 1))
+        ends = {}
+        for name in self.names:
+            loss = np.asarray(self.runs[name].loss, dtype=np.float64)
+            finite = np.flatnonzero(np.isfinite(loss))
+            if len(finite):
+                ends[name] = float(loss[finite[-1]])
+        ax.relim()
+        ax.autoscale_view(scalex=False)
+        low, high = ax.get_ylim()
+        log = ax.get_yscale() == "log"
+        def fraction(y):
+            if log:
+                return (np.log10(y) - np.log10(low)) / (np.log10(high) - np.log10(low))
+            return (y - low) / (high - low) if high > low else 0.5
+        placed = sorted(((float(np.clip(fraction(y), 0, 1)), name) for name, y in ends.items()))
+        gap, positions = 0.09, []
+        for f, name in placed:
+            f = max(f, positions[-1][0] + gap) if positions else f
+            positions.append((f, name))
+        overflow = positions[-1][0] - 1.0 if positions else 0
+        labels = []
+        for f, name in positions:
+            labels.append(ax.text(1.01, f - max(overflow, 0), name, transform=ax.transAxes, color=self.colours[name],
+                                  fontsize=8, va="center", ha="left", fontweight="bold", clip_on=False))
+        return labels
+
+    def show_range(self, first: int, last: int) -> None:
+        """Show steps first–last on every step axis and put the cursor at `first` (a run's own range)."""
+        for ax in (self.loss_axes, *self.quantity_axes):
+            ax.set_xlim(first, max(last, first + 1))
+        self.step = self.snap(first)
+        self.timeline_blitter.full()
 
     def _build_landscape(self, model, step_fn, batch):
         self.landscape = landscape_slice(model, step_fn, batch, self.runs)
@@ -235,14 +300,26 @@ class Comparison(GuardedView, widgets.VBox):
         finite = np.abs(diff[np.isfinite(diff)])
         limit = float(np.percentile(finite, 99)) if finite.size else 1.0
         limit = limit if limit > 0 else 1.0
+        pixels = self.map_axes.get_position().height * self.detail_figure.get_figheight() * self.detail_figure.dpi
+        tree = build_tree(tensors, self.runs[a].layers)
+        labels = [tree.label(k) for k in range(len(tensors))]
+        self.map_blocks = bool(len(tensors)) and pixels / len(tensors) < MIN_ROW_PIXELS
+        if self.map_blocks:          # too thin to read: one row per block, its largest difference
+            rows = block_rows(tree, list(range(len(tensors))))
+            diff = row_values(rows, tree, diff, "largest")
+            labels = [row.label for row in rows]
+            what_rows = "largest per block"
+        else:
+            what_rows = "per tensor"
+        tensors = labels
         self.map_image.set_data(np.ma.masked_invalid(diff))
         self.map_image.set_clim(-limit, limit)
         span = (common[0] - 0.5, common[-1] + 0.5) if len(common) else (0, 1)
         self.map_image.set_extent((*span, len(tensors) - 0.5, -0.5))
         self.map_axes.set_yticks(range(len(tensors)), tensors, fontsize=7)
         self.map_axes.set_xlabel("step")
-        self.map_axes.set_title(f"{what} of {self.quantity}: {a} vs {b}", fontsize=9, loc="left")
-        self.map_colorbar.set_label(f"{what} ({a} vs {b})", fontsize=8)
+        self.map_axes.set_title(f"{what} of {self.quantity}, {what_rows}: {a} vs {b}", fontsize=9, loc="left")
+        self.map_colorbar.set_label(f"{what}, ±99th percentile of |{what}|", fontsize=7)
         top = max([np.nanmax(self._series(n, s, self.tensor), initial=0.0) for n in self.names for s in GAIN_CLASS_SHARES])
         self.share_axes.set_ylim(0, max(1e-3, min(1.0, 1.15 * top)))
         self._moving = False
@@ -275,7 +352,7 @@ class Comparison(GuardedView, widgets.VBox):
             for bar, name in zip(self.bars[share], self.names):
                 value = shares[name][share]
                 bar.set_height(0.0 if not np.isfinite(value) else value)
-        self.share_title.set_text(f"gain classes of {self.tensor} at step {step}")
+        self.share_title.set_text(f"gain classes at step {step}\nof {self.tensor}")
         if self.landscape is not None:
             self.landscape_panel.set_cursor(step)
         return step
@@ -300,7 +377,8 @@ class Comparison(GuardedView, widgets.VBox):
         rows = [[figure_png(self.timeline_figure)], [figure_png(self.detail_figure)]]
         if self.landscape is not None:
             rows.append([figure_png(self.landscape_figure)])
-        footer = f"comparison of {', '.join(self.names)}: step {self.step}, tensor {self.tensor}, {self.quantity}"
+        footer = "\n".join([*verdict_lines(self.verdict),
+                             f"comparison of {', '.join(self.names)}: step {self.step}, tensor {self.tensor}, {self.quantity}"])
         return compose_png(rows, footer)
 
     def close(self):

@@ -1,18 +1,20 @@
-"""The explorer's coordinate view: one tensor's probe coordinates at the cursor, and its gain histogram.
+"""The explorer's coordinate view: one tensor's probe coordinates at the cursor, and its gain classes over steps.
 
 Top left: plain step |lr·g| against actual update |Δθ| on log-log axes, with the gain = 1 line (what
 plain SGD would do), the tensor's median gain and its x2 / x1/2 band (the class boundaries); each
 probe coloured by its class. Top right: each probe's gain split into momentum factor and scale
-factor (where the optimizer keeps moments). Bottom: the gain histogram over all steps as one image.
+factor (where the optimizer keeps moments). Bottom: the tensor's gain classes over all steps, their
+shares stacked (reversed at the bottom, then damped, ordinary, accelerated; they sum to 1 at each
+step), with its median gain as a line on a second axis (nbkit.analyze.class_shares).
 """
 from __future__ import annotations
 
 import numpy as np
-from matplotlib.colors import LogNorm
 from matplotlib.patches import Patch
 
+from nbkit.analyze.class_shares import STACK_ORDER, bucket_median, class_shares
 from nbkit.measure.quantities import GAIN_CLASS_NAMES, classify_gain
-from nbkit.views.common import DENSITY_MAP, GAIN_CLASS_COLOURS, OKABE_ITO, Blitter, make_canvas, plain_log_ticks
+from nbkit.views.common import GAIN_CLASS_COLOURS, OKABE_ITO, Blitter, make_canvas, plain_log_ticks
 
 WIDTH, HEIGHT = 600, 640
 FIELDS = ("grad", "update", "momentum_factor", "scale_factor")
@@ -50,10 +52,10 @@ class CoordinateView:
         self.data = data
         self.figure, self.canvas = make_canvas(WIDTH, HEIGHT, css_class="nbkit-coordinates")
         grid = self.figure.add_gridspec(2, 2, height_ratios=(1.15, 1), hspace=0.42, wspace=0.32,
-                                        left=0.12, right=0.97, top=0.92, bottom=0.08)
+                                        left=0.12, right=0.88, top=0.92, bottom=0.08)
         self.step_axes = self.figure.add_subplot(grid[0, 0])
         self.factor_axes = self.figure.add_subplot(grid[0, 1])
-        self.histogram_axes = self.figure.add_subplot(grid[1, :])
+        self.classes_axes = self.figure.add_subplot(grid[1, :])
         ax = self.step_axes
         ax.set_xscale("log")
         ax.set_yscale("log")
@@ -71,13 +73,19 @@ class CoordinateView:
         fx.tick_params(labelsize=7)
         fx.axvline(0, color="#bbbbbb", lw=0.6)
         fx.axvline(1, color="#bbbbbb", lw=0.6, ls="--")
-        hx = self.histogram_axes
+        hx = self.classes_axes
         hx.set_xlabel("optimizer step", fontsize=8)
-        hx.set_ylabel("log2 gain", fontsize=8)
+        hx.set_ylabel("share of coordinates\nwith a defined gain", fontsize=8)
+        hx.set_ylim(0, 1)
         hx.tick_params(labelsize=7)
-        self.mesh = None
-        self.histogram_note = hx.set_title("", fontsize=8, loc="left")
-        hx.axhline(0, color="white", lw=0.6, ls="--")
+        self.median_axes = mx = hx.twinx()
+        mx.set_yscale("log")
+        mx.set_ylabel("median gain (black line)", fontsize=8)
+        mx.tick_params(labelsize=7)
+        self.shares = None                   # the stacked areas of the tensor shown
+        self.share_steps, self.share_values = np.zeros(0), np.zeros((4, 0))   # (columns,), (4, columns)
+        self.gain_line, = mx.plot([], [], color=OKABE_ITO["black"], lw=1.0)
+        self.classes_note = hx.set_title("", fontsize=8, loc="left")
         self.blitter = b = Blitter(self.figure)
         self.band = b.add(ax.fill_between([1e-30, 1e30], [1e-30, 1e30], [1e-30, 1e30], color=OKABE_ITO["sky blue"],
                                           alpha=0.25, lw=0))
@@ -87,7 +95,7 @@ class CoordinateView:
         self.factor_note = b.add(fx.text(0.5, 0.5, "", transform=fx.transAxes, ha="center", va="center",
                                          fontsize=8, wrap=True))
         self.step_note = b.add(ax.text(0.5, 0.5, "", transform=ax.transAxes, ha="center", va="center", fontsize=8))
-        self.histogram_cursor = b.add(hx.axvline(0, color=OKABE_ITO["sky blue"], lw=1.2))
+        self.classes_cursor = b.add(hx.axvline(0, color=OKABE_ITO["sky blue"], lw=1.2))
         # What the points say in words is page text (Explorer.coordinate_summary), not figure text:
         # rendering ~100 glyphs per cursor move would cost more than all the points together.
         self.summary = ""
@@ -101,7 +109,7 @@ class CoordinateView:
         self.has_moments = bool(data.run.meta.get("optimizer", {}).get("first_moment")
                                 or data.run.meta.get("optimizer", {}).get("second_moment"))
 
-    # --- tensor: the histogram image changes (a full draw follows) -------------------------------
+    # --- tensor: the gain-class chart changes (a full draw follows) -------------------------------
     def set_tensor(self, tensor: str):
         self.tensor = tensor
         self._xlim = self._ylim = self._flim = None
@@ -116,30 +124,39 @@ class CoordinateView:
         momentum = data.overall_max("momentum_factor_median", tensor)
         if scale is not None and np.isfinite(momentum):
             self._flim = ((-0.5, max(2.0, 2 * momentum)), scale)
-        step_edges, bin_edges, share, how = self.data.histogram_image("gain", tensor)
-        shown = np.ma.masked_less_equal(share, 0)
-        if self.mesh is not None:
-            self.mesh.remove()
-        self.mesh = self.histogram_axes.pcolormesh(step_edges, bin_edges, shown, cmap=DENSITY_MAP,
-                                                   norm=LogNorm(1e-4, 1), shading="flat")
-        if not hasattr(self, "colourbar"):
-            self.colourbar = self.figure.colorbar(self.mesh, ax=self.histogram_axes, pad=0.01, fraction=0.04)
-            self.colourbar.set_label("share of positive gains", fontsize=7)
-            self.colourbar.ax.tick_params(labelsize=6)
+        run = data.run
+        steps = data.steps
+        series = {q: run.series(q, tensor) for q in ("reversed", "damped", "accelerated", "gain_median")}
+        x, shares = class_shares(steps, series["reversed"], series["damped"], series["accelerated"])
+        self.share_steps, self.share_values = x, shares
+        if self.shares is not None:
+            for area in self.shares:
+                area.remove()
+        hx, mx = self.classes_axes, self.median_axes
+        first, last = float(steps[0]), float(max(steps[-1], steps[0] + 1))
+        if len(x):
+            edges = np.append(x, last).astype(np.float64)          # each column holds until the next
+            self.shares = hx.stackplot(np.repeat(edges, 2)[1:-1], np.repeat(shares, 2, axis=1),
+                                       colors=[GAIN_CLASS_COLOURS[n] for n in STACK_ORDER], lw=0)
+            median = bucket_median(steps, series["gain_median"], x)
+            self.gain_line.set_data(np.repeat(edges, 2)[1:-1], np.repeat(median, 2))
+            positive = median[np.isfinite(median) & (median > 0)]
+            if positive.size:
+                mx.set_ylim(positive.min() / 2, positive.max() * 2)
+            plain_log_ticks(mx.yaxis)
+            how = "every step" if len(x) == len(steps) else f"{len(x)} columns"
+            self.classes_note.set_text(f"gain classes of {tensor} over all steps ({how})")
         else:
-            self.colourbar.update_normal(self.mesh)
-        plain_log_ticks(self.colourbar.ax.yaxis)
-        used = np.flatnonzero(np.nan_to_num(share).sum(axis=1) > 0)
-        if used.size:
-            self.histogram_axes.set_ylim(bin_edges[max(used[0] - 1, 0)], bin_edges[min(used[-1] + 2, len(bin_edges) - 1)])
-        self.histogram_axes.set_xlim(step_edges[0], step_edges[-1])
-        self.histogram_note.set_text(f"gain histogram of {tensor} over all steps ({how})")
+            self.shares = None
+            self.gain_line.set_data([], [])
+            self.classes_note.set_text(f"gain classes of {tensor}: undefined at every step (no non-zero gradient)")
+        hx.set_xlim(first, last)
 
     # --- cursor: only animated artists change, unless the points left the axes -------------------
     def set_cursor(self, step: int, row: int | None) -> bool:
         """Update the points for `row` (a per-tensor row, None if none yet). True: limits changed,
         a full draw is needed."""
-        self.histogram_cursor.set_xdata([step, step])
+        self.classes_cursor.set_xdata([step, step])
         if self.tensor is None or row is None:
             return self._empty(f"no probe values at step {step}")
         data, tensor = self.data, self.tensor
@@ -176,7 +193,13 @@ class CoordinateView:
         self.step_note.set_text("" if keep.any() else "no coordinate with a non-zero gradient and update")
         full |= self._set_factors(probes, classes, keep)
         counts = {n: int((classes == k).sum()) for k, n in enumerate(GAIN_CLASS_NAMES)}
-        self.summary = (f"{tensor} at step {int(data.steps[row])}: median gain {median:.3g}; {len(gain)} probe "
+        if np.isfinite(median):
+            said = f"median gain {median:.3g}"
+        elif not np.isfinite(gain).any():
+            said = "median gain undefined: every probe coordinate has a zero gradient at this step"
+        else:
+            said = "median gain undefined: no probe coordinate has a positive gain at this step"
+        self.summary = (f"{tensor} at step {int(data.steps[row])}: {said}; {len(gain)} probe "
                         "coordinates: " + ", ".join(f"{v} {n}" for n, v in counts.items()))
         return full
 

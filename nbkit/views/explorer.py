@@ -31,6 +31,9 @@ from nbkit.views.timeline import Timeline
 
 
 
+MAX_PICTURE_WIDTH = 1000     # px: the static picture fits a report page without scaling
+
+
 def _open(source):
     """(Recording, live Recorder or None) for a Recording, a path, or a Recorder."""
     if isinstance(source, Recording):
@@ -63,7 +66,7 @@ class Explorer(GuardedView, widgets.VBox):
         self._closed = False
         self.follower = None
         self.timeline = Timeline(self.data, self._pick_step)
-        self.layer_map = LayerMap(self.data, self._pick_tensor)
+        self.layer_map = LayerMap(self.data, self._pick_tensor, self.toggle_block)
         self.coordinates = CoordinateView(self.data)
         self.profile = ProfileView(run)
         for part in self._parts():
@@ -77,7 +80,9 @@ class Explorer(GuardedView, widgets.VBox):
         super().__init__(children=self._layout())
         self.add_class("nbkit-explorer")
         live = recorder is not None or not run.closed_cleanly
-        first = int(self.data.steps[-1] if live else self.data.steps[0]) if self.data.row_count else 0
+        first = (int(self.data.steps[-1]) if live else self._first_learning_step()) if self.data.row_count else 0
+        self._opened_at = first          # until the cursor leaves it, the first finding may move it
+        self._live = live
         with self.hold_trait_notifications():
             self.quantity = quantity
             self.tensor = run.tensors[0] if run.tensors else ""
@@ -148,6 +153,19 @@ class Explorer(GuardedView, widgets.VBox):
         self.tensor_menu.add_class("nbkit-tensor")
         widgets.link((self.tensor_menu, "value"), (self, "tensor"))
         self.slider.observe(lambda c: self.guard(setattr, self, "step", int(c["new"])), "value")
+        self.filter_box = widgets.Text(value="", placeholder="filter tensors by name", description="filter",
+                                       continuous_update=True, layout=widgets.Layout(width="260px"))
+        self.filter_box.add_class("nbkit-filter")
+        self.filter_box.observe(lambda c: self.guard(self._set_rows, dict(filter_text=c["new"])), "value")
+        self.aggregate_menu = widgets.Dropdown(options=[("block: max", "max"), ("block: median", "median"),
+                                                        ("block: worst tensor", "worst")], value="max",
+                                               layout=widgets.Layout(width="170px"))
+        self.aggregate_menu.add_class("nbkit-aggregate")
+        self.aggregate_menu.observe(lambda c: self.guard(self._set_rows, dict(aggregate=c["new"])), "value")
+        self.per_row_toggle = widgets.ToggleButton(value=False, description="scale each row",
+                                                   layout=widgets.Layout(width="120px"))
+        self.per_row_toggle.add_class("nbkit-per-row")
+        self.per_row_toggle.observe(lambda c: self.guard(self._set_rows, dict(per_row=c["new"])), "value")
         self.coordinate_summary = widgets.HTML()
         self.coordinate_summary.add_class("nbkit-coordinate-summary")
         self.profile_summary = widgets.HTML()
@@ -157,7 +175,8 @@ class Explorer(GuardedView, widgets.VBox):
         controls = widgets.HBox([self.play, self.previous_button, self.slider, self.next_button, self.speed,
                                  self.log_toggle, self.step_label])
         menus = widgets.HBox([self.quantity_menu, self.tensor_menu, self.coordinate_summary])
-        menus = widgets.VBox([menus, self.detail.box])
+        rows = widgets.HBox([self.filter_box, self.aggregate_menu, self.per_row_toggle])
+        menus = widgets.VBox([menus, rows, self.detail.box])
         middle = widgets.HBox([self.layer_map.canvas, self.coordinates.canvas],
                               layout=widgets.Layout(flex_flow="row wrap"))   # narrow pages stack them
         profile = widgets.HBox([self.profile.canvas, self.profile_summary],
@@ -165,16 +184,50 @@ class Explorer(GuardedView, widgets.VBox):
         return [controls, self.timeline.canvas, menus, middle, profile, self.findings_panel.box, self.errors]
 
     # --- reacting -------------------------------------------------------------------------------
+    def _first_learning_step(self) -> int:
+        """The first recorded step at which some parameter group's learning rate is non-zero (a
+        warm-up from 0 opens where the run starts moving), else the first step."""
+        lr = np.asarray(self.run.lr, dtype=np.float64)                # (steps, groups)
+        moving = np.flatnonzero(np.nan_to_num(np.abs(lr)).max(axis=1, initial=0.0) > 0) if lr.size else []
+        return int(self.data.steps[moving[0] if len(moving) else 0])
+
     def _show_finding_marks(self):
         if self.data.row_count:
             self.timeline.load(self.findings)
             self.timeline.blitter.full()
+            # Opening state: the cursor goes to the first finding, unless the user moved it meanwhile.
+            if not self._live and self.findings and self._opened_at is not None:
+                self._opened_at = None
+                self._pick_finding(self.findings[0])
 
     def _pick_step(self, step):
         self.guard(setattr, self, "step", int(step))
 
     def _pick_tensor(self, tensor):
         self.guard(setattr, self, "tensor", tensor)
+
+    def toggle_block(self, block: str) -> None:
+        """Expand the layer map's block `block` (e.g. "layer3.0") to one row per tensor, or collapse it."""
+        expanded = set(self.layer_map.expanded)
+        expanded.symmetric_difference_update({block})
+        self.guard(self._set_rows, dict(expanded=expanded))
+
+    def expand(self, block: str) -> None:
+        self.guard(self._set_rows, dict(expanded=self.layer_map.expanded | {block}))
+
+    def collapse(self, block: str) -> None:
+        self.guard(self._set_rows, dict(expanded=self.layer_map.expanded - {block}))
+
+    def _set_rows(self, change: dict) -> None:
+        """New rows (expand, filter) or colour scale in the layer map: it alone is redrawn; the cursor stays."""
+        if "expanded" in change:
+            names = {b.name for b in self.layer_map.tree.blocks}
+            unknown = set(change["expanded"]) - names
+            if unknown:
+                raise ValueError(f"No block named {sorted(unknown)[0]!r} in the layer map; blocks are "
+                                 f"{', '.join(sorted(names)[:8])} …")
+        self.layer_map.set_rows(**change)        # keeps the cursor and its values
+        self.layer_map.blitter.full()
 
     def _pick_finding(self, finding):
         def jump():
@@ -191,6 +244,7 @@ class Explorer(GuardedView, widgets.VBox):
             self._pick_step(int(self.data.steps[row]))
 
     def _on_step(self, change):
+        self._opened_at = None                  # the cursor moved: a finding found later leaves it be
         self.guard(self._move_cursor, change["new"])
 
     def _on_tensor(self, change):
@@ -351,9 +405,10 @@ class Explorer(GuardedView, widgets.VBox):
     # --- static output --------------------------------------------------------------------------
     def png_bytes(self) -> bytes:
         with self.lock:
-            images = [[figure_png(self.timeline.figure)],
-                      [figure_png(self.layer_map.figure), figure_png(self.coordinates.figure)],
-                      [figure_png(self.profile.figure)]]
+            middle = [figure_png(self.layer_map.figure), figure_png(self.coordinates.figure)]
+            # side by side only when both fit MAX_PICTURE_WIDTH (a report page); else one under the other
+            middle = [middle] if sum(m.shape[1] for m in middle) <= MAX_PICTURE_WIDTH else [[m] for m in middle]
+            images = [[figure_png(self.timeline.figure)], *middle, [figure_png(self.profile.figure)]]
             lines = [f"{self.run.path.name}: step {self.step}, layer map of {self.quantity}; {self.coordinates.summary}"]
             lines += self.profile.text.splitlines()
             lines += [label for label, _ in self.finding_options()[:8]] or [self.findings_panel.note_text()]

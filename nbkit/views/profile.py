@@ -260,7 +260,7 @@ class ProfileView:
         bar.set_label("unit gain ÷ median unit gain (log scale)\n"
                       "below ×½ damped, above ×2 accelerated", fontsize=7)
         self.colourbar = bar
-        self.title = self.figure.text(0.01, 0.985, "", fontsize=9, va="top")
+        self.title = self.figure.text(0.01, 0.985, "", fontsize=9, va="top", wrap=True)
         self.figure.text(0.01, 0.945, "grey: no value (light step, or a unit with zero gradient); a unit far "
                          "from ×1 is worth a look, not a fault by itself", fontsize=7, va="top", color="#555555")
         self.tensor = None
@@ -303,7 +303,7 @@ class ProfileView:
         self.axes["rows"].set_xlim(*span)
         columns_shown = self.images["columns"].get_visible()
         self.axes["rows"].set_xlabel("" if columns_shown else "optimizer step", fontsize=8)
-        self.title.set_text(f"unit gains of {tensor} relative to its median unit, per recorded heavy step")
+        self.title.set_text(f"unit gains ÷ median unit, per heavy step: {tensor}")
 
     def set_cursor(self, step: int, row: int | None) -> None:
         """Cursor line at `step`; the extreme units at the heavy row `row` (None: none yet) into `text`."""

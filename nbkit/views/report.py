@@ -15,6 +15,8 @@ import numpy as np
 
 from nbkit.version import __version__
 from nbkit.views.compare import compare
+from nbkit.views.landscape import run_names
+from nbkit.views.verdict_table import verdict_html, verdict_of
 from nbkit.views.explorer import explore
 from nbkit.views.profile import profile_png
 
@@ -147,6 +149,10 @@ def write_report(runs, path, *, title: str = "nbkit report", findings=None, land
     if intro:
         parts.append(f"<p>{html.escape(intro)}</p>")
     parts.append(f"<p class='caution'>{html.escape(CAUTION)}</p>")
+    if len(runs) > 1:                              # the report opens with the verdict (DESIGN §2)
+        named = run_names(runs)
+        known = {name: (findings or {}).get(str(run.path)) for name, run in named.items()}
+        parts.append("<h2>Verdict</h2>" + verdict_html(verdict_of(named, {k: f for k, f in known.items() if f is not None})))
     for run in runs:
         found = (findings or {}).get(str(run.path))
         if found is None:

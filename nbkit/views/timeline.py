@@ -18,7 +18,7 @@ class Timeline:
         self.on_pick = on_pick
         self.figure, self.canvas = make_canvas(WIDTH, HEIGHT, css_class="nbkit-timeline")
         self.loss_axes, self.lr_axes = self.figure.subplots(2, 1, sharex=True, height_ratios=(3, 1.3))
-        self.figure.subplots_adjust(left=0.09, right=0.99, top=0.93, bottom=0.2, hspace=0.08)
+        self.figure.subplots_adjust(left=0.09, right=0.97, top=0.93, bottom=0.2, hspace=0.08)
         self.loss_line, = self.loss_axes.plot([], [], color=OKABE_ITO["black"], lw=0.8)
         self.lr_line, = self.lr_axes.plot([], [], color=OKABE_ITO["bluish green"], lw=1.0)
         self.loss_axes.set_ylabel("loss")
