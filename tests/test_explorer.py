@@ -2,6 +2,8 @@
 values drawn equal the recording's values (read back through nbkit.load, the view's own reads aside)."""
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 import pytest
 import torch
@@ -430,3 +432,30 @@ def test_a_live_view_uses_only_the_recorders_public_surface(run_path, monkeypatc
         v.close()
     assert recorder.hooks == {}                                               # close removed the step hook
     v.close()                                                                 # and closing twice is safe
+
+
+def test_to_png_waits_for_the_findings_and_says_when_it_gave_up(run_path, monkeypatch):
+    from nbkit.views import explorer as explorer_module
+    from nbkit.views.findings_panel import FindingsPanel
+    release = threading.Event()
+    real = FindingsPanel._read_findings
+
+    def slow(panel):
+        release.wait(30)
+        return real(panel)
+
+    monkeypatch.setattr(FindingsPanel, "_read_findings", slow)
+    lines = []
+    monkeypatch.setattr(explorer_module, "compose_png", lambda images, text: lines.append(text) or b"png")
+    view = nbkit.explore(run_path)
+    try:
+        view.png_bytes(findings_timeout=0.2)
+        assert "still being computed when this picture was taken (it waited 0.2 s)" in lines[-1]
+        view._repr_mimebundle_()                    # the display data never waits
+        release.set()
+        view.png_bytes()                            # waits for them now: their labels are in the picture
+        assert "still being computed" not in lines[-1]
+        assert view.wait_for_findings(0)
+    finally:
+        release.set()
+        view.close()

@@ -33,10 +33,14 @@ class StaticPicture:
             handle.write(self.png_bytes())
         return path
 
+    def display_png_bytes(self) -> bytes:
+        """The PNG put in the display data: as png_bytes, but never waiting (a cell's output must not block)."""
+        return self.png_bytes()
+
     def _repr_mimebundle_(self, **kwargs):
         bundle = super()._repr_mimebundle_(**kwargs) or {}
         try:
-            bundle["image/png"] = base64.b64encode(self.png_bytes()).decode("ascii")
+            bundle["image/png"] = base64.b64encode(self.display_png_bytes()).decode("ascii")
         except Exception:                            # a static image is a fallback; never break display
             pass
         return bundle

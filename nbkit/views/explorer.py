@@ -32,6 +32,7 @@ from nbkit.views.timeline import Timeline
 
 
 MAX_PICTURE_WIDTH = 1000     # px: the static picture fits a report page without scaling
+PNG_FINDINGS_TIMEOUT = 60.0  # s: to_png() and the report wait this long for the background findings
 
 
 def _open(source):
@@ -403,7 +404,13 @@ class Explorer(GuardedView, widgets.VBox):
         super().close()
 
     # --- static output --------------------------------------------------------------------------
-    def png_bytes(self) -> bytes:
+    def display_png_bytes(self) -> bytes:
+        return self.png_bytes(findings_timeout=0)
+
+    def png_bytes(self, findings_timeout: float = PNG_FINDINGS_TIMEOUT) -> bytes:
+        """The view as one PNG, once the background findings are in (their marks and list are part of it),
+        or after `findings_timeout` seconds, which the picture then says."""
+        ready = self.wait_for_findings(timeout=findings_timeout)
         with self.lock:
             middle = [figure_png(self.layer_map.figure), figure_png(self.coordinates.figure)]
             # side by side only when both fit MAX_PICTURE_WIDTH (a report page); else one under the other
@@ -412,6 +419,9 @@ class Explorer(GuardedView, widgets.VBox):
             lines = [f"{self.run.path.name}: step {self.step}, layer map of {self.quantity}; {self.coordinates.summary}"]
             lines += self.profile.text.splitlines()
             lines += [label for label, _ in self.finding_options()[:8]] or [self.findings_panel.note_text()]
+            if not ready:
+                lines.append(f"findings were still being computed when this picture was taken (it waited "
+                             f"{findings_timeout:g} s): it shows none of them")
             return compose_png(images, "\n".join(lines))
 
 

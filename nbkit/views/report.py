@@ -163,8 +163,8 @@ def write_report(runs, path, *, title: str = "nbkit report", findings=None, land
         explorer = explore(run)
         caption = "Timeline, layer map and coordinate view, as the notebook view shows them"
         focus = _focus(found)
+        explorer.wait_for_findings(timeout=120)     # the picture shows the finding marks (png_bytes waits too)
         if focus is not None:
-            explorer.wait_for_findings(timeout=120)
             with explorer.hold_sync():
                 explorer.step, explorer.tensor = focus.first_step, focus.tensors[0]
             caption += f", with the cursor on the {focus.kind} finding at step {focus.first_step} in {focus.tensors[0]}"
