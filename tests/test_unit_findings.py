@@ -8,23 +8,17 @@ from __future__ import annotations
 
 import pytest
 import torch
-from sklearn.datasets import load_digits
 
 import nbkit
 from nbkit.analyze.findings import Thresholds
+from tests.test_profiles import digits as profile_digits
 
 SCALED = [4, 5, 6]
 
 
 def digits(n=1024, scale_columns=None, busiest=None):
-    """The first n digits as (x in [0, 1], labels); busiest=k keeps the k pixels most often non-zero."""
-    data = load_digits()
-    x = torch.tensor(data.data[:n] / 16.0, dtype=torch.float32)
-    if busiest is not None:
-        x = x[:, torch.argsort((x > 0).sum(0), descending=True, stable=True)[:busiest]]
-    if scale_columns is not None:
-        x[:, scale_columns] *= 1e-6
-    return x, torch.tensor(data.target[:n])
+    """The first n digits, as tests/test_profiles.py makes them (busiest=k: the k pixels most often non-zero)."""
+    return profile_digits(n, scale_columns, busiest)
 
 
 def train(model, optimizer, x, y, path, steps, *, lr_at=None, after_step=None, forward=None, **options):

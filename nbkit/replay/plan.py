@@ -38,9 +38,9 @@ class Plan:
     rebuild: str | None = None     # how the loss is rebuilt without a step_fn (nbkit.record.trained_loss)
 
 
-def make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before_step, workers, strict,
-              record=True, every=None) -> Plan:
-    """Validate the arguments of replay() up front and say what to fix."""
+def checked_window(run, start, steps) -> tuple[int, int]:
+    """(start, steps) of a window of `run`'s recorded steps (None: from the first step, to the last), or a
+    ReplayError saying what to pass."""
     if len(run) == 0:
         raise ReplayError(f"The recording {str(run.path)!r} holds no steps yet; record some steps first")
     first, last = int(run.steps[0]), int(run.steps[-1])
@@ -54,6 +54,13 @@ def make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before
     if start + steps - 1 > last:
         raise ReplayError(f"start={start} with steps={steps} runs to step {start + steps - 1}, but the recording "
                           f"ends at step {last}, so later batches cannot be checked; use steps <= {last + 1 - start}")
+    return start, int(steps)
+
+
+def make_plan(run, model, step_fn, batches, optimizers, start, steps, to, before_step, workers, strict,
+              record=True, every=None) -> Plan:
+    """Validate the arguments of replay() up front and say what to fix."""
+    start, steps = checked_window(run, start, steps)
     keyframes = [k for k in run.keyframes if k <= start]
     if not keyframes:
         raise ReplayError(f"No keyframe at or before step {start} (keyframes: {run.keyframes}); pick a later start")

@@ -27,7 +27,7 @@ from nbkit.recording import Recording, load
 from nbkit.replay import restore
 from nbkit.replay.lanes import detach, make_lane
 from nbkit.replay.loop import RecordedSteps, advance
-from nbkit.replay.plan import make_plan, recorded_rebuild
+from nbkit.replay.plan import checked_window, make_plan, recorded_rebuild
 from nbkit.store.quality import ranges, write_step_quality
 
 NOT_KEPT = ("the step's batch was not kept (keep_batches=False, or outside the byte budget) or no keyframe "
@@ -49,17 +49,7 @@ def step_quality(run, model, start=None, steps=None, step_fn=None, second_order=
     """
     run = run if isinstance(run, Recording) else load(run)
     model = unwrap_model(model).plain
-    if len(run) == 0:
-        raise ReplayError(f"The recording {str(run.path)!r} holds no steps yet; record some steps first")
-    first, last = int(run.steps[0]), int(run.steps[-1])
-    start = first if start is None else start
-    if not isinstance(start, (int, np.integer)) or isinstance(start, bool) or not first <= start <= last:
-        raise ReplayError(f"Invalid start: {start!r}; expected a recorded step between {first} and {last}")
-    start = int(start)
-    steps = last + 1 - start if steps is None else steps
-    if not isinstance(steps, (int, np.integer)) or isinstance(steps, bool) or not 1 <= steps <= last + 1 - start:
-        raise ReplayError(f"Invalid steps: {steps!r}; expected 1 to {last + 1 - start} (the recording ends at "
-                          f"step {last})")
+    start, steps = checked_window(run, start, steps)
     window = list(range(start, start + int(steps)))
     T = len(run.tensors)
     arrays = {"step": np.array(window, dtype=np.int64),
