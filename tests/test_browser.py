@@ -153,3 +153,70 @@ def test_tour_explorer_reacts_in_notebook_7():
         lab.screenshot(page, "02-dragged")
         assert before and after and after != before, "the layer map did not redraw after the drag"
         assert dragged is not None and dragged != first and _readout(page) == dragged
+
+
+LARGE_SETUP = """import json, nbkit
+view = nbkit.explore(PATH_A)
+view.wait_for_findings(120)
+row = next(k for k, r in enumerate(view.layer_map.rows) if r.tensor is None)   # a collapsed block row
+x, y = view.layer_map.row_centre(row)
+print(json.dumps({"x": x, "y": y, "width": view.layer_map.figure.bbox.width,
+                  "height": view.layer_map.figure.bbox.height, "rows": len(view.layer_map.rows)}))
+view"""
+LARGE_COMPARE = """comparison = nbkit.compare([PATH_A, PATH_B])
+comparison"""
+
+
+def test_a_150_tensor_recording_expands_filters_and_tells_tensors_apart(tmp_path):
+    """A synthetic 150-tensor recording (75 blocks of weight + bias, nbkit.store.synthetic): a click on a
+    block row expands it, the filter box narrows the rows, two tensors with the same tail name carry
+    different labels on the page (the tensor menu's options), and the comparison's verdict is on the page."""
+    why = browser_available()
+    if why:
+        pytest.skip(why)
+    import json
+
+    from nbkit.store.synthetic import write_synthetic
+    paths = [tmp_path / "large-a", tmp_path / "large-b"]
+    write_synthetic(paths[0], steps=400, tensors=150)
+    write_synthetic(paths[1], steps=400, tensors=150, seed=1)
+    nb = nbformat.v4.new_notebook()
+    header = f"PATH_A, PATH_B = {str(paths[0])!r}, {str(paths[1])!r}\n"
+    nb.cells = [nbformat.v4.new_code_cell(header + LARGE_SETUP), nbformat.v4.new_code_cell(LARGE_COMPARE)]
+    nb.metadata["kernelspec"] = {"name": "python3", "display_name": "Python 3", "language": "python"}
+    notebook = tmp_path / "large.ipynb"
+    nbformat.write(nb, notebook)
+    with JupyterLab([], OUTPUT / "large", extra_files=[notebook]) as lab:
+        page = lab.open("large.ipynb")
+        lab.run_all(page)
+        lab.wait_for(page, f"{EXPLORER} .nbkit-layer-map canvas", timeout=240)
+        lab.wait_for(page, ".nbkit-verdict", timeout=240)
+        lab.wait_idle(page, "large.ipynb")
+        lab.screenshot(page, "01-opened")
+        verdict = page.locator(".nbkit-verdict").first.inner_text()
+        assert "large-a" in verdict and "large-b" in verdict, verdict
+
+        # labels: two tensors with the same tail name read differently in the tensor menu
+        options = page.locator(f"{EXPLORER} .nbkit-tensor select option").all_inner_texts()
+        weights = [o for o in options if o.endswith("weight")]
+        assert len(options) == 150 and len(set(weights)) == len(weights) == 75, options[:6]
+
+        # expand: click the block row whose centre the kernel printed
+        where = json.loads(next(t for t in page.locator(".jp-OutputArea-output pre").all_inner_texts() if '"rows"' in t))
+        layer_map = f"{EXPLORER} .nbkit-layer-map canvas"
+        page.locator(layer_map).first.scroll_into_view_if_needed()
+        before = lab.stable_digest(page, ".nbkit-layer-map")
+        box = page.locator(layer_map).first.bounding_box()
+        page.mouse.click(box["x"] + where["x"] * box["width"] / where["width"],
+                         box["y"] + where["y"] * box["height"] / where["height"])
+        expanded = lab.stable_digest(page, ".nbkit-layer-map")
+        lab.screenshot(page, "02-expanded")
+        assert expanded and expanded != before, "a click on a block row did not redraw the layer map"
+
+        # filter: type a name and press Enter
+        box_input = page.locator(f"{EXPLORER} .nbkit-filter input").first
+        box_input.fill("block7")
+        box_input.press("Enter")
+        filtered = lab.stable_digest(page, ".nbkit-layer-map")
+        lab.screenshot(page, "03-filtered")
+        assert filtered and filtered != expanded, "the filter did not redraw the layer map"

@@ -150,7 +150,10 @@ class Explorer(GuardedView, widgets.VBox):
         self.quantity_menu = widgets.Dropdown(options=run.quantities, value=quantity, description="quantity")
         self.quantity_menu.add_class("nbkit-quantity")
         widgets.link((self.quantity_menu, "value"), (self, "quantity"))
-        self.tensor_menu = widgets.Dropdown(options=run.tensors, description="tensor")
+        # labels that tell tensors apart (the module tree's), never a name cut from the left
+        tree = self.layer_map.tree
+        self.tensor_menu = widgets.Dropdown(options=[(tree.label(k), name) for k, name in enumerate(run.tensors)],
+                                            description="tensor")
         self.tensor_menu.add_class("nbkit-tensor")
         widgets.link((self.tensor_menu, "value"), (self, "tensor"))
         self.slider.observe(lambda c: self.guard(setattr, self, "step", int(c["new"])), "value")

@@ -251,6 +251,12 @@ class LayerMap:
         self.values.set_data(np.where(over, np.nan, values), y)
         self.beyond.set_data(np.full(int(over.sum()), edge), y[over])
 
+    def row_centre(self, row: int) -> tuple[float, float]:
+        """Where row `row` of the map is drawn, in figure pixels from the top left (for browser tests)."""
+        x0, x1 = self.map_axes.get_xlim()
+        x, y = self.map_axes.transData.transform(((x0 + x1) / 2, row))
+        return float(x), float(self.figure.bbox.height - y)
+
     def _press(self, event):
         if event.inaxes in (self.map_axes, self.value_axes) and event.ydata is not None and event.button == 1:
             k = int(round(event.ydata))
