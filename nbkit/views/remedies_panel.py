@@ -29,8 +29,9 @@ REMEDIES_NOTE = ("Verdicts are heuristics: one window replayed from the keyframe
 
 
 def remedy_rows(tried) -> list[dict]:
-    """One row per verdict of a TriedRemedies: {"kind", "remedy", "outcome", "finding", "loss", "interval"}
-    as display strings ("finding": "gone", "still found" or "—" where the remedy did not run)."""
+    """One row per verdict of a TriedRemedies: {"kind", "remedy", "replay", "outcome", "finding", "loss",
+    "interval"} as display strings ("replay": its name in the comparison; "finding": "gone", "still found" or
+    "—" where the remedy did not run)."""
     rows = []
     for v in tried.verdicts:
         ran = v.outcome not in ("skipped", "failed")
@@ -38,6 +39,7 @@ def remedy_rows(tried) -> list[dict]:
         rows.append({
             "kind": v.remedy.kind,
             "remedy": v.remedy.description,
+            "replay": (v.replay.meta.get("replay") or {}).get("optimizer", v.replay.path.name) if v.replay else "—",
             "outcome": v.outcome if ran else f"{v.outcome}: {v.why}",
             "finding": ("still found" if v.still_fires else "gone") if ran and v.still_fires is not None else "—",
             "loss": f"{v.loss:.4g} against {v.control_loss:.4g}" if ran else "—",
@@ -56,8 +58,10 @@ def remedies_html(tried) -> str:
     cells = ("remedy", "outcome", "finding", "loss", "interval")
     header = ("<tr><th>remedy</th><th>outcome</th><th>finding</th><th>mean loss from step "
               f"{f.first_step}, remedy against control</th><th>per-step difference (95 % interval)</th></tr>")
-    body = "".join("<tr>" + "".join(f"<td>{html.escape(row[c] if c != 'remedy' else row['kind'] + ': ' + row[c])}"
-                                    "</td>" for c in cells) + "</tr>" for row in remedy_rows(tried))
+    body = ""
+    for row in remedy_rows(tried):
+        row = {**row, "remedy": f"{row['kind']} ({row['replay']}): {row['remedy']}"}
+        body += "<tr>" + "".join(f"<td>{html.escape(row[c])}</td>" for c in cells) + "</tr>"
     return (f"<div class='nbkit-remedies'>{head}<table class='nbkit-remedies-table'>{header}{body}</table>"
             f"<p><small>{html.escape(REMEDIES_NOTE)}</small></p></div>")
 
