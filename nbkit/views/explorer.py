@@ -290,7 +290,9 @@ class Explorer(GuardedView, widgets.VBox):
             note += " (re-recorded in full by a replay)"
         self.detail.step = snapped
         self.step_label.value = f"<b>step {snapped}</b> of {int(self.data.steps[-1])}{note}"
-        self.coordinate_summary.value = f"<small>{html.escape(self.coordinates.summary)}</small>"
+        quality = self.timeline.quality_at(snapped)        # "" where the step's quality was not measured
+        self.coordinate_summary.value = (f"<small>{html.escape(self.coordinates.summary)}"
+                                         + (f"<br>{html.escape(quality)}" if quality else "") + "</small>")
         self.profile_summary.value = "<small>" + "<br>".join(map(html.escape, self.profile.text.splitlines())) + "</small>"
         with self.slider.hold_trait_notifications():
             self.slider.max = max(self.slider.max, int(self.data.steps[-1]))
