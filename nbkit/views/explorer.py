@@ -27,6 +27,7 @@ from nbkit.views.findings_panel import FindingsPanel
 from nbkit.views.layer_map import LayerMap
 from nbkit.views.live import LiveFollower, prepare_busy_frontends
 from nbkit.views.profile import ProfileView
+from nbkit.views.remedies_panel import RemediesControl
 from nbkit.views.timeline import Timeline
 
 
@@ -78,6 +79,7 @@ class Explorer(GuardedView, widgets.VBox):
         self.findings_list, self.findings_note = self.findings_panel.list, self.findings_panel.note
         self._build_controls(run, quantity)
         self.detail = DetailControl(run, model, step_fn, self._show_detail)
+        self.remedies = RemediesControl(run, model, step_fn, self.show_error)
         super().__init__(children=self._layout())
         self.add_class("nbkit-explorer")
         live = recorder is not None or not run.closed_cleanly
@@ -185,7 +187,8 @@ class Explorer(GuardedView, widgets.VBox):
                               layout=widgets.Layout(flex_flow="row wrap"))   # narrow pages stack them
         profile = widgets.HBox([self.profile.canvas, self.profile_summary],
                                layout=widgets.Layout(flex_flow="row wrap"))
-        return [controls, self.timeline.canvas, menus, middle, profile, self.findings_panel.box, self.errors]
+        return [controls, self.timeline.canvas, menus, middle, profile, self.findings_panel.box, self.remedies.box,
+                self.errors]
 
     # --- reacting -------------------------------------------------------------------------------
     def _first_learning_step(self) -> int:
@@ -234,6 +237,8 @@ class Explorer(GuardedView, widgets.VBox):
         self.layer_map.blitter.full()
 
     def _pick_finding(self, finding):
+        self.remedies.select(finding)            # the "try the remedies" button acts on the picked finding
+
         def jump():
             with self.hold_trait_notifications():
                 if finding.tensors and finding.tensors[0] in self.run.tensors:
@@ -288,7 +293,9 @@ class Explorer(GuardedView, widgets.VBox):
             note += " (re-recorded in full by a replay)"
         self.detail.step = snapped
         self.step_label.value = f"<b>step {snapped}</b> of {int(self.data.steps[-1])}{note}"
-        self.coordinate_summary.value = f"<small>{html.escape(self.coordinates.summary)}</small>"
+        quality = self.timeline.quality_at(snapped)        # "" where the step's quality was not measured
+        self.coordinate_summary.value = (f"<small>{html.escape(self.coordinates.summary)}"
+                                         + (f"<br>{html.escape(quality)}" if quality else "") + "</small>")
         self.profile_summary.value = "<small>" + "<br>".join(map(html.escape, self.profile.text.splitlines())) + "</small>"
         with self.slider.hold_trait_notifications():
             self.slider.max = max(self.slider.max, int(self.data.steps[-1]))
@@ -400,6 +407,8 @@ class Explorer(GuardedView, widgets.VBox):
             self.findings_panel.stop()
         if getattr(self, "follower", None) is not None:
             self.follower.stop()
+        if getattr(self, "remedies", None) is not None:
+            self.remedies.close()
         for name in ("timeline", "layer_map", "coordinates", "profile"):
             if hasattr(self, name):
                 getattr(self, name).blitter.stop()
@@ -435,5 +444,7 @@ def explore(run, *, quantity: str = DEFAULT_QUANTITY, model=None, step_fn=None) 
     model (and step_fn where the recording's trained loss is not rebuildable): the "re-record in full"
     button replays the window around the cursor with every=1 (nbkit.replay; a thinned recording's
     window then shows every quantity at every step). Without a model the button is disabled.
+    With a model the findings list also offers "try the remedies" for the picked finding
+    (nbkit.try_remedies on a background thread; views.remedies_panel).
     """
     return Explorer(run, quantity=quantity, model=model, step_fn=step_fn)
