@@ -392,5 +392,10 @@ class Comparison(GuardedView, widgets.VBox):
 
 def compare(run, *others, model=None, step_fn=None, batch=None) -> Comparison:
     """The comparison: several recordings side by side on one step cursor (an ipywidgets widget).
-    With model, step_fn and batch it adds the loss-landscape slice through the runs."""
+    With model, step_fn and batch it adds the loss-landscape slice through the runs. The runs may also
+    come as one list: compare([a, b])."""
+    if isinstance(run, (list, tuple)) and not others:
+        if not run:
+            raise ValueError("compare() needs at least one recording")
+        run, *others = run
     return Comparison(run, *others, model=model, step_fn=step_fn, batch=batch)
