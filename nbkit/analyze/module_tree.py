@@ -10,6 +10,7 @@ prefix is cut away.
 from __future__ import annotations
 
 import re
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -113,7 +114,6 @@ def worst_tensor(values: np.ndarray, quantity: str) -> int:
     the highest 99th percentile, or the lowest 1st percentile where a low value is the bad one.
     values: (tensors, columns). All-NaN tensors are never the worst unless every one is."""
     with np.errstate(all="ignore"):
-        import warnings
 
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
@@ -134,7 +134,6 @@ def row_values(rows: list[Row], tree: ModuleTree, values: np.ndarray, how: str =
     if how not in (*AGGREGATES, "largest"):
         raise ValueError(f"Unknown aggregate {how!r}; choose one of {', '.join(AGGREGATES)}")
     out = np.full((len(rows), values.shape[1]), np.nan)
-    import warnings
 
     for r, row in enumerate(rows):
         if row.tensor is not None:
