@@ -159,8 +159,9 @@ class Explorer(GuardedView, widgets.VBox):
         self.tensor_menu.add_class("nbkit-tensor")
         widgets.link((self.tensor_menu, "value"), (self, "tensor"))
         self.slider.observe(lambda c: self.guard(setattr, self, "step", int(c["new"])), "value")
-        self.filter_box = widgets.Text(value="", placeholder="filter tensors by name", description="filter",
-                                       continuous_update=True, layout=widgets.Layout(width="260px"))
+        # applied on Enter or when the box loses focus: a redraw per keystroke costs up to 0.7 s at 300 tensors
+        self.filter_box = widgets.Text(value="", placeholder="filter tensors by name, then Enter", description="filter",
+                                       continuous_update=False, layout=widgets.Layout(width="260px"))
         self.filter_box.add_class("nbkit-filter")
         self.filter_box.observe(lambda c: self.guard(self._set_rows, dict(filter_text=c["new"])), "value")
         self.aggregate_menu = widgets.Dropdown(options=[("block: max", "max"), ("block: median", "median"),
