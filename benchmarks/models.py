@@ -11,6 +11,8 @@ import), and their batches.
 """
 from __future__ import annotations
 
+import copy
+
 import torch
 from torch import nn
 
@@ -114,6 +116,17 @@ class ReturnedLoss:
     @staticmethod
     def criterion(output, targets):
         return output.loss
+
+
+def training_copy(base, optimizer_class, with_criterion):
+    """A copy of `base` in training mode with a fresh optimizer: (model, optimizer, criterion, forward,
+    loss_of), where loss_of(forward(x), y) is the step's loss (the model's own loss without a criterion)."""
+    model = copy.deepcopy(base)
+    model.train()
+    optimizer = optimizer_class(model.parameters())
+    criterion = nn.CrossEntropyLoss() if with_criterion else None
+    forward, loss_of = (model, criterion) if with_criterion else (ReturnedLoss(model), ReturnedLoss.criterion)
+    return model, optimizer, criterion, forward, loss_of
 
 
 def batches(shape, classes, n, seed=0):

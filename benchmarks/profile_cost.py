@@ -20,7 +20,6 @@ optimizer step on the MLP. Torch at its default thread count unless --threads.
 from __future__ import annotations
 
 import argparse
-import copy
 import shutil
 import sys
 import tempfile
@@ -29,11 +28,10 @@ from pathlib import Path
 
 import numpy as np
 import torch
-from torch import nn
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 import nbkit  # noqa: E402
-from models import MODELS, ReturnedLoss, batches  # noqa: E402
+from models import MODELS, batches, training_copy  # noqa: E402
 from paired import median_interval  # noqa: E402
 from record_overhead import KEYS, train_step  # noqa: E402
 
@@ -58,11 +56,7 @@ def measure(name, steps, block, workdir):
     data = batches(shape, classes, total)
     variants = {}
     for variant in VARIANTS:
-        model = copy.deepcopy(base)
-        model.train()
-        optimizer = optimizer_class(model.parameters())
-        criterion = nn.CrossEntropyLoss() if with_criterion else None
-        forward, loss_of = (model, criterion) if with_criterion else (ReturnedLoss(model), ReturnedLoss.criterion)
+        model, optimizer, criterion, forward, loss_of = training_copy(base, optimizer_class, with_criterion)
         rec = None
         if variant != "unrecorded":
             options = {"every": 1, "profiles": variant == "profiles on"}

@@ -46,7 +46,6 @@ others a little too. The median over steps keeps most of that out, not all of it
 from __future__ import annotations
 
 import argparse
-import copy
 import shutil
 import sys
 import tempfile
@@ -55,11 +54,10 @@ from pathlib import Path
 
 import numpy as np
 import torch
-from torch import nn
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 import nbkit  # noqa: E402
-from models import MODELS, ReturnedLoss, batches, transformers_missing  # noqa: E402
+from models import MODELS, batches, training_copy, transformers_missing  # noqa: E402
 from paired import median_interval  # noqa: E402
 
 WARM_UP = 100           # untimed steps: every="auto" leaves its 50-step warm-up and chooses at keyframe 100
@@ -168,11 +166,7 @@ def measure(name, steps, block, workdir, with_naive):
     names = ("unrecorded", "auto", "every=1") + (("naive",) if with_naive else ())
     variants = {}
     for variant in names:
-        model = copy.deepcopy(base)
-        model.train()
-        optimizer = optimizer_class(model.parameters())
-        criterion = nn.CrossEntropyLoss() if with_criterion else None
-        forward, loss_of = (model, criterion) if with_criterion else (ReturnedLoss(model), ReturnedLoss.criterion)
+        model, optimizer, criterion, forward, loss_of = training_copy(base, optimizer_class, with_criterion)
         rec = None
         if variant in ("auto", "every=1"):
             options = {"every": "auto" if variant == "auto" else 1, "keyframe_every": KEYFRAME_EVERY}
