@@ -70,7 +70,7 @@ def try_remedies(run, finding, model, step_fn=None, batches=None, steps=None, st
         steps = min(MAX_WINDOW, finding.last_step - start + 1 + max(MARGIN, (finding.last_step - finding.first_step) // 2))
     steps = max(1, min(steps, last - start + 1))
     proposed = list(remedies) if remedies is not None else remedies_for(
-        finding, run.meta, _safe(lambda: run.grad_norm), run.steps)
+        finding, run.meta, run.grad_norm, run.steps)
     proposed = proposed[:MAX_REMEDIES]
     verdicts, lanes = [], {CONTROL: None}
     names = {}
@@ -171,10 +171,3 @@ def _still_fires(recording, finding, window, parent=None) -> bool:
     first, last = window
     return any(f.kind == finding.kind and f.first_step <= last and f.last_step >= first
                and (not finding.tensors or set(f.tensors) & set(finding.tensors)) for f in found)
-
-
-def _safe(read):
-    try:
-        return read()
-    except Exception:                  # noqa: BLE001 - recordings without backward statistics
-        return None

@@ -78,8 +78,8 @@ def over_stability_limit(data, t) -> list[Finding]:
     name = data.meta.get("optimizer", {}).get("class", "")
     if not len(rows) or not data.meta.get("param_groups"):
         return []
-    clip = _clip_factors(data)
-    grad_norm = _step_grad_norm(data)
+    clip = np.asarray(data.run.clip_factor, dtype=np.float64)    # NaN in recordings before backward statistics
+    grad_norm = np.asarray(data.run.grad_norm, dtype=np.float64)
     lr0 = np.asarray(data.run.lr, dtype=np.float64)[:, 0] if len(data.steps) else np.zeros(0)
     w = t.stability_window
     hits = []
@@ -151,19 +151,3 @@ def _median(values) -> float:
     values = np.asarray(values, dtype=np.float64)
     values = values[np.isfinite(values)]
     return float(np.median(values)) if len(values) else math.nan
-
-
-def _clip_factors(data) -> np.ndarray:
-    """(steps,) the recorded post-clip ÷ pre-clip gradient norm (NaN where not recorded)."""
-    try:
-        return np.asarray(data.run.clip_factor, dtype=np.float64)
-    except Exception:                              # noqa: BLE001 - recordings before backward statistics
-        return np.full(len(data.steps), math.nan)
-
-
-def _step_grad_norm(data) -> np.ndarray:
-    """(steps,) the pre-clip gradient norm of every step (NaN where not recorded)."""
-    try:
-        return np.asarray(data.run.grad_norm, dtype=np.float64)
-    except Exception:                              # noqa: BLE001 - recordings before backward statistics
-        return np.full(len(data.steps), math.nan)
