@@ -251,7 +251,8 @@ def prepare_block(block: Block, members: list[int], optimizer, adapter: Adapter,
 
 def _optimizer_state(job: BlockJob):
     """The sampled optimizer state after the step, and its scalars, read on the statistics thread:
-    only optimizer.step() changes the state, and the next step's pre-hook waits for this job."""
+    only optimizer.step() changes the state, and the next step's pre-hook waits for this job. Also the
+    members' whole state tensors and scalars (the profiles' ε share reads them)."""
     block, members = job.block, job.members
     states, scalars = zip(*[state_tensors(job.optimizer, p) for p in job.params])
     after = _sample_state(block, members, list(states))
@@ -259,14 +260,14 @@ def _optimizer_state(job: BlockJob):
                      for k in sorted(set().union(*[s.keys() for s in scalars]))}
     # float64: the step-dependent coefficients (RAdam's ρ_t) cancel badly in float32
     steps = torch.tensor([[s.get("step", math.nan)] for s in scalars], dtype=torch.float64)
-    return after, scalar_values, steps
+    return after, scalar_values, steps, states, scalars
 
 
 def block_statistics(job: BlockJob) -> BlockStatistics:
     """The statistics of a prepared block (nbkit.measure.step_stats on the job's buffers); also
     keeps the block's previous gradient sample and norms for the next recorded step."""
     block, members, everything = job.block, job.members, job.everything
-    after, scalar_values, steps = _optimizer_state(job)
+    after, scalar_values, steps, states, scalars = _optimizer_state(job)
     valid = block.valid if everything else block.valid[members]
     pad = block.pad if everything else block.pad[members]
     whole = whole_tensor_statistics(job.current, job.minus_update, job.previous, job.previous_norms,
@@ -294,11 +295,11 @@ def block_statistics(job: BlockJob) -> BlockStatistics:
         if block.previous_sample is None:
             block.previous_sample = torch.full(block.local.shape, math.nan, dtype=block.work)
         block.previous_sample[members] = grad
-    profiled = _profiles(job) if job.profiles else {}
+    profiled = _profiles(job, states, scalars) if job.profiles else {}
     return BlockStatistics(whole, sampled, histograms, probe_values, state_nonfinite, profiled)
 
 
-def _profiles(job: BlockJob) -> dict:
+def _profiles(job: BlockJob, states, scalars) -> dict:
     """The exact per-unit profiles of the job's tensors that have units, from the block's −Δθ and
     gradient copies and the optimizer state (for the ε share: the adapter's eps_threshold on whole tensors)."""
     out = {}
@@ -307,16 +308,14 @@ def _profiles(job: BlockJob) -> dict:
         if not t.profile_at:
             continue
         eps = None
-        if job.adapter.eps_threshold is not None:
-            state, scalars = state_tensors(job.optimizer, job.params[i])
-            if state:
-                step = torch.tensor(scalars.get("step", math.nan), dtype=torch.float64)
-                context = StepContext(grad=job.current[i], theta=None, update=None, before={}, after=state,
-                                      step=step, group=job.group, lr=float(job.group["lr"]), scalars=scalars)
-                try:
-                    eps = job.adapter.eps_threshold(context)
-                except KeyError:            # a state key this configuration does not keep: no ε share
-                    eps = None
+        if job.adapter.eps_threshold is not None and states[i]:
+            step = torch.tensor(scalars[i].get("step", math.nan), dtype=torch.float64)
+            context = StepContext(grad=job.current[i], theta=None, update=None, before={}, after=states[i],
+                                  step=step, group=job.group, lr=float(job.group["lr"]), scalars=scalars[i])
+            try:
+                eps = job.adapter.eps_threshold(context)
+            except KeyError:                # a state key this configuration does not keep: no ε share
+                eps = None
         dims = {axis: {"rows": t.units.rows, "columns": t.units.columns}[axis] for axis in t.profile_at}
         out[i] = unit_profiles.unit_profiles(job.minus_update[i], job.current[i], eps, dims,
                                              _scratch(job.block, job.current[i]))
